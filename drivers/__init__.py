@@ -1,0 +1,1 @@
+"""Device interfaces, typed instrument errors, and the VISA and serial driver families."""

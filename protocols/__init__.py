@@ -1,0 +1,1 @@
+"""Built-in measurement protocols (YAML), usable by name after install."""
