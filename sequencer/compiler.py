@@ -1,0 +1,340 @@
+"""The compiler, a pure function (protocol, bench) -> Plan.
+
+Target states become element settings through the optics model and the bench's calibration.
+Every port of a setting measures a projector, so targets that share a basis share a setting when
+the table detects both outputs of that factor: with a polarizing beam splitter the 6 polarization
+projectors need 3 settings, with four ports the 36 joint projectors need 9; with one detector every
+projector needs its own setting. A factor the protocol does not analyse is parked; when the table
+resolves that factor but detects only some of its outputs, each setting is measured once per
+output of a basis of that factor, and the analysis sums them (``point_index`` and the port label
+tie the parts together).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Mapping, Sequence
+
+import numpy as np
+
+from sequencer.errors import BenchError, OpticsError, ProtocolError
+from sequencer.kinematics import StageKinematics, nearest_equivalent_deg
+from sequencer.optics.analyzer import (
+    CONVERTER, CONVERTER_ANGLE, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, HWP, QWP, ROTATOR,
+    AnalyzerModel, PortModel,
+)
+from sequencer.optics.settings import polarization_setting, spatial_setting
+from sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, ORTHOGONAL_NAME
+from sequencer.optics.stokes import stokes_from_density
+from sequencer.optics.states import density
+from sequencer.ordering import order_settings
+from sequencer.plan import Plan, Step
+
+# Plates and the rotator repeat every 180 deg for any retardance; the converter stage too.
+PERIOD_DEG = 180.0
+STAGE_ELEMENTS = (QWP, HWP, CONVERTER_ANGLE, ROTATOR)
+
+
+@dataclass(frozen=True)
+class TableModel:
+    """What the compiler needs to know about a bench, as plain data."""
+
+    name: str
+    analyzer: AnalyzerModel
+    ports: tuple[PortModel, ...]
+    present: tuple[bool, ...]  # per element of ELEMENT_NAMES: a device plays that role
+    kinematics: Mapping[int, StageKinematics]  # per stage element index
+    converter_switch_s: float = 0.0
+    shutter_s: float = 0.0
+    read_overhead_s: float = 0.0
+
+
+@dataclass(frozen=True)
+class Request:
+    """One projector the protocol asks for: a ket and label per factor (None = not analysed),
+    or explicit element settings."""
+
+    polarization: tuple[np.ndarray, str] | None = None
+    spatial: tuple[np.ndarray, str] | None = None
+    elements: Mapping[str, float | str] | None = None
+    line: int | None = None
+
+
+@dataclass
+class _Basis:
+    stokes: np.ndarray
+    ket: np.ndarray
+    labels: list[str]
+
+
+@dataclass
+class _FactorRegistry:
+    """Bases of one factor, merged by orthogonality when both outputs are detected."""
+
+    merge: bool
+    bases: list[_Basis] = field(default_factory=list)
+
+    def find(self, ket: np.ndarray, label: str, partner_name: str | None) -> tuple[int, int]:
+        s = stokes_from_density(density(ket))[1:]
+        for i, b in enumerate(self.bases):
+            if np.allclose(s, b.stokes, atol=1e-9):
+                return i, 0
+            if self.merge and np.allclose(s, -b.stokes, atol=1e-9):
+                if b.labels[1].startswith("~"):
+                    b.labels[1] = label
+                return i, 1
+        other = partner_name if partner_name is not None else f"~{label}"
+        self.bases.append(_Basis(s, ket, [label, other]))
+        return len(self.bases) - 1, 0
+
+
+def _partner(label: str) -> str | None:
+    return ORTHOGONAL_NAME.get(label)
+
+
+def _outputs(ports: Sequence[PortModel]) -> tuple[list[str | None], list[str | None], bool]:
+    pol = sorted({p.splitter_port for p in ports}, key=str)
+    sp = sorted({p.sorter_port for p in ports}, key=str)
+    complete = len(ports) == len(pol) * len(sp) and {(p.splitter_port, p.sorter_port) for p in ports} == {
+        (a, b) for a in pol for b in sp
+    }
+    return pol, sp, complete
+
+
+def compile_requests(
+    table: TableModel,
+    requests: Sequence[Request],
+    *,
+    protocol_name: str,
+    analyzes: tuple[str, ...],
+    dwell_s: float,
+    repeats: int,
+    order: str = "as-written",
+    seed: int = 0,
+    background_every: int = 0,
+    background_at_start: bool = True,
+    background_at_end: bool = True,
+    background_dwell_s: float | None = None,
+    reference_every: int = 0,
+    reference_dwell_s: float | None = None,
+    passes: int = 1,
+    pass_interval_s: float = 0.0,
+) -> Plan:
+    """Compile projector requests into an ordered Plan for ``table``.
+
+    Raises
+    ------
+    BenchError
+        If the table cannot measure what is asked (missing analyzer element, unreachable target).
+    """
+    model = table.analyzer
+    pol_out, sp_out, complete = _outputs(table.ports)
+    if "polarization" in analyzes and not model.analyzes_polarization:
+        raise BenchError(f"the protocol analyses polarization but bench '{table.name}' has no polarizing splitter (optics.polarizing_splitter)")
+    if "spatial" in analyzes and not model.analyzes_spatial:
+        raise BenchError(f"the protocol analyses the spatial mode but bench '{table.name}' has no parity sorter (optics.parity_sorter)")
+    merge_pol = complete and len(pol_out) == 2
+    merge_sp = complete and len(sp_out) == 2
+    pol_port = "H" if merge_pol else (table.ports[0].splitter_port or "H")
+    sp_port = "h" if merge_sp else (table.ports[0].sorter_port or "h")
+    pol_reg, sp_reg = _FactorRegistry(merge_pol), _FactorRegistry(merge_sp)
+    # Expansion of a factor that is resolved at the ports but not analysed and not fully detected.
+    expand_pol = "polarization" not in analyzes and model.analyzes_polarization and not merge_pol
+    expand_sp = "spatial" not in analyzes and model.analyzes_spatial and not merge_sp
+
+    keys: list[tuple] = []
+    settings: list[np.ndarray] = []
+    key_labels: list[tuple[str, ...]] = []
+    logical: list[int] = []
+
+    def factor_parts(req_part, reg: _FactorRegistry, expand: bool, kets: Mapping[str, np.ndarray], names: tuple[str, str]):
+        if req_part is not None:
+            ket, label = req_part
+            return [reg.find(np.asarray(ket), label, _partner(label))]
+        if expand:
+            return [reg.find(kets[n], n, _partner(n)) for n in names]
+        return [None]
+
+    for r_index, req in enumerate(requests):
+        if req.elements is not None:
+            s = _explicit_settings(table, req)
+            key = ("elements",) + tuple(np.round(np.nan_to_num(s, nan=-999.0), 9))
+            if key not in keys:
+                keys.append(key)
+                settings.append(s)
+                key_labels.append(tuple(_explicit_label(req.elements) for _ in table.ports))
+                logical.append(len(set(logical)))
+            continue
+        pol_parts = factor_parts(req.polarization, pol_reg, expand_pol, POLARIZATION_KETS, ("H", "V"))
+        sp_parts = factor_parts(req.spatial, sp_reg, expand_sp, SPATIAL_KETS, ("h", "v"))
+        logical_index = None
+        for pp in pol_parts:
+            for spp in sp_parts:
+                key = (
+                    "targets",
+                    pp[0] if (pp is not None and merge_pol) else pp,
+                    spp[0] if (spp is not None and merge_sp) else spp,
+                )
+                if key in keys:
+                    continue
+                try:
+                    s = _target_settings(table, pp, spp, pol_reg, sp_reg, pol_port, sp_port, merge_pol, merge_sp)
+                except OpticsError as exc:
+                    raise BenchError(f"point {r_index + 1}: {exc}", None, req.line) from None
+                if logical_index is None:
+                    logical_index = (max(logical) + 1) if logical else 0
+                keys.append(key)
+                settings.append(s)
+                logical.append(logical_index)
+                key_labels.append(
+                    _port_labels(table.ports, pp, spp, pol_reg, sp_reg, analyzes, pol_port, sp_port)
+                )
+    if not settings:
+        raise ProtocolError(f"protocol '{protocol_name}' asks for no measurement")
+    order_idx = order_settings(np.array(settings), table, order, seed)
+    return _expand_steps(
+        table, protocol_name, np.array(settings), key_labels, logical, order_idx, analyzes,
+        dwell_s, repeats, background_every, background_at_start, background_at_end,
+        background_dwell_s if background_dwell_s is not None else dwell_s,
+        reference_every, reference_dwell_s if reference_dwell_s is not None else dwell_s,
+        passes, pass_interval_s, order,
+    )
+
+
+def _explicit_settings(table: TableModel, req: Request) -> np.ndarray:
+    s = _park(table)
+    assert req.elements is not None
+    for key, value in req.elements.items():
+        name = key[:-4] if key.endswith("_deg") else key
+        if name not in ELEMENT_NAMES:
+            raise ProtocolError(f"unknown element '{key}'; expected one of {', '.join(ELEMENT_NAMES)}", None, req.line)
+        i = ELEMENT_NAMES.index(name)
+        if not table.present[i]:
+            raise BenchError(f"the protocol sets {key} but bench '{table.name}' has no {name} role", None, req.line)
+        if i == CONVERTER:
+            s[i] = CONVERTER_IN if str(value) == "in" else CONVERTER_OUT
+        else:
+            s[i] = float(value)
+    return s
+
+
+def _explicit_label(elements: Mapping[str, float | str]) -> str:
+    short = {"quarter_wave_plate": "qwp", "half_wave_plate": "hwp", "mode_converter": "conv",
+             "converter_angle": "conv_angle", "image_rotator": "rot"}
+    parts = []
+    for key, value in elements.items():
+        name = key[:-4] if key.endswith("_deg") else key
+        parts.append(f"{short.get(name, name)}={value:g}" if isinstance(value, (int, float)) else f"{short.get(name, name)}={value}")
+    return " ".join(parts)
+
+
+def _park(table: TableModel) -> np.ndarray:
+    s = np.full(len(ELEMENT_NAMES), math.nan)
+    for i in range(len(ELEMENT_NAMES)):
+        if table.present[i]:
+            s[i] = CONVERTER_OUT if i == CONVERTER else 0.0
+    return s
+
+
+def _target_settings(table, pp, spp, pol_reg, sp_reg, pol_port, sp_port, merge_pol, merge_sp) -> np.ndarray:
+    s = _park(table)
+    model = table.analyzer
+    if pp is not None:
+        b = pol_reg.bases[pp[0]]
+        ps = polarization_setting(b.ket, pol_port, model)
+        if ps.quarter_wave_plate_deg is not None:
+            s[QWP] = ps.quarter_wave_plate_deg
+        if ps.half_wave_plate_deg is not None:
+            s[HWP] = ps.half_wave_plate_deg
+    if spp is not None:
+        b = sp_reg.bases[spp[0]]
+        ss = spatial_setting(b.ket, sp_port, model)
+        if model.mode_converter is not None and table.present[CONVERTER]:
+            s[CONVERTER] = CONVERTER_IN if ss.converter_in else CONVERTER_OUT
+        elif ss.converter_in:
+            raise OpticsError("this target needs the mode converter in the beam, but the bench has no mode_converter role")
+        if ss.converter_angle_deg is not None:
+            s[CONVERTER_ANGLE] = ss.converter_angle_deg
+        if ss.image_rotator_deg is not None:
+            s[ROTATOR] = ss.image_rotator_deg
+    return s
+
+
+def _port_labels(ports, pp, spp, pol_reg, sp_reg, analyzes, pol_port, sp_port) -> tuple[str, ...]:
+    labels = []
+    for port in ports:
+        parts = []
+        if "polarization" in analyzes and pp is not None:
+            b = pol_reg.bases[pp[0]]
+            member = pp[1] if not pol_reg.merge else (0 if port.splitter_port == pol_port else 1)
+            parts.append(b.labels[member])
+        if "spatial" in analyzes and spp is not None:
+            b = sp_reg.bases[spp[0]]
+            member = spp[1] if not sp_reg.merge else (0 if port.sorter_port == sp_port else 1)
+            parts.append(b.labels[member])
+        labels.append(",".join(parts))
+    return tuple(labels)
+
+
+def _expand_steps(
+    table, protocol_name, settings, key_labels, logical, order_idx, analyzes, dwell_s, repeats,
+    bg_every, bg_start, bg_end, bg_dwell, ref_every, ref_dwell, passes, pass_interval_s, order,
+) -> Plan:
+    steps: list[Step] = []
+    violations: list[str] = []
+    position = _park(table)
+
+    def resolve(target: np.ndarray) -> np.ndarray:
+        nonlocal position
+        out = target.copy()
+        for i in STAGE_ELEMENTS:
+            if math.isnan(target[i]) or i not in table.kinematics:
+                continue
+            k = table.kinematics[i]
+            out[i] = nearest_equivalent_deg(target[i], position[i], PERIOD_DEG, k)
+            if not (k.min_deg - 1e-9 <= out[i] <= k.max_deg + 1e-9):
+                violations.append(
+                    f"{ELEMENT_NAMES[i]} at {out[i]:.3f} deg is outside its travel {k.min_deg:g}..{k.max_deg:g} deg"
+                )
+        position = out
+        return out
+
+    def add(kind, pass_index, point_index, repeat_index, s, dwell, label, port_labels):
+        steps.append(Step(len(steps), kind, pass_index, point_index, repeat_index,
+                          tuple(float(x) for x in s), float(dwell), label, tuple(port_labels)))
+
+    n_ports = len(table.ports)
+    ref_settings = settings[0]
+    ref_labels = key_labels[0]
+    for p in range(passes):
+        sequence = list(order_idx) if p % 2 == 0 else list(reversed(order_idx))
+        if bg_start and p == 0:
+            add("background", p, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
+        if ref_every > 0:
+            add("reference", p, logical[0], 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
+        for count, k in enumerate(sequence, start=1):
+            s = resolve(settings[k])
+            label = " | ".join(sorted(set(key_labels[k]))) if len(set(key_labels[k])) > 1 else key_labels[k][0]
+            for r in range(repeats):
+                add("measure", p, logical[k], r, s, dwell_s, label, key_labels[k])
+            if ref_every > 0 and count % ref_every == 0 and count < len(sequence):
+                add("reference", p, logical[0], 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
+            if bg_every > 0 and count % bg_every == 0 and count < len(sequence):
+                add("background", p, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
+        if ref_every > 0:
+            add("reference", p, logical[0], 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
+    if bg_end:
+        add("background", passes - 1, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
+    return Plan(
+        protocol_name=protocol_name,
+        bench_name=table.name,
+        element_names=ELEMENT_NAMES,
+        port_names=tuple(p.name for p in table.ports),
+        steps=tuple(steps),
+        n_settings=len(settings),
+        passes=passes,
+        pass_interval_s=float(pass_interval_s),
+        order=order,
+        violations=tuple(dict.fromkeys(violations)),
+    )

@@ -1,0 +1,88 @@
+"""Stage kinematics (pure): trapezoidal move times, backlash-aware approach, periodic plate angles.
+
+The single source of truth for how long a move takes: the dry-run estimate, the least-motion
+ordering and the simulated stages all use these functions.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+
+@dataclass(frozen=True)
+class StageKinematics:
+    """Motion parameters of one rotation stage (deg, deg/s, deg/s^2, s)."""
+
+    speed_deg_per_s: float
+    acceleration_deg_per_s2: float
+    backlash_deg: float = 0.0
+    settle_s: float = 0.0
+    min_deg: float = -math.inf
+    max_deg: float = math.inf
+    overhead_s: float = 0.0
+
+
+def move_time_s(distance_deg: float, speed_deg_per_s: float, acceleration_deg_per_s2: float) -> float:
+    """Duration of a point-to-point move with a trapezoidal (or triangular) velocity profile, s.
+
+    Accelerates at ``acceleration_deg_per_s2`` up to ``speed_deg_per_s``, cruises, decelerates;
+    short moves never reach cruise speed and take 2 sqrt(d / a). Zero distance takes no time.
+    """
+    d = abs(distance_deg)
+    if d == 0.0:
+        return 0.0
+    v, a = speed_deg_per_s, acceleration_deg_per_s2
+    if not math.isfinite(a) or a <= 0:
+        return d / v
+    d_ramp = v * v / a  # distance spent accelerating and decelerating to and from v
+    if d <= d_ramp:
+        return 2.0 * math.sqrt(d / a)
+    return 2.0 * v / a + (d - d_ramp) / v
+
+
+def approach_path(start_deg: float, target_deg: float, backlash_deg: float) -> tuple[float, ...]:
+    """Waypoints that make every move end travelling in the positive direction.
+
+    A move in the negative direction overshoots by twice the backlash and comes back, so the gear
+    play is always taken up on the same side and a target means the same optical angle whatever the
+    previous position.
+    """
+    if backlash_deg <= 0.0 or target_deg >= start_deg - 1e-12:
+        return (target_deg,)
+    return (target_deg - 2.0 * backlash_deg, target_deg)
+
+
+def path_time_s(start_deg: float, target_deg: float, k: StageKinematics) -> float:
+    """Time to reach ``target_deg`` from ``start_deg`` along approach_path, settling included."""
+    if abs(target_deg - start_deg) < 1e-12:
+        return 0.0
+    t, here = 0.0, start_deg
+    for waypoint in approach_path(start_deg, target_deg, k.backlash_deg):
+        t += move_time_s(waypoint - here, k.speed_deg_per_s, k.acceleration_deg_per_s2) + k.overhead_s
+        here = waypoint
+    return t + k.settle_s
+
+
+def path_travel_deg(start_deg: float, target_deg: float, backlash_deg: float) -> float:
+    """Total angle travelled along approach_path, deg."""
+    total, here = 0.0, start_deg
+    for waypoint in approach_path(start_deg, target_deg, backlash_deg):
+        total += abs(waypoint - here)
+        here = waypoint
+    return total
+
+
+def nearest_equivalent_deg(angle_deg: float, current_deg: float, period_deg: float, k: StageKinematics) -> float:
+    """Among angle + n * period inside the travel limits (with room for the backlash overshoot),
+    the one reached fastest from ``current_deg``.
+    """
+    lo, hi = k.min_deg + 2.0 * k.backlash_deg, k.max_deg
+    base = angle_deg - period_deg * math.floor((angle_deg - current_deg) / period_deg)
+    candidates = [base + n * period_deg for n in range(-3, 3)]
+    inside = [c for c in candidates if lo - 1e-9 <= c <= hi + 1e-9]
+    if not inside:
+        inside = [c for c in candidates if k.min_deg - 1e-9 <= c <= k.max_deg + 1e-9]
+    if not inside:
+        return angle_deg
+    return min(inside, key=lambda c: (path_time_s(current_deg, c, k), abs(c)))
