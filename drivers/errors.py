@@ -48,3 +48,7 @@ class DeviceFault(InstrumentError):
 
 class IdentityMismatch(InstrumentError):
     """The ``*IDN?`` answer does not match what the bench expects."""
+
+
+class NotSupported(InstrumentError):
+    """The device cannot do what was asked: its bench configuration gives no command for it."""

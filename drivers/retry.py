@@ -1,0 +1,68 @@
+"""Bounded retry with exponential back-off for transient instrument errors; sleep is injected."""
+
+from __future__ import annotations
+
+import time
+from typing import Callable, TypeVar
+
+from drivers.errors import ConnectionLost, InstrumentError, InstrumentTimeout
+from drivers.interfaces import Device
+
+T = TypeVar("T")
+
+OnRetry = Callable[[int, InstrumentError, float], None]
+
+
+def backoff_delays_s(attempts: int, backoff_s: float, max_backoff_s: float) -> list[float]:
+    """The pauses before attempts 2..``attempts``: ``backoff_s`` doubling, capped at ``max_backoff_s``."""
+    return [min(backoff_s * 2.0**k, max_backoff_s) for k in range(max(attempts - 1, 0))]
+
+
+def call_with_retry(
+    fn: Callable[[], T],
+    attempts: int = 3,
+    backoff_s: float = 0.1,
+    max_backoff_s: float = 2.0,
+    on_retry: OnRetry | None = None,
+    sleep: Callable[[float], None] = time.sleep,
+    *,
+    device: Device | None = None,
+) -> T:
+    """Call ``fn`` until it succeeds, at most ``attempts`` times.
+
+    Only transient InstrumentErrors (timeout, garbled reply, dropped connection) are retried;
+    any other exception leaves at once. Before each new attempt: ``on_retry(attempt, error,
+    delay_s)`` where ``attempt`` is the number of the attempt that failed (1-based), then
+    ``sleep(delay_s)``, then, after ConnectionLost or InstrumentTimeout, ``device.reconnect()``
+    (a reply that timed out may still arrive and would pair with the next query). A transient
+    error from that reconnect counts as the failure of that attempt.
+
+    Returns
+    -------
+    Whatever ``fn`` returns.
+
+    Raises
+    ------
+    InstrumentError
+        The last transient error once every attempt has failed, unchanged.
+    """
+    if attempts < 1:
+        raise ValueError(f"attempts must be at least 1, got {attempts}")
+    if backoff_s < 0 or max_backoff_s < 0:
+        raise ValueError("backoff_s and max_backoff_s must be >= 0")
+    delays = backoff_delays_s(attempts, backoff_s, max_backoff_s)
+    needs_reconnect = False
+    for attempt in range(1, attempts + 1):
+        try:
+            if needs_reconnect and device is not None:
+                device.reconnect()
+            return fn()
+        except InstrumentError as error:
+            if not error.transient or attempt == attempts:
+                raise
+            needs_reconnect = isinstance(error, (ConnectionLost, InstrumentTimeout))
+            delay = delays[attempt - 1]
+            if on_retry is not None:
+                on_retry(attempt, error, delay)
+            sleep(delay)
+    raise AssertionError("unreachable: the loop returns or raises")
