@@ -1,0 +1,162 @@
+"""``lightloom validate PROTOCOL [--bench BENCH] [--json]``: check files without touching hardware or writing anything."""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import json
+from typing import Any
+
+from sequencer.bench import Bench, load_bench
+from sequencer.protocol import Protocol, load_protocol
+
+
+def add_parser(subparsers: Any) -> None:
+    parser = subparsers.add_parser(
+        "validate",
+        help="check a protocol, and optionally a bench, and print a summary",
+        description=(
+            "Read a protocol (a file or a built-in name such as joint-36) and, with --bench, a bench"
+            " (a file or a built-in name such as sim); report the first problem as FILE:LINE: message"
+            " (exit status 2) or print a summary (exit status 0). Nothing is written."
+        ),
+    )
+    parser.add_argument("protocol", metavar="PROTOCOL", help="protocol YAML file or built-in protocol name")
+    parser.add_argument("--bench", metavar="BENCH", help="bench YAML file or built-in bench name")
+    parser.add_argument("--json", action="store_true", help="print the summary as JSON")
+    parser.set_defaults(handler=run)
+
+
+def protocol_summary(protocol: Protocol) -> dict[str, Any]:
+    """The facts about a protocol that a person checks before a run, as plain data."""
+    return {
+        "name": protocol.name,
+        "file": protocol.source_path,
+        "sha256": protocol.sha256,
+        "analyzes": list(protocol.analyzes),
+        "dimension": protocol.dimension,
+        "measure": protocol.measure,
+        "points": len(protocol.points),
+        "labels": [p.label for p in protocol.points],
+        "dwell_s": protocol.dwell_s,
+        "repeats": protocol.repeats,
+        "order": protocol.order,
+        "background": {
+            "every_points": protocol.background.every_points,
+            "at_start": protocol.background.at_start,
+            "at_end": protocol.background.at_end,
+            "dwell_s": protocol.background.dwell_s,
+        },
+        "reference": {"every_points": protocol.reference.every_points, "dwell_s": protocol.reference.dwell_s},
+        "sweep": {"passes": protocol.sweep.passes, "interval_s": protocol.sweep.interval_s},
+        "target_state": protocol.target_label,
+    }
+
+
+def bench_summary(bench: Bench) -> dict[str, Any]:
+    """The facts about a bench that a person checks before a run, as plain data."""
+    return {
+        "name": bench.name,
+        "file": bench.source_path,
+        "extends": list(bench.extends),
+        "sha256": bench.sha256,
+        "simulated": bench.is_simulated,
+        "devices": {name: spec.driver for name, spec in bench.devices.items()},
+        "roles": dict(bench.roles.assigned()),
+        "detectors": [
+            {"device": p.device, "sorter_port": p.sorter_port, "splitter_port": p.splitter_port}
+            for p in bench.roles.detectors
+        ],
+    }
+
+
+def compile_check(protocol: Protocol, bench: Bench) -> dict[str, Any]:
+    """Compile against the bench when the compiler is present, to catch settings the table cannot reach.
+
+    Compile errors propagate (they are LightloomErrors: one line, exit status 2).
+    """
+    try:
+        compiler = importlib.import_module("sequencer.compiler")
+    except ModuleNotFoundError as exc:
+        if exc.name != "sequencer.compiler":
+            raise
+        compiler = None
+    compile_protocol = getattr(compiler, "compile_protocol", None)
+    if compile_protocol is None:
+        return {"checked": False, "reason": "the compiler is not available in this version"}
+    plan = compile_protocol(protocol, bench)
+    steps = getattr(plan, "steps", plan)
+    result: dict[str, Any] = {"checked": True}
+    if hasattr(steps, "__len__"):
+        result["steps"] = len(steps)
+    return result
+
+
+def _join(items: list[str]) -> str:
+    return ", ".join(items) if items else "none"
+
+
+def _row(label: str, value: str) -> str:
+    return f"  {label:<11} {value}"
+
+
+def render_text(summary: dict[str, Any]) -> str:
+    """The summary as a few aligned lines for a terminal."""
+    p = summary["protocol"]
+    bg = p["background"]
+    bg_parts = [f"every {bg['every_points']} points"] if bg["every_points"] else []
+    bg_parts += [w for w, on in (("at start", bg["at_start"]), ("at end", bg["at_end"])) if on]
+    ref = p["reference"]
+    sweep = p["sweep"]
+    labels = p["labels"][:6] + (["..."] if len(p["labels"]) > 6 else [])
+    passes = f"{sweep['passes']} pass{'es' if sweep['passes'] != 1 else ''}"
+    if sweep["interval_s"]:
+        passes += f", starts {sweep['interval_s']:g} s apart"
+    lines = [
+        f"protocol {p['name']}  ({p['file']})",
+        _row("analyzes", f"{' x '.join(p['analyzes'])} ({p['dimension']}x{p['dimension']} state)"),
+        _row("points", f"{p['points']} from {p['measure']}: {' '.join(labels)}"),
+        _row("dwell", f"{p['dwell_s']:g} s x {p['repeats']} repeats, order {p['order']}"),
+        _row("background", f"{_join(bg_parts)} ({bg['dwell_s']:g} s)" if bg_parts else "none"),
+        _row("reference", f"every {ref['every_points']} points ({ref['dwell_s']:g} s)" if ref["every_points"]
+             else "none"),
+        _row("sweep", passes),
+        _row("target", p["target_state"] or "none"),
+    ]
+    b = summary["bench"]
+    if b is not None:
+        extends = f", extends {', '.join(b['extends'])}" if b["extends"] else ""
+        detectors = [
+            f"{d['device']} ({','.join(x for x in (d['sorter_port'], d['splitter_port']) if x) or '-'})"
+            for d in b["detectors"]
+        ]
+        lines += [
+            f"bench {b['name']}  ({b['file']}{extends})",
+            _row("kind", "simulated" if b["simulated"] else "hardware"),
+            _row("devices", _join([f"{n} ({d})" for n, d in b["devices"].items()])),
+            _row("roles", _join([f"{r}={d}" for r, d in b["roles"].items()])),
+            _row("detectors", _join(detectors)),
+        ]
+        c = summary["compile"]
+        if c["checked"]:
+            lines.append(_row("compile", "ok" + (f", {c['steps']} steps" if "steps" in c else "")))
+        else:
+            lines.append(_row("compile", f"not checked: {c['reason']}"))
+    lines.append("ok")
+    return "\n".join(lines)
+
+
+def run(args: argparse.Namespace) -> int:
+    protocol = load_protocol(args.protocol)
+    bench = load_bench(args.bench) if args.bench else None
+    summary: dict[str, Any] = {
+        "protocol": protocol_summary(protocol),
+        "bench": bench_summary(bench) if bench is not None else None,
+        "compile": compile_check(protocol, bench) if bench is not None else None,
+        "ok": True,
+    }
+    if args.json:
+        print(json.dumps(summary, indent=2))
+    else:
+        print(render_text(summary))
+    return 0
