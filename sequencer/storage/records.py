@@ -1,0 +1,387 @@
+"""Plain-data records of a run: its header, each reading, each event, and readings as columns."""
+
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field, fields
+from typing import Any
+
+import numpy as np
+
+FORMAT_VERSION = 1
+
+READING_KINDS: tuple[str, ...] = ("measure", "background", "reference")
+EVENT_KINDS: tuple[str, ...] = (
+    "start", "resume", "pause", "beam_lost", "beam_back", "drift", "fault", "interrupted",
+    "complete", "note",
+)
+RUN_STATUSES: tuple[str, ...] = ("running", "complete", "interrupted", "fault")
+ANALYZERS: tuple[str, ...] = ("polarization", "spatial")
+PORT_UNITS: tuple[str, ...] = ("W", "counts")
+
+FLAG_DRIFT = 1
+"""Reading bit: the reference reading around it showed source drift beyond the protocol's limit."""
+FLAG_RETRIED = 2
+"""Reading bit: a transient instrument fault was retried before this reading succeeded."""
+FLAG_AFTER_BEAM_WAIT = 4
+"""Reading bit: taken right after the run paused for a lost beam and the beam came back."""
+FLAG_NAMES: dict[int, str] = {
+    FLAG_DRIFT: "drift flagged",
+    FLAG_RETRIED: "retried",
+    FLAG_AFTER_BEAM_WAIT: "after beam wait",
+}
+
+MODE_CONVERTER_IN = 1.0
+MODE_CONVERTER_OUT = 0.0
+ELEMENT_UNITS: dict[str, str] = {
+    "quarter_wave_plate": "deg",
+    "half_wave_plate": "deg",
+    "mode_converter": "state (1.0 = in the beam, 0.0 = out)",
+    "converter_angle": "deg",
+    "image_rotator": "deg",
+}
+
+
+def element_unit(name: str) -> str:
+    """The unit written beside an element's settings ("deg", or the converter's state code)."""
+    return ELEMENT_UNITS.get(name, "unspecified")
+
+
+def _frozen_array(value: Any, dtype: type, ndim: int, what: str) -> np.ndarray:
+    array = np.array(value, dtype=dtype, copy=True)
+    if array.ndim != ndim:
+        raise ValueError(f"{what} must have {ndim} dimension(s), got shape {array.shape}")
+    array.setflags(write=False)
+    return array
+
+
+def _same(a: Any, b: Any) -> bool:
+    if isinstance(a, np.ndarray) or isinstance(b, np.ndarray):
+        if a is None or b is None:
+            return False
+        a, b = np.asarray(a), np.asarray(b)
+        nan_aware = a.dtype.kind in "fc"
+        return (a.shape == b.shape and a.dtype == b.dtype
+                and bool(np.array_equal(a, b, equal_nan=nan_aware)))
+    if isinstance(a, float) and isinstance(b, float) and math.isnan(a) and math.isnan(b):
+        return True
+    return bool(a == b)
+
+
+def _fields_equal(left: Any, right: Any) -> bool:
+    if type(left) is not type(right):
+        return NotImplemented
+    return all(_same(getattr(left, f.name), getattr(right, f.name)) for f in fields(left))
+
+
+@dataclass(frozen=True, eq=False)
+class RunHeader:
+    """What a run is: written once when the run starts, checked again when it resumes.
+
+    ``dimension`` is the joint polarization (x) spatial dimension (4) on which the
+    measurement operators of every reading act, in the order of ``basis_labels``.
+    ``target_state`` is an optional d x d density matrix, ``extra`` any JSON-able dict.
+    """
+
+    format_version: int
+    tool_version: str
+    created_utc: str
+    protocol_name: str
+    protocol_text: str
+    protocol_sha256: str
+    bench_name: str
+    bench_text: str
+    bench_sha256: str
+    simulated: bool
+    analyzes: tuple[str, ...]
+    element_names: tuple[str, ...]
+    port_names: tuple[str, ...]
+    port_units: str
+    dimension: int
+    basis_labels: tuple[str, ...]
+    steps_total: int
+    plan_json: str
+    target_state: np.ndarray | None = None
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        for name in ("analyzes", "element_names", "port_names", "basis_labels"):
+            object.__setattr__(self, name, tuple(str(v) for v in getattr(self, name)))
+        object.__setattr__(self, "simulated", bool(self.simulated))
+        for name in ("format_version", "dimension", "steps_total"):
+            object.__setattr__(self, name, int(getattr(self, name)))
+        unknown = set(self.analyzes) - set(ANALYZERS)
+        if unknown:
+            raise ValueError(f"analyzes holds {sorted(unknown)}; expected some of {ANALYZERS}")
+        if self.port_units not in PORT_UNITS:
+            raise ValueError(f"port_units is {self.port_units!r}; expected one of {PORT_UNITS}")
+        if not self.port_names:
+            raise ValueError("port_names is empty; a run needs at least one detector port")
+        if len(self.basis_labels) != self.dimension:
+            raise ValueError(
+                f"basis_labels has {len(self.basis_labels)} labels for dimension {self.dimension}"
+            )
+        if self.target_state is not None:
+            target = _frozen_array(self.target_state, np.complex128, 2, "target_state")
+            if target.shape != (self.dimension, self.dimension):
+                raise ValueError(
+                    f"target_state has shape {target.shape}; expected "
+                    f"({self.dimension}, {self.dimension})"
+                )
+            object.__setattr__(self, "target_state", target)
+        try:
+            object.__setattr__(self, "extra", json.loads(json.dumps(dict(self.extra))))
+        except (TypeError, ValueError) as exc:
+            raise ValueError(f"extra must be a JSON-able dict: {exc}") from exc
+
+    __eq__ = _fields_equal
+
+    def to_json_dict(self) -> dict[str, Any]:
+        """The header as JSON-able plain data (complex target as ``{"real", "imag"}`` lists)."""
+        out: dict[str, Any] = {f.name: getattr(self, f.name) for f in fields(self)}
+        for name in ("analyzes", "element_names", "port_names", "basis_labels"):
+            out[name] = list(out[name])
+        if self.target_state is not None:
+            out["target_state"] = {
+                "real": self.target_state.real.tolist(),
+                "imag": self.target_state.imag.tolist(),
+            }
+        return out
+
+    @classmethod
+    def from_json_dict(cls, data: dict[str, Any]) -> RunHeader:
+        """Inverse of :meth:`to_json_dict`; raises KeyError or ValueError on a bad dict."""
+        values = {f.name: data[f.name] for f in fields(cls) if f.name in data}
+        target = values.get("target_state")
+        if target is not None:
+            values["target_state"] = np.asarray(target["real"]) + 1j * np.asarray(target["imag"])
+        return cls(**values)
+
+
+@dataclass(frozen=True, eq=False)
+class Reading:
+    """One reading of every detector port at one analyzer setting.
+
+    ``commanded`` and ``readback`` hold one value per element of the header's
+    ``element_names`` (deg, mode converter 1.0 in / 0.0 out, NaN where unused);
+    ``values`` one per port (W or counts); ``operators`` (n_ports, d, d) the POVM
+    element each port's reading estimates; ``t_start``/``t_end`` UNIX seconds;
+    ``flags`` a bitmask of the ``FLAG_*`` constants.
+    """
+
+    step_index: int
+    kind: str
+    pass_index: int
+    point_index: int
+    repeat_index: int
+    commanded: np.ndarray
+    readback: np.ndarray
+    values: np.ndarray
+    reference_w: float
+    operators: np.ndarray
+    dwell_s: float
+    t_start: float
+    t_end: float
+    flags: int = 0
+
+    def __post_init__(self) -> None:
+        if self.kind not in READING_KINDS:
+            raise ValueError(f"reading kind {self.kind!r}; expected one of {READING_KINDS}")
+        for name in ("step_index", "pass_index", "point_index", "repeat_index", "flags"):
+            object.__setattr__(self, name, int(getattr(self, name)))
+        for name in ("reference_w", "dwell_s", "t_start", "t_end"):
+            object.__setattr__(self, name, float(getattr(self, name)))
+        for name in ("commanded", "readback", "values"):
+            object.__setattr__(self, name, _frozen_array(getattr(self, name), np.float64, 1, name))
+        operators = _frozen_array(self.operators, np.complex128, 3, "operators")
+        if operators.shape[0] != self.values.shape[0] or operators.shape[1] != operators.shape[2]:
+            raise ValueError(
+                f"operators has shape {operators.shape}; expected ({self.values.shape[0]}, d, d)"
+            )
+        object.__setattr__(self, "operators", operators)
+
+    __eq__ = _fields_equal
+
+
+@dataclass(frozen=True, eq=False)
+class Event:
+    """Something that happened during a run: ``t`` UNIX seconds, ``kind`` one of EVENT_KINDS."""
+
+    t: float
+    kind: str
+    message: str = ""
+
+    def __post_init__(self) -> None:
+        if self.kind not in EVENT_KINDS:
+            raise ValueError(f"event kind {self.kind!r}; expected one of {EVENT_KINDS}")
+        object.__setattr__(self, "t", float(self.t))
+        object.__setattr__(self, "message", str(self.message))
+
+    __eq__ = _fields_equal
+
+
+_INT_COLUMNS = ("step_index", "pass_index", "point_index", "repeat_index", "flags")
+_FLOAT_COLUMNS = ("reference_w", "dwell_s", "t_start", "t_end")
+
+
+@dataclass(frozen=True, eq=False)
+class ReadingTable:
+    """Readings as columns: row i of every array is reading i, in the order they were taken.
+
+    Integer columns are int64, ``kind`` a str array, ``commanded``/``readback``
+    (n, n_elements) float64, ``values`` (n, n_ports) float64, ``operators``
+    (n, n_ports, d, d) complex128, times in UNIX seconds.
+    """
+
+    element_names: tuple[str, ...]
+    port_names: tuple[str, ...]
+    step_index: np.ndarray
+    kind: np.ndarray
+    pass_index: np.ndarray
+    point_index: np.ndarray
+    repeat_index: np.ndarray
+    commanded: np.ndarray
+    readback: np.ndarray
+    values: np.ndarray
+    reference_w: np.ndarray
+    operators: np.ndarray
+    dwell_s: np.ndarray
+    t_start: np.ndarray
+    t_end: np.ndarray
+    flags: np.ndarray
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "element_names", tuple(self.element_names))
+        object.__setattr__(self, "port_names", tuple(self.port_names))
+        n = len(self.step_index)
+        for f in fields(self)[2:]:
+            column = getattr(self, f.name)
+            if len(column) != n:
+                raise ValueError(f"column {f.name} has {len(column)} rows; step_index has {n}")
+
+    __eq__ = _fields_equal
+
+    def __len__(self) -> int:
+        return len(self.step_index)
+
+    @property
+    def dimension(self) -> int:
+        """Dimension d of the space the operators act on."""
+        return int(self.operators.shape[-1])
+
+    @property
+    def kind_code(self) -> np.ndarray:
+        """``kind`` as uint8 codes: the index into READING_KINDS."""
+        codes = np.zeros(len(self), dtype=np.uint8)
+        for code, name in enumerate(READING_KINDS):
+            codes[self.kind == name] = code
+        return codes
+
+    @property
+    def steps_done(self) -> int:
+        """Number of distinct step indices with at least one reading."""
+        return int(np.unique(self.step_index).size)
+
+    def of_kind(self, kind: str) -> np.ndarray:
+        """Boolean mask of the rows of one kind ("measure", "background" or "reference")."""
+        if kind not in READING_KINDS:
+            raise ValueError(f"reading kind {kind!r}; expected one of {READING_KINDS}")
+        return self.kind == kind
+
+    def commanded_of(self, element: str) -> np.ndarray:
+        """The commanded column of one element (deg, or converter state code)."""
+        return self.commanded[:, self.element_names.index(element)]
+
+    def readback_of(self, element: str) -> np.ndarray:
+        """The read-back column of one element (deg, or converter state code)."""
+        return self.readback[:, self.element_names.index(element)]
+
+    def select(self, rows: np.ndarray | slice) -> ReadingTable:
+        """A table of the chosen rows (a boolean mask, an index array or a slice)."""
+        taken = {f.name: getattr(self, f.name)[rows] for f in fields(self)[2:]}
+        return ReadingTable(self.element_names, self.port_names, **taken)
+
+    def row(self, i: int) -> Reading:
+        """Reading number i as a :class:`Reading`."""
+        return Reading(
+            step_index=int(self.step_index[i]), kind=str(self.kind[i]),
+            pass_index=int(self.pass_index[i]), point_index=int(self.point_index[i]),
+            repeat_index=int(self.repeat_index[i]), commanded=self.commanded[i],
+            readback=self.readback[i], values=self.values[i],
+            reference_w=float(self.reference_w[i]), operators=self.operators[i],
+            dwell_s=float(self.dwell_s[i]), t_start=float(self.t_start[i]),
+            t_end=float(self.t_end[i]), flags=int(self.flags[i]),
+        )
+
+    def rows(self) -> Iterable[Reading]:
+        """Every reading in order, as :class:`Reading` records."""
+        return (self.row(i) for i in range(len(self)))
+
+    @classmethod
+    def empty(
+        cls, element_names: Sequence[str], port_names: Sequence[str], dimension: int
+    ) -> ReadingTable:
+        """A table with no rows and the right column shapes."""
+        n_el, n_ports = len(element_names), len(port_names)
+        return cls(
+            element_names, port_names,
+            **{name: np.zeros(0, np.int64) for name in _INT_COLUMNS},
+            kind=np.zeros(0, dtype="<U10"),
+            commanded=np.zeros((0, n_el)), readback=np.zeros((0, n_el)),
+            values=np.zeros((0, n_ports)),
+            operators=np.zeros((0, n_ports, dimension, dimension), np.complex128),
+            **{name: np.zeros(0) for name in _FLOAT_COLUMNS},
+        )
+
+    @classmethod
+    def from_readings(
+        cls, readings: Sequence[Reading], element_names: Sequence[str],
+        port_names: Sequence[str], dimension: int,
+    ) -> ReadingTable:
+        """Stack :class:`Reading` records into columns (shapes checked against the names)."""
+        if not readings:
+            return cls.empty(element_names, port_names, dimension)
+        n_el, n_ports = len(element_names), len(port_names)
+        for r in readings:
+            if (r.commanded.shape != (n_el,) or r.readback.shape != (n_el,)
+                    or r.operators.shape != (n_ports, dimension, dimension)):
+                raise ValueError(
+                    f"reading of step {r.step_index} does not fit {n_el} elements, "
+                    f"{n_ports} ports, dimension {dimension}"
+                )
+        return cls(
+            element_names, port_names,
+            **{name: np.array([getattr(r, name) for r in readings], np.int64)
+               for name in _INT_COLUMNS},
+            kind=np.array([r.kind for r in readings], dtype="<U10"),
+            commanded=np.stack([r.commanded for r in readings]),
+            readback=np.stack([r.readback for r in readings]),
+            values=np.stack([r.values for r in readings]),
+            operators=np.stack([r.operators for r in readings]),
+            **{name: np.array([getattr(r, name) for r in readings], np.float64)
+               for name in _FLOAT_COLUMNS},
+        )
+
+
+@dataclass(frozen=True, eq=False)
+class RunData:
+    """A whole run as read back: header, readings as columns, events, status and message.
+
+    ``source`` says where it was read from: "runfile" (the .h5 alone) or "journal".
+    """
+
+    header: RunHeader
+    readings: ReadingTable
+    events: tuple[Event, ...]
+    status: str
+    message: str
+    source: str = "runfile"
+
+    __eq__ = _fields_equal
+
+    @property
+    def steps_done(self) -> int:
+        """Number of distinct step indices with at least one reading."""
+        return self.readings.steps_done

@@ -1,0 +1,140 @@
+"""Storage records: validation, JSON form of the header, readings as columns; shared builders."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import replace
+
+import numpy as np
+import pytest
+
+from sequencer.storage import (
+    FLAG_DRIFT, FLAG_RETRIED, Event, Reading, ReadingTable, RunHeader,
+)
+
+ELEMENTS = ("quarter_wave_plate", "half_wave_plate", "mode_converter", "converter_angle",
+            "image_rotator")
+PORTS = ("det_hh", "det_hv", "det_vh", "det_vv")
+BASIS = ("H,h", "H,v", "V,h", "V,v")
+
+
+def make_header(steps_total: int = 100, *, target: bool = True, ports=PORTS, name="joint16"):
+    """A header like a joint run's: five elements, four ports, a target state."""
+    protocol = f"name: {name}\nsettings: [H, V]\n"
+    bench = "extends: sim\nsimulation: {seed: 3}\n"
+    target_state = None
+    if target:
+        ket = np.array([1, 0, 0, 1j]) / np.sqrt(2)
+        target_state = np.outer(ket, ket.conj())
+    return RunHeader(
+        format_version=1, tool_version="0.1.0", created_utc="2026-03-04T05:06:07+00:00",
+        protocol_name=name, protocol_text=protocol,
+        protocol_sha256=hashlib.sha256(protocol.encode()).hexdigest(),
+        bench_name="sim", bench_text=bench, bench_sha256=hashlib.sha256(bench.encode()).hexdigest(),
+        simulated=True, analyzes=("polarization", "spatial"), element_names=ELEMENTS,
+        port_names=tuple(ports), port_units="W", dimension=4, basis_labels=BASIS,
+        steps_total=steps_total, plan_json=json.dumps([{"step": i} for i in range(3)]),
+        target_state=target_state, extra={"port_labels": {"det_hh": "H,h"}, "note": "ünïcode"},
+    )
+
+
+def make_reading(i: int, n_ports: int = len(PORTS), kind: str = "measure") -> Reading:
+    """Reading i, with every value derived from i so that a mixed-up row is visible."""
+    commanded = np.array([i, i + 0.25, 1.0, np.nan, -i], dtype=float)
+    ops = (np.arange(n_ports * 16).reshape(n_ports, 4, 4) + i) * (1 - 0.5j)
+    return Reading(
+        step_index=i, kind=kind, pass_index=i // 10, point_index=i % 10, repeat_index=i % 2,
+        commanded=commanded, readback=commanded + 0.001, values=np.arange(n_ports) + 1e-3 * i,
+        reference_w=np.nan if i % 3 else 1e-3 + i, operators=ops, dwell_s=0.1 + i,
+        t_start=1.7e9 + i, t_end=1.7e9 + i + 0.5, flags=(FLAG_DRIFT if i % 2 else FLAG_RETRIED),
+    )
+
+
+def test_reading_rejects_unknown_kind():
+    with pytest.raises(ValueError, match="reading kind"):
+        make_reading(0, kind="dark")
+
+
+def test_reading_operators_must_match_port_count():
+    good = make_reading(0)
+    with pytest.raises(ValueError, match="operators"):
+        Reading(0, "measure", 0, 0, 0, good.commanded, good.readback, good.values[:2], np.nan,
+                good.operators, 0.1, 0.0, 0.1)
+
+
+def test_reading_arrays_are_read_only_copies():
+    values = np.array([1.0, 2.0, 3.0, 4.0])
+    r = make_reading(0)
+    r2 = Reading(0, "measure", 0, 0, 0, r.commanded, r.readback, values, np.nan, r.operators,
+                 0.1, 0.0, 0.1)
+    values[0] = 99.0
+    assert r2.values[0] == 1.0
+    with pytest.raises(ValueError):
+        r2.values[0] = 5.0
+
+
+def test_readings_compare_equal_field_by_field_with_nan():
+    assert make_reading(3) == make_reading(3)
+    assert make_reading(3) != make_reading(4)
+
+
+def test_event_rejects_unknown_kind():
+    with pytest.raises(ValueError, match="event kind"):
+        Event(0.0, "explosion", "")
+
+
+def test_header_rejects_target_of_wrong_shape():
+    with pytest.raises(ValueError, match="target_state"):
+        replace(make_header(), target_state=np.eye(2))
+
+
+def test_header_rejects_unknown_analyzer():
+    with pytest.raises(ValueError, match="analyzes"):
+        replace(make_header(), analyzes=("orbital",))
+
+
+def test_header_rejects_extra_that_is_not_json():
+    with pytest.raises(ValueError, match="JSON"):
+        replace(make_header(), extra={"x": object()})
+
+
+def test_header_json_dict_round_trips_exactly():
+    header = make_header()
+    text = json.dumps(header.to_json_dict())
+    assert RunHeader.from_json_dict(json.loads(text)) == header
+
+
+def test_header_without_target_round_trips():
+    header = make_header(target=False)
+    assert RunHeader.from_json_dict(json.loads(json.dumps(header.to_json_dict()))) == header
+
+
+def test_table_rows_give_back_the_readings():
+    readings = [make_reading(i) for i in range(7)]
+    table = ReadingTable.from_readings(readings, ELEMENTS, PORTS, 4)
+    assert list(table.rows()) == readings
+    assert table.values.shape == (7, 4) and table.operators.shape == (7, 4, 4, 4)
+    assert table.operators.dtype == np.complex128 and table.step_index.dtype == np.int64
+
+
+def test_table_steps_done_counts_distinct_step_indices():
+    readings = [make_reading(i) for i in (0, 1, 1, 2, 2, 2)]
+    assert ReadingTable.from_readings(readings, ELEMENTS, PORTS, 4).steps_done == 3
+
+
+def test_table_column_of_an_element_by_name():
+    table = ReadingTable.from_readings([make_reading(i) for i in range(3)], ELEMENTS, PORTS, 4)
+    np.testing.assert_array_equal(table.commanded_of("half_wave_plate"), [0.25, 1.25, 2.25])
+
+
+def test_table_select_by_kind_mask():
+    readings = [make_reading(0), make_reading(1, kind="background"), make_reading(2)]
+    table = ReadingTable.from_readings(readings, ELEMENTS, PORTS, 4)
+    measured = table.select(table.of_kind("measure"))
+    np.testing.assert_array_equal(measured.step_index, [0, 2])
+
+
+def test_table_from_readings_rejects_reading_of_another_shape():
+    with pytest.raises(ValueError, match="does not fit"):
+        ReadingTable.from_readings([make_reading(0, n_ports=2)], ELEMENTS, PORTS, 4)
