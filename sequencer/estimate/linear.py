@@ -1,0 +1,154 @@
+"""Linear-inversion state estimate and the projections onto density matrices and onto the positive cone."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from sequencer.estimate.errors import EstimationError
+from sequencer.estimate.hermitian import check_operators, check_values, hermitian_part, to_matrix, to_vector
+
+
+@dataclass(frozen=True)
+class LinearResult:
+    """Linear-inversion estimate of one data set.
+
+    Attributes
+    ----------
+    rho : ndarray (d, d) complex. T / tr T; Hermitian with unit trace, but it may have negative
+        eigenvalues (use `closest_density_matrix` or the maximum-likelihood estimators).
+    intensity : float. tr T, the overall scale of the readings (counts or W per unit-trace state).
+    """
+
+    rho: np.ndarray
+    intensity: float
+
+
+@dataclass(frozen=True)
+class LinearBatchResult:
+    """Linear-inversion estimates of many data sets: rho (batch, d, d), intensity (batch,)."""
+
+    rho: np.ndarray
+    intensity: np.ndarray
+
+
+def project_simplex(values: np.ndarray) -> np.ndarray:
+    """Euclidean projection of each row of `values` (..., d) onto the probability simplex.
+
+    Held, Wolfe, Crowder, Math. Program. 6, 62 (1974); applied to eigenvalues this is the
+    projection of Smolin, Gambetta, Smith, PRL 108, 070502 (2012).
+    """
+    lam = np.asarray(values, dtype=float)
+    d = lam.shape[-1]
+    u = -np.sort(-lam, axis=-1)
+    css = np.cumsum(u, axis=-1) - 1.0
+    k = np.arange(1, d + 1)
+    keep = u - css / k > 0
+    # the last index where the condition holds (it always holds at index 0)
+    r = d - 1 - np.argmax(keep[..., ::-1], axis=-1)
+    theta = np.take_along_axis(css, r[..., None], axis=-1) / (r[..., None] + 1)
+    return np.maximum(lam - theta, 0.0)
+
+
+def closest_density_matrix(matrices: np.ndarray) -> np.ndarray:
+    """The density matrix nearest in Frobenius norm to each Hermitian matrix (..., d, d).
+
+    Smolin, Gambetta, Smith, PRL 108, 070502 (2012): keep the eigenvectors and project the
+    eigenvalues onto the probability simplex. For a unit-trace input this is their algorithm
+    (drop the most negative eigenvalues and share their weight equally among the rest); for
+    any other trace it is the same Euclidean projection onto {rho >= 0, tr rho = 1}.
+    """
+    w, v = np.linalg.eigh(hermitian_part(np.asarray(matrices, dtype=complex)))
+    lam = project_simplex(w)
+    return (v * lam[..., None, :]) @ np.conj(np.swapaxes(v, -1, -2))
+
+
+def closest_positive(matrices: np.ndarray) -> np.ndarray:
+    """The positive semidefinite matrix nearest in Frobenius norm to each Hermitian matrix (..., d, d).
+
+    Negative eigenvalues set to zero (Higham, Linear Algebra Appl. 103, 103 (1988)).
+    """
+    w, v = np.linalg.eigh(hermitian_part(np.asarray(matrices, dtype=complex)))
+    return (v * np.maximum(w, 0.0)[..., None, :]) @ np.conj(np.swapaxes(v, -1, -2))
+
+
+def design_matrix(operators: np.ndarray) -> np.ndarray:
+    """Real matrix A (n, d*d) with A @ to_vector(T) = [tr(T E_i)] for Hermitian T."""
+    return to_vector(operators)
+
+
+def least_squares_operator(design: np.ndarray, weights: np.ndarray | None = None) -> tuple[np.ndarray, int]:
+    """Weighted least-squares solution operator P (d*d, n) with x = P @ v, and the rank of the design.
+
+    Minimises sum_i w_i (v_i - (A x)_i)^2; with a rank-deficient design the minimum-norm solution.
+    """
+    if weights is None:
+        w_sqrt = np.ones(design.shape[0])
+    else:
+        w_sqrt = np.sqrt(weights)
+    weighted = design * w_sqrt[:, None]
+    pinv = np.linalg.pinv(weighted, rcond=1e-10)
+    rank = int(np.linalg.matrix_rank(weighted, tol=1e-10 * max(np.linalg.norm(weighted, 2), 1e-300)))
+    return pinv * w_sqrt[None, :], rank
+
+
+def _weights_from_sigma(sigma: np.ndarray | None, n: int) -> np.ndarray | None:
+    if sigma is None:
+        return None
+    s = np.asarray(sigma, dtype=float)
+    if s.shape != (n,):
+        raise EstimationError(f"sigma must have one entry per measurement operator, shape ({n},); got {s.shape}")
+    if not np.all(np.isfinite(s)) or np.any(s <= 0):
+        raise EstimationError("every sigma (spread of a reading) must be finite and > 0; check the noise estimates")
+    return 1.0 / s**2
+
+
+def linear_inversion_batch(
+    operators: np.ndarray, values: np.ndarray, sigma: np.ndarray | None = None
+) -> LinearBatchResult:
+    """Linear inversion of many data sets taken with the same operators.
+
+    Solves min_T sum_i w_i (v_i - tr(T E_i))^2 over Hermitian T (w_i = 1 / sigma_i^2, or 1 without
+    sigma), then rho = T / tr T, intensity = tr T. James, Kwiat, Munro, White, PRA 64, 052312 (2001)
+    for the two-qubit case.
+
+    Parameters
+    ----------
+    operators : ndarray (n, d, d). Measurement operators E_i (positive semidefinite).
+    values : ndarray (batch, n) or (n,). Readings (counts, or W).
+    sigma : ndarray (n,), optional. Spread of each reading, same units as values.
+
+    Raises
+    ------
+    EstimationError
+        if the operators do not determine a d x d state (rank < d*d) or tr T <= 0.
+    """
+    e = check_operators(operators)
+    n, d = e.shape[0], e.shape[1]
+    v = check_values(values, n)
+    solve, rank = least_squares_operator(design_matrix(e), _weights_from_sigma(sigma, n))
+    if rank < d * d:
+        raise EstimationError(
+            f"the {n} measurement operators determine only {rank} of the {d * d} real parameters of a "
+            f"{d}x{d} state; linear inversion needs an informationally complete set (use more settings, "
+            "or the maximum-likelihood estimator)"
+        )
+    t = to_matrix(v @ solve.T)
+    intensity = np.real(np.trace(t, axis1=-2, axis2=-1))
+    if np.any(intensity <= 0):
+        bad = int(np.argmax(intensity <= 0))
+        raise EstimationError(
+            f"data set {bad}: the readings give a state of zero or negative total intensity "
+            f"({intensity[bad]:.3g}); check background subtraction and that the beam was on"
+        )
+    return LinearBatchResult(rho=t / intensity[:, None, None], intensity=intensity)
+
+
+def linear_inversion(operators: np.ndarray, values: np.ndarray, sigma: np.ndarray | None = None) -> LinearResult:
+    """Linear inversion of one data set; see `linear_inversion_batch`. values : ndarray (n,)."""
+    v = np.asarray(values, dtype=float)
+    if v.ndim != 1:
+        raise EstimationError(f"values of one data set must have shape (n,); got {v.shape}")
+    batch = linear_inversion_batch(operators, v, sigma)
+    return LinearResult(rho=batch.rho[0], intensity=float(batch.intensity[0]))
