@@ -308,7 +308,11 @@ class MessageRotationStage(MessageDevice, RotationStage):
 
 
 class MessageActuator(MessageDevice, DiscreteActuator):
-    """A device with named states; ``state_map`` translates the bench's names to the instrument's."""
+    """A device with named states; ``state_map`` translates the bench's names to the instrument's.
+
+    The states are, in order of precedence: ``limits.states`` (what the bench allows),
+    ``options.states``, or what ``commands.states`` reports at connect.
+    """
 
     def __init__(self, *args: Any, **kwargs: Any) -> None:
         super().__init__(*args, **kwargs)
@@ -316,8 +320,11 @@ class MessageActuator(MessageDevice, DiscreteActuator):
         self._from_instrument = {v: k for k, v in self._to_instrument.items()}
         self._reported_states: tuple[str, ...] | None = None
 
+    def _configured_states(self) -> tuple[str, ...] | None:
+        return self.config.limits.get("states", self.config.kind_options["states"])
+
     def _on_connect(self) -> None:
-        if self.config.kind_options["states"] is None:
+        if self._configured_states() is None:
             names = self._parsed("states", parse_list)
             self._reported_states = tuple(self._from_instrument.get(n, n) for n in names)
 
@@ -326,7 +333,7 @@ class MessageActuator(MessageDevice, DiscreteActuator):
 
     @property
     def states(self) -> tuple[str, ...]:
-        configured = self.config.kind_options["states"]
+        configured = self._configured_states()
         if configured is not None:
             return tuple(configured)
         self._ensure_connected()

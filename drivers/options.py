@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import math
 import re
@@ -76,6 +77,8 @@ STAGE_LIMIT_KEYS = (
     "acceleration_deg_per_s2",
     "backlash_deg",
 )
+# An actuator's limits are the states the bench allows it to take.
+ACTUATOR_LIMIT_KEYS = ("states",)
 
 
 class DriverConfigError(ValueError):
@@ -351,7 +354,12 @@ def check_options(kind_family: str, options: Mapping[str, Any]) -> None:
 
 
 def check_limits(kind_family: str, limits: Mapping[str, Any] | None) -> None:
-    """Validate a device's ``limits`` for driver ``kind_family``; raises DriverConfigError."""
+    """Validate a device's ``limits`` (a mapping or a dataclass) for driver ``kind_family``.
+
+    A rotation stage takes min_deg, max_deg (or travel_deg: [min, max]), speed_deg_per_s,
+    acceleration_deg_per_s2 and backlash_deg; an actuator takes states; other kinds none.
+    Raises DriverConfigError.
+    """
     _, kind = split_driver(kind_family)
     _limits(kind, limits)
 
@@ -394,6 +402,7 @@ def _parse(
     if "identity" not in options:
         values["identity"] = f"lightloom,SIM-{_IDN_KIND[kind]}"
     fields = values["fields"]
+    parsed_limits = _limits(kind, limits)
     commands = _commands(kind, options.get("commands"), fields)
     reply_scale = _per_query(kind, "reply_scale", options.get("reply_scale"), _scale)
     reply_pattern = _per_query(kind, "reply_pattern", options.get("reply_pattern"), _regex)
@@ -416,9 +425,15 @@ def _parse(
             "or set verify: false",
             "options.verify",
         )
-    if kind == "actuator" and values["states"] is None and commands["states"] is None:
+    if (
+        kind == "actuator"
+        and values["states"] is None
+        and commands["states"] is None
+        and "states" not in parsed_limits
+    ):
         raise DriverConfigError(
-            "an actuator needs its states: give options.states or commands.states",
+            "an actuator needs its states: give the bench's states, options.states or "
+            "commands.states",
             "options.states",
         )
     line = LineSettings(
@@ -451,7 +466,7 @@ def _parse(
         poll_interval_s=values["poll_interval_s"],
         settle_s=values["settle_s"],
         kind_options=kind_options,
-        limits=_limits(kind, limits),
+        limits=parsed_limits,
     )
 
 
@@ -552,12 +567,14 @@ def _per_query(
     return MappingProxyType({op: value for op in queries})
 
 
-def _limits(kind: str, limits: Mapping[str, Any] | None) -> Mapping[str, Any]:
+def _limits(kind: str, limits: Any) -> Mapping[str, Any]:
     if limits is None:
         return MappingProxyType({})
+    if dataclasses.is_dataclass(limits) and not isinstance(limits, type):
+        limits = dataclasses.asdict(limits)
     if not isinstance(limits, Mapping):
         raise DriverConfigError(f"limits of a {kind} must be a mapping", "limits")
-    valid = STAGE_LIMIT_KEYS if kind == "rotation_stage" else ()
+    valid = {"rotation_stage": STAGE_LIMIT_KEYS, "actuator": ACTUATOR_LIMIT_KEYS}.get(kind, ())
     out: dict[str, Any] = {}
     for key, value in limits.items():
         path = f"limits.{key}"
@@ -573,6 +590,10 @@ def _limits(kind: str, limits: Mapping[str, Any] | None) -> Mapping[str, Any]:
             ) != 2:
                 raise _fail(path, "a list [min_deg, max_deg]", value)
             out[key] = (_number(f"{path}[0]", value[0]), _number(f"{path}[1]", value[1]))
+        elif key == "states":
+            out[key] = _string_list(path, value)
+            if not out[key]:
+                raise _fail(path, "a non-empty list of state names", value)
         elif key in ("min_deg", "max_deg"):
             out[key] = _number(path, value)
         elif key == "backlash_deg":

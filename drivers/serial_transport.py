@@ -64,7 +64,7 @@ class SerialTransport(LineTransport):
     def close(self) -> None:
         port, self._port = self._port, None
         if port is not None:
-            _close_port(port)
+            close_port_quickly(port)
 
     def write_line(self, command: str) -> None:
         port = self._port
@@ -110,8 +110,8 @@ def _disable_nagle(port: Any) -> None:
         sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
 
 
-def _close_port(port: Any) -> None:
-    """Close ``port`` without pyserial's 0.3 s pause after closing a socket:// URL.
+def close_port_quickly(port: Any) -> None:
+    """Close a pyserial ``port`` without its 0.3 s pause after closing a socket:// URL.
 
     That pause only gives a server time before a quick re-open; a reconnect here opens a new
     connection anyway, and the pause would add 0.3 s to every recovery.

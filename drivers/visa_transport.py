@@ -13,6 +13,7 @@ from pyvisa.errors import VisaIOError
 
 from drivers.errors import InstrumentError
 from drivers.options import LineSettings
+from drivers.serial_transport import close_port_quickly
 from drivers.transport import LineTransport
 
 _PARITY = {
@@ -107,6 +108,9 @@ class VisaTransport(LineTransport):
         resource, self._resource = self._resource, None
         if resource is not None:
             try:
+                interface = _session_interface(resource)
+                if isinstance(getattr(interface, "_socket", None), socket.socket):
+                    close_port_quickly(interface)
                 resource.close()
             except Exception:  # a dead session may fail to close in any way; it is gone either way
                 pass

@@ -216,6 +216,7 @@ class FakeLineServer:
     def __post_init__(self) -> None:
         self._lock = threading.Lock()
         self._listener: socket.socket | None = None
+        self._placeholder: socket.socket | None = None
         self._connections: list[socket.socket] = []
         self._threads: list[threading.Thread] = []
 
@@ -226,19 +227,36 @@ class FakeLineServer:
         listener.listen(8)
         self.port = listener.getsockname()[1]
         self._listener = listener
+        if self._placeholder is not None:
+            self._placeholder.close()
+            self._placeholder = None
         thread = threading.Thread(target=self._accept_loop, args=(listener,), daemon=True)
         thread.start()
         self._threads.append(thread)
         return self
 
     def stop(self) -> None:
+        """Stop serving. The port stays bound, not listening (connections are refused), so that
+        no other test's server takes it before ``start()`` listens on it again."""
         listener, self._listener = self._listener, None
         if listener is not None:
+            if self._placeholder is None:
+                placeholder = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+                placeholder.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+                self._placeholder = placeholder
             _close_socket(listener)
+            self._placeholder.bind(("127.0.0.1", self.port))
         with self._lock:
             connections, self._connections = self._connections, []
         for connection in connections:
             _close_socket(connection)
+
+    def shutdown(self) -> None:
+        """Stop serving and release the port."""
+        self.stop()
+        if self._placeholder is not None:
+            self._placeholder.close()
+            self._placeholder = None
 
     def drop_connections(self) -> None:
         """Close every open connection but keep listening."""
@@ -316,3 +334,59 @@ def _close_socket(sock: socket.socket) -> None:
     except OSError:
         pass
     sock.close()
+
+
+FAMILIES = ("visa", "serial")
+
+
+def address_for(family: str, port: int) -> str:
+    """How each driver family reaches a loopback server: pyvisa-py's SOCKET resource, pyserial's
+    socket:// URL, or pyvisa-py's serial path to the same socket."""
+    if family == "visa":
+        return f"TCPIP::127.0.0.1::{port}::SOCKET"
+    if family == "serial":
+        return f"socket://127.0.0.1:{port}"
+    if family == "visa-asrl":
+        return f"ASRLsocket://127.0.0.1:{port}::INSTR"
+    raise ValueError(family)
+
+
+def driver_for(family: str, kind: str) -> str:
+    return f"{'visa' if family.startswith('visa') else 'serial'}.{kind}"
+
+
+class Rig:
+    """Servers and devices made by one test, all closed at its end."""
+
+    def __init__(self) -> None:
+        self.servers: list[FakeLineServer] = []
+        self.devices: list = []
+
+    def server(self, kind: str, **instrument_options) -> FakeLineServer:
+        server = FakeLineServer(FakeInstrument(kind, **instrument_options)).start()
+        self.servers.append(server)
+        return server
+
+    def device(
+        self,
+        family: str,
+        kind: str,
+        server: FakeLineServer,
+        options: dict | None = None,
+        limits: dict | None = None,
+        name: str = "dev",
+    ):
+        from drivers.registry import create_device
+
+        merged = {"timeout_s": 0.3, **(options or {})}
+        device = create_device(
+            name, driver_for(family, kind), address_for(family, server.port), merged, limits
+        )
+        self.devices.append(device)
+        return device
+
+    def close(self) -> None:
+        for device in self.devices:
+            device.close()
+        for server in self.servers:
+            server.shutdown()
