@@ -277,6 +277,20 @@ def _port_labels(ports, pp, spp, pol_reg, sp_reg, analyzes, pol_port, sp_port) -
     return tuple(labels)
 
 
+def _setting_label(port_labels: tuple[str, ...]) -> str:
+    """A short name for a setting from its port labels: ("H,h", "V,h", ...) -> "H/V x h/v"."""
+    if len(set(port_labels)) == 1:
+        return port_labels[0]
+    columns: list[list[str]] = []
+    for label in port_labels:
+        for j, part in enumerate(label.split(",")):
+            if j == len(columns):
+                columns.append([])
+            if part not in columns[j]:
+                columns[j].append(part)
+    return " x ".join("/".join(c) for c in columns)
+
+
 def _expand_steps(
     table, protocol_name, settings, key_labels, logical, order_idx, analyzes, dwell_s, repeats,
     bg_every, bg_start, bg_end, bg_dwell, ref_every, ref_dwell, passes, pass_interval_s, order,
@@ -315,7 +329,7 @@ def _expand_steps(
             add("reference", p, logical[0], 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
         for count, k in enumerate(sequence, start=1):
             s = resolve(settings[k])
-            label = " | ".join(sorted(set(key_labels[k]))) if len(set(key_labels[k])) > 1 else key_labels[k][0]
+            label = _setting_label(key_labels[k])
             for r in range(repeats):
                 add("measure", p, logical[k], r, s, dwell_s, label, key_labels[k])
             if ref_every > 0 and count % ref_every == 0 and count < len(sequence):

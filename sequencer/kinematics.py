@@ -53,15 +53,26 @@ def approach_path(start_deg: float, target_deg: float, backlash_deg: float) -> t
     return (target_deg - 2.0 * backlash_deg, target_deg)
 
 
-def path_time_s(start_deg: float, target_deg: float, k: StageKinematics) -> float:
-    """Time to reach ``target_deg`` from ``start_deg`` along approach_path, settling included."""
+def leg_times_s(start_deg: float, target_deg: float, k: StageKinematics) -> tuple[float, ...]:
+    """Duration of each leg of approach_path (move, command overhead and settling), s.
+
+    The runner moves every stage's first leg at once, waits for all of them, then every stage's
+    second leg: a transition takes the sum over legs of the slowest stage's leg.
+    """
     if abs(target_deg - start_deg) < 1e-12:
-        return 0.0
-    t, here = 0.0, start_deg
+        return ()
+    out, here = [], start_deg
     for waypoint in approach_path(start_deg, target_deg, k.backlash_deg):
-        t += move_time_s(waypoint - here, k.speed_deg_per_s, k.acceleration_deg_per_s2) + k.overhead_s
+        out.append(
+            move_time_s(waypoint - here, k.speed_deg_per_s, k.acceleration_deg_per_s2) + k.overhead_s + k.settle_s
+        )
         here = waypoint
-    return t + k.settle_s
+    return tuple(out)
+
+
+def path_time_s(start_deg: float, target_deg: float, k: StageKinematics) -> float:
+    """Time for one stage to reach ``target_deg`` from ``start_deg`` along approach_path, s."""
+    return float(sum(leg_times_s(start_deg, target_deg, k)))
 
 
 def path_travel_deg(start_deg: float, target_deg: float, backlash_deg: float) -> float:

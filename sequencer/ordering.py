@@ -12,7 +12,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from sequencer.kinematics import nearest_equivalent_deg, path_time_s
+from sequencer.kinematics import leg_times_s, nearest_equivalent_deg
 from sequencer.optics.analyzer import CONVERTER
 
 if TYPE_CHECKING:
@@ -23,13 +23,22 @@ PERIOD_DEG = 180.0
 
 
 def transition_time_s(a: np.ndarray, b: np.ndarray, table: "TableModel") -> float:
-    """Time to go from settings ``a`` to settings ``b`` with every stage moving at once, s."""
-    t = 0.0
+    """Time to go from settings ``a`` to settings ``b`` with every stage moving at once, s.
+
+    Stages move leg by leg together (see kinematics.leg_times_s); the converter switches while the
+    stages move.
+    """
+    legs: list[float] = []
     for i, k in table.kinematics.items():
         if math.isnan(a[i]) or math.isnan(b[i]):
             continue
         target = nearest_equivalent_deg(b[i], a[i], PERIOD_DEG, k)
-        t = max(t, path_time_s(a[i], target, k))
+        for j, leg in enumerate(leg_times_s(a[i], target, k)):
+            if j == len(legs):
+                legs.append(leg)
+            else:
+                legs[j] = max(legs[j], leg)
+    t = float(sum(legs))
     if not (math.isnan(a[CONVERTER]) or math.isnan(b[CONVERTER])) and a[CONVERTER] != b[CONVERTER]:
         t = max(t, table.converter_switch_s)
     return t

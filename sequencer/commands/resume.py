@@ -1,0 +1,22 @@
+"""``lightloom resume FILE.h5``: continue a stopped run from the first step not recorded."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+from rich.console import Console
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser("resume", help="continue an interrupted run; every step is recorded exactly once")
+    p.add_argument("file", help="the run file (FILE.h5) of the stopped run")
+    p.add_argument("--quiet", action="store_true", help="no live display even on a terminal")
+    p.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    from sequencer.session import resume_run
+
+    live = sys.stdout.isatty() and not args.quiet
+    return resume_run(args.file, console=Console(), live=live)

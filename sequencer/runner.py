@@ -1,0 +1,456 @@
+"""The runner: executes a compiled plan on real or simulated devices, for nights nobody watches.
+
+It is the only part of lightloom with side effects and time. It owns the safety logic: the shutter
+is closed first on every way out (end, exception, device fault, Ctrl-C, SIGTERM); transient
+instrument faults are retried with bounded back-off and a reconnect; a lost beam pauses the run and
+the step is measured again when the beam is back; drift beyond a threshold is flagged. Every
+reading goes to the store (durable on return) the moment it is taken.
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from typing import Callable, Protocol, Sequence, TypeVar
+
+import numpy as np
+
+from drivers.errors import InstrumentError
+from drivers.interfaces import Device, DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
+from sequencer.compiler import TableModel
+from sequencer.errors import RunFault
+from sequencer.kinematics import approach_path
+from sequencer.optics.analyzer import CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, port_operators
+from sequencer.plan import Plan, Step
+from sequencer.storage.records import (
+    FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT, FLAG_RETRIED, Event, Reading,
+)
+
+T = TypeVar("T")
+
+# A stage read-back further than this from its target (deg) means the axis did not get there.
+POSITION_TOLERANCE_DEG = 0.05
+
+
+class StopRequested(BaseException):
+    """Raised in the main thread by the SIGTERM handler: stop safely, like Ctrl-C."""
+
+
+@dataclass
+class Rig:
+    """The devices of a bench, by the part they play."""
+
+    stages: dict[int, RotationStage]
+    converter: DiscreteActuator | None
+    shutter: Shutter
+    detectors: tuple[PowerMeter | PhotonCounter, ...]
+    reference: PowerMeter | None = None
+
+    def devices(self) -> list[Device]:
+        out: list[Device] = [self.shutter, *self.stages.values()]
+        if self.converter is not None:
+            out.append(self.converter)
+        out.extend(self.detectors)
+        if self.reference is not None:
+            out.append(self.reference)
+        return out
+
+
+@dataclass(frozen=True)
+class RunPolicy:
+    """Retries, beam-loss and drift thresholds, and timing of the runner."""
+
+    retry_attempts: int = 4
+    backoff_s: float = 0.1
+    max_backoff_s: float = 5.0
+    beam_loss_fraction: float = 0.3
+    beam_wait_s: float = 900.0
+    beam_poll_s: float = 5.0
+    drift_fraction: float = 0.05
+    settle_timeout_s: float = 120.0
+    refresh_s: float = 2.0
+
+
+class RunMonitor(Protocol):
+    """What the runner tells the person (or nobody) watching."""
+
+    def step_done(self, step: Step, reading: Reading, steps_done: int, steps_total: int) -> None: ...
+
+    def warning(self, message: str) -> None: ...
+
+    def info(self, message: str) -> None: ...
+
+
+class SilentMonitor:
+    """A monitor that shows nothing (tests, no terminal)."""
+
+    def step_done(self, step: Step, reading: Reading, steps_done: int, steps_total: int) -> None:
+        pass
+
+    def warning(self, message: str) -> None:
+        pass
+
+    def info(self, message: str) -> None:
+        pass
+
+
+@dataclass
+class _BeamWatch:
+    """Baseline and state of the beam monitor (reference meter or total detected power)."""
+
+    baseline: float | None = None
+    drifting: bool = False
+    history: list[float] = field(default_factory=list)
+
+
+class Runner:
+    """Execute ``plan`` on ``rig``, recording into ``store``.
+
+    ``now`` returns UNIX seconds (virtual for simulated benches), ``sleep`` waits (virtual too),
+    ``log`` writes a line to the human-readable log.
+    """
+
+    def __init__(
+        self,
+        plan: Plan,
+        table: TableModel,
+        rig: Rig,
+        store,
+        policy: RunPolicy,
+        *,
+        now: Callable[[], float],
+        sleep: Callable[[float], None],
+        wall: Callable[[], float],
+        monitor: RunMonitor | None = None,
+        log: Callable[[str], None] = lambda line: None,
+        units: str = "W",
+        run_start: float | None = None,
+    ) -> None:
+        self.plan = plan
+        self.table = table
+        self.rig = rig
+        self.store = store
+        self.policy = policy
+        self.now = now
+        self.sleep = sleep
+        self.wall = wall
+        self.monitor = monitor or SilentMonitor()
+        self.log = log
+        self.units = units
+        self.run_start = run_start
+        self._beam = _BeamWatch()
+        self._positions: dict[int, float] = {}
+        self._converter_state: str | None = None
+        self._shutter_open: bool | None = None
+        self._retried = False
+        self._pool = ThreadPoolExecutor(max_workers=max(1, len(rig.detectors) + 1), thread_name_prefix="read")
+        self._last_refresh = -math.inf
+        self._complete_product = _complete_product(table)
+
+    # ------------------------------------------------------------------ safety
+    def close_shutter_safely(self) -> bool:
+        """Close the shutter, retrying and reconnecting; True if the shutter reports closed."""
+        for attempt in range(max(3, self.policy.retry_attempts)):
+            try:
+                self.rig.shutter.close_beam()
+                self._shutter_open = False
+                if not self.rig.shutter.is_open():
+                    return True
+            except InstrumentError as exc:
+                self.log(f"closing the shutter failed ({exc}); retrying")
+                try:
+                    self.rig.shutter.reconnect()
+                except InstrumentError:
+                    pass
+            except Exception as exc:  # the shutter must be tried again whatever went wrong
+                self.log(f"closing the shutter failed ({exc!r}); retrying")
+        return False
+
+    # ------------------------------------------------------------------ retries
+    def _call(self, device: Device, what: str, fn: Callable[[], T]) -> T:
+        """Run ``fn`` with bounded back-off and a reconnect on transient faults."""
+        delay = self.policy.backoff_s
+        for attempt in range(1, self.policy.retry_attempts + 1):
+            try:
+                return fn()
+            except InstrumentError as exc:
+                if not exc.transient or attempt == self.policy.retry_attempts:
+                    raise RunFault(
+                        f"{exc} — gave up on {what} after {attempt} attempt(s); check the instrument, "
+                        "then `lightloom resume` the run"
+                    ) from exc
+                self._retried = True
+                self.log(f"transient fault on {what} (attempt {attempt}): {exc}; retrying in {delay:.2f} s")
+                self.monitor.warning(f"retrying {what}: {exc}")
+                self.sleep(delay)
+                try:
+                    device.reconnect()
+                except InstrumentError as again:
+                    self.log(f"reconnect of {device.name} failed: {again}")
+                delay = min(self.policy.max_backoff_s, delay * 2)
+        raise AssertionError("unreachable")
+
+    # ------------------------------------------------------------------ motion
+    def _set_shutter(self, open_: bool) -> None:
+        if self._shutter_open == open_:
+            return
+        sh = self.rig.shutter
+        if open_:
+            self._call(sh, "opening the shutter", sh.open)
+        else:
+            self._call(sh, "closing the shutter", sh.close_beam)
+        self._shutter_open = open_
+
+    def _move(self, settings: Sequence[float]) -> None:
+        targets = {i: float(settings[i]) for i in self.rig.stages if not math.isnan(settings[i])}
+        paths = {}
+        for i, target in targets.items():
+            here = self._positions.get(i)
+            if here is not None and abs(here - target) < 1e-9:
+                continue
+            backlash = self.table.kinematics[i].backlash_deg if i in self.table.kinematics else 0.0
+            # Position unknown (first move): approach from below anyway, so backlash is taken up.
+            start = here if here is not None else math.inf
+            paths[i] = approach_path(start, target, backlash)
+        conv_target = None
+        if self.rig.converter is not None and not math.isnan(settings[CONVERTER]):
+            conv_target = "in" if settings[CONVERTER] == CONVERTER_IN else "out"
+            if conv_target == self._converter_state:
+                conv_target = None
+        if conv_target is not None:
+            c = self.rig.converter
+            self._call(c, f"setting {c.name} {conv_target}", lambda: c.set_state(conv_target))
+        phases = max((len(p) for p in paths.values()), default=0)
+        for phase in range(phases):
+            moving = []
+            for i, path in paths.items():
+                if phase >= len(path):
+                    continue
+                stage, point = self.rig.stages[i], path[phase]
+                self._call(stage, f"moving {stage.name} to {point:.4f} deg", lambda s=stage, p=point: s.move_to_deg(p))
+                moving.append((i, stage, point))
+            for i, stage, point in moving:
+                self._call(
+                    stage, f"waiting for {stage.name}",
+                    lambda s=stage: s.wait_settled(self.policy.settle_timeout_s),
+                )
+                self._positions[i] = point
+        for i, target in targets.items():
+            self._positions[i] = target
+        if conv_target is not None:
+            c = self.rig.converter
+            state = self._call(c, f"waiting for {c.name}", lambda: c.wait_settled(self.policy.settle_timeout_s))
+            if state != conv_target:
+                raise RunFault(f"device '{c.name}' reports state {state!r} after being set {conv_target!r}; check the actuator")
+            self._converter_state = conv_target
+
+    def _readback(self, commanded: Sequence[float]) -> np.ndarray:
+        rb = np.full(len(ELEMENT_NAMES), math.nan)
+        for i, stage in self.rig.stages.items():
+            if math.isnan(commanded[i]):
+                continue
+            pos = self._call(stage, f"reading the position of {stage.name}", stage.position_deg)
+            if abs(pos - commanded[i]) > POSITION_TOLERANCE_DEG:
+                raise RunFault(
+                    f"device '{stage.name}' is at {pos:.3f} deg, not at the commanded {commanded[i]:.3f} deg: "
+                    "the axis may be stuck or blocked; check it, then `lightloom resume`"
+                )
+            rb[i] = pos
+        if self.rig.converter is not None and not math.isnan(commanded[CONVERTER]):
+            c = self.rig.converter
+            state = self._call(c, f"reading the state of {c.name}", c.state)
+            rb[CONVERTER] = CONVERTER_IN if state == "in" else CONVERTER_OUT
+        return rb
+
+    # ------------------------------------------------------------------ reading
+    def _read_one(self, device: PowerMeter | PhotonCounter, dwell_s: float) -> float:
+        if isinstance(device, PhotonCounter):
+            return float(self._call(device, f"reading {device.name}", lambda: device.read_counts(dwell_s)))
+        return float(self._call(device, f"reading {device.name}", lambda: device.read_power_w(dwell_s)))
+
+    def _read_all(self, dwell_s: float) -> tuple[np.ndarray, float]:
+        devices: list[PowerMeter | PhotonCounter] = list(self.rig.detectors)
+        if self.rig.reference is not None:
+            devices.append(self.rig.reference)
+        if len(devices) == 1:
+            values = [self._read_one(devices[0], dwell_s)]
+        else:
+            futures = [self._pool.submit(self._read_one, d, dwell_s) for d in devices]
+            values = [f.result() for f in futures]
+        ref = values.pop() if self.rig.reference is not None else math.nan
+        return np.array(values, dtype=float), ref
+
+    def _beam_level(self, step: Step, values: np.ndarray, ref: float) -> float | None:
+        """The beam monitor's level for this reading, or None when nothing measures the beam."""
+        if not math.isnan(ref):
+            return ref
+        if self._complete_product and step.kind != "background":
+            gains = np.array([p.gain for p in self.table.ports])
+            return float(np.sum(values / gains))
+        return None
+
+    def _wait_for_beam(self, level: float) -> None:
+        baseline = self._beam.baseline
+        assert baseline is not None
+        msg = (
+            f"beam lost: monitor at {level:.3g} against {baseline:.3g} "
+            f"(threshold {self.policy.beam_loss_fraction:.0%}); pausing"
+        )
+        self.store.event(Event(self.now(), "beam_lost", msg))
+        self.log(msg)
+        self.monitor.warning(msg)
+        waited = 0.0
+        while waited <= self.policy.beam_wait_s:
+            self.sleep(self.policy.beam_poll_s)
+            waited += self.policy.beam_poll_s
+            probe = self._probe_beam()
+            if probe is not None and probe >= self.policy.beam_loss_fraction * baseline:
+                back = f"beam back after {waited:.0f} s (monitor {probe:.3g}); measuring the step again"
+                self.store.event(Event(self.now(), "beam_back", back))
+                self.log(back)
+                self.monitor.info(back)
+                return
+        raise RunFault(
+            f"the beam did not come back within {self.policy.beam_wait_s:g} s "
+            "(thresholds.beam_wait_s); check the laser and the beam path, then `lightloom resume`"
+        )
+
+    def _probe_beam(self) -> float | None:
+        probe_dwell = 0.05
+        if self.rig.reference is not None:
+            return self._read_one(self.rig.reference, probe_dwell)
+        values, _ = self._read_all(probe_dwell)
+        gains = np.array([p.gain for p in self.table.ports])
+        return float(np.sum(values / gains))
+
+    # ------------------------------------------------------------------ steps
+    def measure_step(self, step: Step) -> Reading:
+        """Move, read every port, check the beam; returns the reading (not yet stored)."""
+        flags = 0
+        while True:
+            self._retried = False
+            self._set_shutter(step.shutter_open)
+            self._move(step.settings)
+            readback = self._readback(step.settings)
+            t_start = self.now()
+            values, ref = self._read_all(step.dwell_s)
+            t_end = self.now()
+            level = self._beam_level(step, values, ref)
+            if level is not None and step.kind != "background":
+                if self._beam.baseline is None:
+                    self._beam.baseline = level if level > 0 else None
+                elif level < self.policy.beam_loss_fraction * self._beam.baseline:
+                    self._wait_for_beam(level)
+                    flags |= FLAG_AFTER_BEAM_WAIT
+                    continue
+                elif abs(level / self._beam.baseline - 1.0) > self.policy.drift_fraction:
+                    flags |= FLAG_DRIFT
+                    if not self._beam.drifting:
+                        self._beam.drifting = True
+                        msg = (
+                            f"drift: beam monitor at {level / self._beam.baseline:.1%} of its initial value "
+                            f"(threshold +-{self.policy.drift_fraction:.0%})"
+                        )
+                        self.store.event(Event(self.now(), "drift", msg))
+                        self.log(msg)
+                        self.monitor.warning(msg)
+                else:
+                    self._beam.drifting = False
+            if self._retried:
+                flags |= FLAG_RETRIED
+            operators = port_operators(self.table.analyzer, self.table.ports, readback[None, :])[0]
+            return Reading(
+                step_index=step.index, kind=step.kind, pass_index=step.pass_index,
+                point_index=step.point_index, repeat_index=step.repeat_index,
+                commanded=np.array(step.settings), readback=readback, values=values,
+                reference_w=ref, operators=operators, dwell_s=step.dwell_s,
+                t_start=t_start, t_end=t_end, flags=flags,
+            )
+
+    def connect(self) -> None:
+        """Connect every device (retrying transient faults) and close the shutter."""
+        for device in self.rig.devices():
+            self._call(device, f"connecting {device.name}", device.connect)
+        self._set_shutter(False)
+        self._shutter_open = False
+
+    def execute(self, done: set[int]) -> tuple[str, str]:
+        """Run every step of the plan not in ``done``; return (status, message).
+
+        Ctrl-C and SIGTERM (StopRequested) end with "interrupted"; RunFault with "fault". The
+        shutter is closed before this returns or raises, whatever happened.
+        """
+        status, message = "fault", "the run stopped before it started"
+        total = len(self.plan.steps)
+        n_done = len(done)
+        try:
+            self.connect()
+            for step in self.plan.steps:
+                if step.index in done:
+                    continue
+                self._wait_for_pass(step)
+                reading = self.measure_step(step)
+                self.store.record(reading)
+                n_done += 1
+                self.log(_reading_line(step, reading, self.units))
+                self.monitor.step_done(step, reading, n_done, total)
+                if self.wall() - self._last_refresh >= self.policy.refresh_s:
+                    self.store.refresh("running")
+                    self._last_refresh = self.wall()
+            status, message = "complete", f"all {total} steps recorded"
+        except (KeyboardInterrupt, StopRequested) as exc:
+            status = "interrupted"
+            message = "stopped by Ctrl-C" if isinstance(exc, KeyboardInterrupt) else "stopped by SIGTERM"
+            message += f" after {n_done} of {total} steps; `lightloom resume` continues it"
+        except RunFault as exc:
+            status, message = "fault", exc.one_line()
+        except InstrumentError as exc:
+            status, message = "fault", f"{exc}; check the instrument, then `lightloom resume`"
+        except BaseException as exc:
+            status, message = "fault", f"internal error {exc!r}; the shutter was closed. Please report this."
+            self._finish(status, message)
+            raise
+        self._finish(status, message)
+        return status, message
+
+    def _finish(self, status: str, message: str) -> None:
+        closed = self.close_shutter_safely()
+        if not closed:
+            message += " — WARNING: the shutter did not confirm closing; block the beam by hand"
+            self.monitor.warning("the shutter did not confirm closing: block the beam by hand")
+        kind = {"complete": "complete", "interrupted": "interrupted"}.get(status, "fault")
+        try:
+            self.store.event(Event(self.now(), kind, message))
+        except Exception as exc:
+            self.log(f"could not record the final event: {exc!r}")
+        self.log(f"{status}: {message}")
+        self._pool.shutdown(wait=False, cancel_futures=True)
+        for device in self.rig.devices():
+            try:
+                device.close()
+            except Exception as exc:
+                self.log(f"closing {device.name}: {exc!r}")
+
+    def _wait_for_pass(self, step: Step) -> None:
+        if self.plan.pass_interval_s <= 0 or step.pass_index == 0 or self.run_start is None:
+            return
+        due = self.run_start + step.pass_index * self.plan.pass_interval_s
+        wait = due - self.now()
+        if wait > 0:
+            self.log(f"pass {step.pass_index + 1}: waiting {wait:.0f} s for its start time")
+            self.monitor.info(f"waiting {wait:.0f} s for pass {step.pass_index + 1}")
+            self.sleep(wait)
+
+
+def _complete_product(table: TableModel) -> bool:
+    pol = {p.splitter_port for p in table.ports}
+    sp = {p.sorter_port for p in table.ports}
+    return len(table.ports) == len(pol) * len(sp) and len(table.ports) > 1
+
+
+def _reading_line(step: Step, reading: Reading, units: str) -> str:
+    vals = " ".join(f"{v:.6g}" for v in reading.values)
+    ref = "" if math.isnan(reading.reference_w) else f" ref={reading.reference_w:.6g}"
+    return f"step {step.index} {step.kind} [{step.label}] {vals} {units}{ref}"

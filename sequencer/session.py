@@ -1,0 +1,337 @@
+"""Putting the parts together for one run: devices, storage, runner, signals, log, display.
+
+This is the imperative shell around the compiler and the runner; the command-line verbs ``run``,
+``resume`` and ``demo`` call it.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+import os
+import signal
+import sys
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Iterator
+
+import numpy as np
+from rich.console import Console
+
+from drivers.interfaces import PhotonCounter, PowerMeter
+from sequencer import __version__
+from sequencer.bench import Bench, load_bench, parse_bench
+from sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, UsageError
+from sequencer.optics.states import BASIS_LABELS
+from sequencer.plan import Plan
+from sequencer.protocol import Protocol, load_protocol, parse_protocol
+from sequencer.runner import Rig, Runner, RunPolicy, StopRequested
+from sequencer.safety import LASER_SAFETY_CAUTION
+from sequencer.storage.records import FORMAT_VERSION, Event, RunHeader
+from sequencer.storage.store import RunStore
+from sequencer.tablemodel import STAGE_ROLES, compile_protocol, table_model
+from sequencer.timing import estimate_plan
+
+STATUS_EXIT = {"complete": EXIT_OK, "interrupted": EXIT_INTERRUPTED, "fault": EXIT_FAULT}
+
+
+@dataclass
+class Assembled:
+    """A rig and the clock functions that go with it (virtual for simulated benches)."""
+
+    rig: Rig
+    now: Callable[[], float]
+    sleep: Callable[[float], None]
+    simulated_table: object | None = None
+
+
+def assemble(bench: Bench) -> Assembled:
+    """Build the devices of ``bench``: simulated in process, or real drivers (not yet connected)."""
+    if bench.is_simulated:
+        from simulators.table import SimulatedTable
+
+        table = SimulatedTable(bench)
+        devices = table.devices
+        wall0 = time.time()
+        now = lambda: wall0 + table.clock.now()  # noqa: E731
+        sleep = table.clock.sleep
+    else:
+        from drivers.registry import create_device
+        from drivers.options import DriverConfigError
+
+        devices = {}
+        for name, spec in bench.devices.items():
+            limits = None
+            if spec.kind == "rotation_stage" and spec.limits is not None:
+                limits = {
+                    "min_deg": spec.limits.min_deg, "max_deg": spec.limits.max_deg,
+                    "speed_deg_per_s": spec.limits.speed_deg_per_s,
+                    "acceleration_deg_per_s2": spec.limits.acceleration_deg_per_s2,
+                    "backlash_deg": spec.backlash_deg,
+                }
+            elif spec.kind == "actuator" and spec.states:
+                limits = {"states": list(spec.states)}
+            try:
+                devices[name] = create_device(name, spec.driver, spec.address, spec.options, limits)
+            except DriverConfigError as exc:
+                file, line = bench.locate(f"devices.{name}")
+                raise BenchError(f"device '{name}': {exc}", file, line) from None
+        table = None
+        now, sleep = time.time, time.sleep
+    roles = bench.roles
+    stages = {i: devices[getattr(roles, role)] for i, role in STAGE_ROLES.items() if getattr(roles, role)}
+    rig = Rig(
+        stages=stages,  # type: ignore[arg-type]
+        converter=devices[roles.mode_converter] if roles.mode_converter else None,  # type: ignore[arg-type]
+        shutter=devices[roles.shutter],  # type: ignore[arg-type]
+        detectors=tuple(devices[d.device] for d in roles.detectors),  # type: ignore[misc]
+        reference=devices[roles.reference] if roles.reference else None,  # type: ignore[arg-type]
+    )
+    return Assembled(rig, now, sleep, table)
+
+
+def port_units(bench: Bench) -> str:
+    """"W" when every detector is a power meter, "counts" when every one is a counter."""
+    kinds = {bench.devices[d.device].kind for d in bench.roles.detectors}
+    if kinds == {"power_meter"}:
+        return "W"
+    if kinds == {"photon_counter"}:
+        return "counts"
+    file, line = bench.locate("roles.detectors")
+    raise BenchError("detectors mix power meters and photon counters; use one kind for all ports", file, line)
+
+
+def make_header(protocol: Protocol, bench: Bench, plan: Plan, units: str, protocol_spec: str, bench_spec: str) -> RunHeader:
+    target = None
+    if protocol.target_state is not None:
+        t = np.array(protocol.target_state, dtype=np.complex128)
+        if t.shape == (4, 4) or len(protocol.analyzes) == 1:
+            target = t if t.shape[0] == 4 else None
+    extra = {
+        "protocol_spec": protocol_spec,
+        "bench_spec": bench_spec,
+        "protocol_path": protocol.source_path,
+        "bench_path": bench.source_path,
+        "target_label": protocol.target_label,
+        "target_state_2x2": (
+            {"real": np.real(protocol.target_state).tolist(), "imag": np.imag(protocol.target_state).tolist()}
+            if protocol.target_state is not None and np.array(protocol.target_state).shape == (2, 2) else None
+        ),
+        "port_labels": [d.label for d in bench.roles.detectors],
+        "port_sorter": [d.sorter_port for d in bench.roles.detectors],
+        "port_splitter": [d.splitter_port for d in bench.roles.detectors],
+        "port_gain": [float(bench.calibration.port_gain.get(d.device, 1.0)) for d in bench.roles.detectors],
+        "reference_device": bench.roles.reference,
+        "wavelength_nm": bench.wavelength_nm,
+    }
+    return RunHeader(
+        format_version=FORMAT_VERSION,
+        tool_version=__version__,
+        created_utc=dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+        protocol_name=protocol.name,
+        protocol_text=protocol.source_text,
+        protocol_sha256=protocol.sha256,
+        bench_name=bench.name,
+        bench_text=bench.resolved_text,
+        bench_sha256=bench.sha256,
+        simulated=bench.is_simulated,
+        analyzes=protocol.analyzes,
+        element_names=plan.element_names,
+        port_names=plan.port_names,
+        port_units=units,
+        dimension=4,
+        basis_labels=BASIS_LABELS,
+        steps_total=len(plan.steps),
+        plan_json=plan.to_json(),
+        target_state=target,
+        extra=extra,
+    )
+
+
+def policy_for(bench: Bench) -> RunPolicy:
+    th, rt = bench.thresholds, bench.retry
+    return RunPolicy(
+        retry_attempts=rt.attempts, backoff_s=rt.backoff_s, max_backoff_s=rt.max_backoff_s,
+        beam_loss_fraction=th.beam_loss_fraction, beam_wait_s=th.beam_wait_s,
+        beam_poll_s=min(5.0, max(0.05, th.beam_wait_s / 20.0)), drift_fraction=th.drift_fraction,
+    )
+
+
+@contextmanager
+def stop_on_sigterm() -> Iterator[None]:
+    """While active, SIGTERM raises StopRequested in the main thread (a safe stop, exit 130)."""
+    def handler(signum, frame):  # noqa: ARG001
+        raise StopRequested()
+
+    try:
+        previous = signal.signal(signal.SIGTERM, handler)
+    except ValueError:  # not the main thread
+        yield
+        return
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
+class RunLog:
+    """The human-readable log beside the data file (RUN.log), one timestamped line per entry."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        self._f = open(path, "a", encoding="utf-8", buffering=1)
+
+    def __call__(self, line: str) -> None:
+        stamp = dt.datetime.now(dt.timezone.utc).isoformat(timespec="milliseconds")
+        self._f.write(f"{stamp} {line}\n")
+
+    def close(self) -> None:
+        self._f.close()
+
+
+def log_path_for(out: Path) -> Path:
+    return out.with_suffix(".log") if out.suffix == ".h5" else Path(str(out) + ".log")
+
+
+def _say(console: Console | None, text: str) -> None:
+    if console is not None:
+        console.print(text, highlight=False)
+
+
+def start_run(protocol_spec: str, bench_spec: str, out: str, *, console: Console | None, live: bool) -> int:
+    """``lightloom run``: compile, create the run file (refusing an existing one), execute."""
+    protocol = load_protocol(protocol_spec)
+    bench = load_bench(bench_spec)
+    plan = compile_protocol(protocol, bench)
+    if plan.violations:
+        raise BenchError(
+            f"the plan breaks the bench's limits: {plan.violations[0]}"
+            + (f" (and {len(plan.violations) - 1} more)" if len(plan.violations) > 1 else "")
+            + "; see `lightloom dry-run`",
+            bench.source_path, 1,
+        )
+    units = port_units(bench)
+    out_path = Path(out)
+    if out_path.exists():
+        raise UsageError(f"{out_path} exists already; lightloom never overwrites a run file (use `lightloom resume {out_path}` or another --out)")
+    if not out_path.parent.exists():
+        raise UsageError(f"the folder {out_path.parent} does not exist; create it or choose another --out")
+    assembled = assemble(bench)
+    header = make_header(protocol, bench, plan, units, protocol_spec, bench_spec)
+    store = RunStore.create(out_path, header)
+    return _execute(protocol, bench, plan, assembled, store, out_path, set(), console, live, resumed=False)
+
+
+def resume_run(path: str, *, console: Console | None, live: bool) -> int:
+    """``lightloom resume``: continue from the first step not recorded, each step exactly once."""
+    out_path = Path(path)
+    store = RunStore.reopen(out_path)
+    try:
+        header = store.header
+        protocol, bench = _recover_inputs(header)
+        plan = compile_protocol(protocol, bench)
+        if plan.to_json() != header.plan_json:
+            raise UsageError(
+                f"{out_path}: the protocol and bench compile to a different plan than the one stored "
+                f"(stored by lightloom {header.tool_version}, this is {__version__}); resume it with the "
+                "version that started it, or start a new run"
+            )
+        done = {int(i) for i in store.readings.step_index}
+        assembled = assemble(bench)
+    except BaseException:
+        store.close("interrupted", "resume refused")
+        raise
+    if store.bytes_cut:
+        _say(console, f"cut a torn journal tail of {store.bytes_cut} bytes (a reading that was never reported)")
+    return _execute(protocol, bench, plan, assembled, store, out_path, done, console, live, resumed=True)
+
+
+def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
+    """The protocol and bench of a run, refusing ones that changed on disk since it started."""
+    extra = header.extra
+    protocol = parse_protocol(header.protocol_text, extra.get("protocol_path", "<stored protocol>"))
+    ppath = extra.get("protocol_path")
+    if ppath and Path(ppath).is_file():
+        now = load_protocol(ppath)
+        if now.sha256 != header.protocol_sha256:
+            raise UsageError(
+                f"{ppath} changed since the run started; resuming would mix two protocols. Restore "
+                "the file (the original is stored in the run file under /protocol) or start a new run"
+            )
+    bpath = extra.get("bench_path")
+    bench = None
+    if bpath and Path(bpath).is_file():
+        bench = load_bench(bpath)
+        if bench.sha256 != header.bench_sha256:
+            raise UsageError(
+                f"{bpath} (or a bench it extends) changed since the run started; resuming would mix "
+                "two benches. Restore it (the resolved original is stored under /bench) or start a new run"
+            )
+    if bench is None:
+        bench = parse_bench(header.bench_text, extra.get("bench_path", "<stored bench>"))
+    return protocol, bench
+
+
+def _initial_beam_level(store: RunStore, table) -> float | None:
+    r = store.readings
+    if len(r) == 0:
+        return None
+    usable = ~r.of_kind("background")
+    if not usable.any():
+        return None
+    i = int(np.flatnonzero(usable)[0])
+    ref = float(r.reference_w[i])
+    if not math.isnan(ref):
+        return ref
+    gains = np.array([p.gain for p in table.ports])
+    return float(np.sum(r.values[i] / gains)) if len(table.ports) > 1 else None
+
+
+def _execute(protocol, bench, plan, assembled, store, out_path, done, console, live, *, resumed) -> int:
+    table = table_model(bench)
+    log = RunLog(log_path_for(out_path))
+    est = estimate_plan(plan, table)
+    left = sum(t for s, t in zip(plan.steps, est.step_seconds) if s.index not in done)
+    monitor = None
+    try:
+        verb = "resume" if resumed else "start"
+        log(f"{verb}: protocol {protocol.name} on bench {bench.name} -> {out_path} "
+            f"({len(plan.steps) - len(done)} of {len(plan.steps)} steps to go, about {left:.0f} s)")
+        store.event(Event(assembled.now(), verb, f"lightloom {__version__}; {len(done)} of {len(plan.steps)} steps recorded before"))
+        if not bench.is_simulated:
+            sys.stderr.write(LASER_SAFETY_CAUTION)
+            sys.stderr.flush()
+            log("laser-safety caution shown; the shutter will open unattended")
+        _say(console, f"{'resuming' if resumed else 'running'} {protocol.name} on {bench.name}: "
+                      f"{len(plan.steps) - len(done)} steps, about {left:.0f} s -> {out_path}")
+        runner_kwargs = {}
+        if live and console is not None:
+            from sequencer.display import TerminalMonitor
+
+            monitor = TerminalMonitor(console, f"lightloom {protocol.name} on {bench.name}", plan.port_names,
+                                      store.header.port_units, left)
+            monitor.__enter__()
+            runner_kwargs["monitor"] = monitor
+        runner = Runner(plan, table, assembled.rig, store, policy_for(bench), now=assembled.now,
+                        sleep=assembled.sleep, wall=time.monotonic, log=log, units=store.header.port_units,
+                        run_start=_run_start(store, assembled.now), **runner_kwargs)
+        runner._beam.baseline = _initial_beam_level(store, table)
+        with stop_on_sigterm():
+            status, message = runner.execute(done)
+    finally:
+        if monitor is not None:
+            monitor.__exit__(None, None, None)
+        log.close()
+    store.close(status, message)
+    _say(console, f"{status}: {message}")
+    _say(console, f"data: {out_path}   log: {log_path_for(out_path)}")
+    return STATUS_EXIT[status]
+
+
+def _run_start(store: RunStore, now: Callable[[], float]) -> float:
+    r = store.readings
+    if len(r):
+        return float(np.min(r.t_start))
+    return now()

@@ -1,0 +1,162 @@
+"""The virtual optical table: a bench's simulated devices and the physics that decides what each
+detector sees.
+
+A detector port reads P0 * drift(t) * beam(t) * shutter(t) * tr(rho E_port), where rho is the
+source state of ``simulation.source``, E_port the POVM element of that port computed by the optics
+model from the TRUE imperfections of the table (``simulation.table``) at the optical positions the
+stages and the converter have at that instant (backlash and stuck faults included), and the
+meters add their offset and noise. The physics lives in sequencer.optics, once.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Callable
+
+import numpy as np
+
+from drivers.interfaces import Device
+from sequencer.bench import Bench
+from sequencer.optics.analyzer import (
+    CONVERTER, CONVERTER_ANGLE, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, HWP, QWP, ROTATOR,
+    park_settings, port_operators, probabilities,
+)
+from sequencer.tablemodel import analyzer_model, port_models
+from simulators.clock import SimClock
+from simulators.devices import (
+    SimActuator, SimPhotonCounter, SimPowerMeter, SimRotationStage, SimShutter,
+)
+from simulators.faults import FaultInjector
+
+ROLE_INDEX = {"quarter_wave_plate": QWP, "half_wave_plate": HWP, "converter_angle": CONVERTER_ANGLE,
+              "image_rotator": ROTATOR}
+
+
+@dataclass(frozen=True)
+class Drift:
+    """Relative laser power drift: 1 + amplitude sin(2 pi t / period + phase)."""
+
+    amplitude: float
+    period_s: float
+    phase: float
+
+    def factor(self, t_s: float) -> float:
+        if self.amplitude == 0.0 or not math.isfinite(self.period_s) or self.period_s <= 0:
+            return 1.0
+        return 1.0 + self.amplitude * math.sin(2.0 * math.pi * t_s / self.period_s + self.phase)
+
+
+class SimulatedTable:
+    """All simulated devices of a simulated bench, sharing one clock, one source and one physics."""
+
+    def __init__(self, bench: Bench, *, wall_sleep: Callable[[float], None] | None = None) -> None:
+        sim = bench.simulation
+        if sim is None:
+            raise ValueError(f"bench '{bench.name}' has no simulation section")
+        self.bench = bench
+        kwargs = {} if wall_sleep is None else {"wall_sleep": wall_sleep}
+        self.clock = SimClock(sim.time_scale, **kwargs)
+        seeds = np.random.SeedSequence(sim.seed)
+        fault_seed, drift_seed, *device_seeds = seeds.spawn(2 + len(bench.devices))
+        self.faults = FaultInjector(
+            [
+                {k: v for k, v in (("kind", f.kind), ("device", f.device), ("at_s", f.at_s),
+                                   ("probability", f.probability), ("duration_s", f.duration_s)) if v is not None}
+                for f in sim.faults
+            ],
+            rng=np.random.default_rng(fault_seed),
+        )
+        self.drift = Drift(sim.drift.amplitude, sim.drift.period_s,
+                           float(np.random.default_rng(drift_seed).uniform(0, 2 * math.pi)))
+        self.power_w = sim.source.power_w
+        self.rho = sim.source.density()
+        self.model = analyzer_model(bench, truth=True)
+        self.ports = port_models(bench, truth=True)
+        self.port_index = {p.name: j for j, p in enumerate(self.ports)}
+        fraction = sim.table.reference_fraction
+        self.reference_fraction = fraction if fraction is not None else 0.01
+        self.devices: dict[str, Device] = {}
+        self.stage_of: dict[int, SimRotationStage] = {}
+        self.converter: SimActuator | None = None
+        self.shutter: SimShutter | None = None
+        roles = bench.roles
+        by_role = {getattr(roles, r): i for r, i in ROLE_INDEX.items() if getattr(roles, r)}
+        for (name, spec), seed in zip(bench.devices.items(), device_seeds):
+            rng = np.random.default_rng(seed)
+            self.devices[name] = self._make(name, spec, rng, sim)
+            if name in by_role:
+                self.stage_of[by_role[name]] = self.devices[name]  # type: ignore[assignment]
+        if roles.mode_converter:
+            self.converter = self.devices[roles.mode_converter]  # type: ignore[assignment]
+        self.shutter = self.devices[roles.shutter]  # type: ignore[assignment]
+        self._cache_key: tuple | None = None
+        self._cache_probs: np.ndarray | None = None
+
+    # ------------------------------------------------------------------ devices
+    def _make(self, name, spec, rng, sim) -> Device:
+        kind = spec.kind
+        if kind == "rotation_stage":
+            lim = spec.limits
+            return SimRotationStage(
+                name, self.clock, limits_deg=(lim.min_deg, lim.max_deg), speed_deg_per_s=lim.speed_deg_per_s,
+                acceleration_deg_per_s2=lim.acceleration_deg_per_s2, backlash_deg=spec.backlash_deg,
+                settle_s=spec.settle_s, faults=self.faults,
+            )
+        if kind == "actuator":
+            states = spec.states or ("in", "out")
+            initial = "out" if "out" in states else states[0]
+            return SimActuator(name, self.clock, states=tuple(states), initial_state=initial,
+                               switch_s=spec.switch_s + spec.settle_s, faults=self.faults)
+        if kind == "shutter":
+            return SimShutter(name, self.clock, switch_s=spec.switch_s + spec.settle_s, faults=self.faults)
+        light = self._light_for(name)
+        if kind == "power_meter":
+            return SimPowerMeter(
+                name, self.clock, light, rng, offset_w=sim.noise.meter_offset_w, noise_w=sim.noise.meter_noise_w,
+                relative_noise=sim.noise.relative_noise, wavelength_nm=self.bench.wavelength_nm, faults=self.faults,
+            )
+        if kind == "photon_counter":
+            return SimPhotonCounter(
+                name, self.clock, light, rng, counts_per_w=sim.noise.counts_per_w,
+                dark_counts_per_s=sim.noise.dark_counts_per_s, faults=self.faults,
+            )
+        raise ValueError(f"device '{name}': no simulated device of kind {kind!r}")
+
+    # ------------------------------------------------------------------ physics
+    def optical_settings(self, t_s: float | None = None) -> np.ndarray:
+        """The element settings the beam sees at ``t_s`` (default now), in ELEMENT_NAMES order."""
+        s = park_settings(1)[0]
+        for i, stage in self.stage_of.items():
+            s[i] = stage.optical_angle_deg(t_s)
+        if self.converter is not None:
+            s[CONVERTER] = CONVERTER_IN if self.converter.optical_state(t_s) == "in" else CONVERTER_OUT
+        return s
+
+    def port_probabilities(self, t_s: float | None = None) -> np.ndarray:
+        """tr(rho E_port) for every detector port (gains included) at the current positions."""
+        s = self.optical_settings(t_s)
+        key = tuple(np.round(s, 12))
+        if key != self._cache_key:
+            ops = port_operators(self.model, self.ports, s[None, :])[0]
+            self._cache_probs = probabilities(self.rho, ops)
+            self._cache_key = key
+        assert self._cache_probs is not None
+        return self._cache_probs
+
+    def source_power_w(self, t_s: float | None = None) -> float:
+        """Power arriving at the analyzer at ``t_s``: drift, beam loss and the shutter included, W."""
+        t = self.clock.now() if t_s is None else t_s
+        if self.shutter is not None and not self.shutter.transmits(t):
+            return 0.0
+        return self.power_w * self.drift.factor(t) * float(self.faults.beam_factor(t))
+
+    def _light_for(self, name: str) -> Callable[[], float]:
+        if name == self.bench.roles.reference:
+            return lambda: self.source_power_w() * self.reference_fraction
+        if name in {d.device for d in self.bench.roles.detectors}:
+            def light() -> float:
+                j = self.port_index[name]
+                return self.source_power_w() * (1.0 - self.reference_fraction) * float(self.port_probabilities()[j])
+            return light
+        return lambda: 0.0
