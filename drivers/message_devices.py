@@ -1,4 +1,4 @@
-"""Template-driven devices: each interface kind mapped onto command templates over a line transport."""
+"""Template-driven devices: each interface kind mapped onto command templates over a transport."""
 
 from __future__ import annotations
 
@@ -35,7 +35,9 @@ from drivers.replies import (
 from drivers.transport import LineTransport
 
 _MAX_QUEUED_ERRORS = 32
-_REPLY_HINT = "check options.reply_pattern / reply_scale and that the address is the right instrument"
+_REPLY_HINT = (
+    "check options.reply_pattern / reply_scale and that the address is the right instrument"
+)
 
 
 class MessageDevice:
@@ -122,7 +124,8 @@ class MessageDevice:
             raise NotSupported(
                 self.name,
                 None,
-                f"this {self.config.kind} has no command for {op!r} (options.commands.{op} is null)",
+                f"this {self.config.kind} has no command for {op!r} "
+                f"(options.commands.{op} is null)",
                 f"give the instrument's command as options.commands.{op} in the bench",
             )
         return template.format(**self.config.fields, **values)
@@ -155,7 +158,8 @@ class MessageDevice:
             ) from None
 
     def _query_float(self, op: str, timeout_s: float | None = None) -> float:
-        return self._parsed(op, parse_float, self.config.reply_scale.get(op, 1.0), timeout_s=timeout_s)
+        scale = self.config.reply_scale.get(op, 1.0)
+        return self._parsed(op, parse_float, scale, timeout_s=timeout_s)
 
     # ---- the error queue (SCPI-99 SYSTem:ERRor) ----
 

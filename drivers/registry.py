@@ -131,7 +131,9 @@ def _create_message_device(
     family, kind = split_driver(driver)
     config = parse_config(driver, options, limits)
     if not isinstance(address, str) or not address.strip():
-        example = "TCPIP::192.168.1.20::5025::SOCKET" if family == "visa" else "COM3 or socket://host:port"
+        example = "TCPIP::192.168.1.20::5025::SOCKET"
+        if family == "serial":
+            example = "COM3, /dev/ttyUSB0 or socket://host:port"
         raise DriverConfigError(
             f"driver {driver} needs an address, e.g. {example}", "address"
         )

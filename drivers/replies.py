@@ -1,4 +1,4 @@
-"""Pure parsers that turn an instrument's reply text into numbers, flags, lists and error entries."""
+"""Pure parsers turning an instrument's reply text into numbers, flags, lists and error entries."""
 
 from __future__ import annotations
 

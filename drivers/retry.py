@@ -14,7 +14,7 @@ OnRetry = Callable[[int, InstrumentError, float], None]
 
 
 def backoff_delays_s(attempts: int, backoff_s: float, max_backoff_s: float) -> list[float]:
-    """The pauses before attempts 2..``attempts``: ``backoff_s`` doubling, capped at ``max_backoff_s``."""
+    """Pauses before attempts 2..N: ``backoff_s``, doubling each time, capped at ``max_backoff_s``."""
     return [min(backoff_s * 2.0**k, max_backoff_s) for k in range(max(attempts - 1, 0))]
 
 

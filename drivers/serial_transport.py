@@ -7,6 +7,7 @@ from typing import Any
 
 import serial
 
+from drivers.errors import InstrumentTimeout
 from drivers.options import LineSettings
 from drivers.transport import LineTransport
 
@@ -76,6 +77,13 @@ class SerialTransport(LineTransport):
                 port.reset_input_buffer()
                 self._out_of_step = False
             port.write(data)
+        except serial.SerialTimeoutException as error:
+            raise InstrumentTimeout(
+                self.device,
+                command,
+                f"could not send within {self.settings.timeout_s:g} s: {error}",
+                "is the instrument holding the line (flow control)? check options.flow_control",
+            ) from error
         except (serial.SerialException, OSError) as error:
             raise self._lost(command, error) from error
 

@@ -14,6 +14,7 @@ class FaultPlan:
 
     mute: bool = False
     garble_next: int = 0
+    garble_with: bytes | None = None
     drop_next: bool = False
 
 
@@ -320,7 +321,8 @@ class FakeLineServer:
         with self._lock:
             if self.faults.garble_next > 0:
                 self.faults.garble_next -= 1
-                data = b"\x15#?" + data[::-1] + b"~"
+                garbled = self.faults.garble_with
+                data = b"\x15#?" + data[::-1] + b"~" if garbled is None else garbled
         try:
             connection.sendall(data + b"\n")
         except OSError:

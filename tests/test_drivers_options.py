@@ -95,7 +95,8 @@ def test_template_with_a_bad_format_spec_is_refused():
 
 
 def test_constant_fields_may_be_used_in_templates():
-    check_options("serial.rotation_stage", {"fields": {"axis": 2}, "commands": {"move": "{axis}PA{angle_deg}"}})
+    options = {"fields": {"axis": 2}, "commands": {"move": "{axis}PA{angle_deg}"}}
+    check_options("serial.rotation_stage", options)
 
 
 def test_reply_pattern_needs_exactly_one_group():

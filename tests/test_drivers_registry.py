@@ -120,6 +120,7 @@ def test_injected_plugins_replace_the_installed_ones():
         made.append((name, driver))
         return create_device(name, "serial.shutter", "COM1", options, limits)
 
-    device = create_device("sh", "lab.shutter", None, {}, None, plugins={"lab.shutter": lambda: factory})
+    plugins = {"lab.shutter": lambda: factory}
+    device = create_device("sh", "lab.shutter", None, {}, None, plugins=plugins)
     assert isinstance(device, Shutter) and made == [("sh", "lab.shutter")]
     assert "lab.shutter" in known_drivers({"lab.shutter": lambda: factory})

@@ -52,7 +52,9 @@ def test_counts_must_be_whole_and_non_negative():
         parse_count("-3")
 
 
-@pytest.mark.parametrize("text, flag", [("1", True), ("0", False), ("+0", False), ("ON", True), ("off", False)])
+@pytest.mark.parametrize(
+    "text, flag", [("1", True), ("0", False), ("+0", False), ("ON", True), ("off", False)]
+)
 def test_flags(text, flag):
     assert parse_flag(text) is flag
 

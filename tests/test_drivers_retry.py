@@ -41,7 +41,8 @@ def test_delays_double_up_to_the_cap():
 
 def test_one_transient_fault_is_survived_with_one_sleep():
     slept = []
-    result = call_with_retry(_failing([BadReply("pm", "MEAS?", "x")]), 3, 0.1, 1.0, None, slept.append)
+    flaky = _failing([BadReply("pm", "MEAS?", "x")])
+    result = call_with_retry(flaky, 3, 0.1, 1.0, None, slept.append)
     assert result == "ok" and slept == [0.1]
 
 
@@ -59,13 +60,18 @@ def test_gives_up_after_the_attempts_with_the_last_error():
 def test_non_transient_errors_are_not_retried():
     slept = []
     with pytest.raises(LimitViolation):
-        call_with_retry(_failing([LimitViolation("hwp", None, "far")]), 5, 0.1, 1.0, None, slept.append)
+        refused = _failing([LimitViolation("hwp", None, "far")])
+        call_with_retry(refused, 5, 0.1, 1.0, None, slept.append)
     assert slept == []
 
 
 def test_reconnects_after_a_timeout_or_a_lost_connection_but_not_after_a_bad_reply():
     device = CountingDevice()
-    errors = [BadReply("d", None, "x"), ConnectionLost("d", None, "y"), InstrumentTimeout("d", None, "z")]
+    errors = [
+        BadReply("d", None, "x"),
+        ConnectionLost("d", None, "y"),
+        InstrumentTimeout("d", None, "z"),
+    ]
     assert call_with_retry(_failing(errors), 4, 0, 0, None, lambda s: None, device=device) == "ok"
     assert device.reconnects == 2
 
@@ -78,7 +84,8 @@ def test_a_failing_reconnect_counts_as_a_failed_attempt():
 
     device = Unreachable()
     with pytest.raises(ConnectionLost, match="refused"):
-        call_with_retry(_failing([ConnectionLost("d", None, "drop")]), 3, 0, 0, None, lambda s: None, device=device)
+        dropped = _failing([ConnectionLost("d", None, "drop")])
+        call_with_retry(dropped, 3, 0, 0, None, lambda s: None, device=device)
     assert device.reconnects == 2
 
 
@@ -100,7 +107,9 @@ def test_a_reading_survives_a_dropped_connection_through_the_real_transport(rig,
     meter = rig.device(family, "power_meter", server)
     meter.read_power_w(0.01)
     server.faults.drop_next = True
-    value = call_with_retry(lambda: meter.read_power_w(0.01), 3, 0.01, 0.1, None, lambda s: None, device=meter)
+    value = call_with_retry(
+        lambda: meter.read_power_w(0.01), 3, 0.01, 0.1, None, lambda s: None, device=meter
+    )
     assert value == pytest.approx(1.01e-4, rel=1e-6)
 
 

@@ -6,7 +6,7 @@ import time
 
 import pytest
 
-from drivers.errors import DeviceFault, InstrumentTimeout, LimitViolation, NotSupported
+from drivers.errors import BadReply, DeviceFault, InstrumentTimeout, LimitViolation, NotSupported
 from drivers_fake_server import FAMILIES, Rig
 
 
@@ -142,8 +142,6 @@ def test_reply_pattern_reads_a_decorated_position(rig, family):
 
 
 def test_decorated_position_without_a_pattern_is_a_bad_reply(rig, family):
-    from drivers.errors import BadReply
-
     server = rig.server("stage", position_format="POS={:.3f} deg")
     stage = rig.device(family, "rotation_stage", server)
     with pytest.raises(BadReply, match="POS=0.000 deg"):

@@ -79,6 +79,17 @@ def test_garbled_reply_raises_bad_reply_with_the_raw_text(rig, family):
     assert stage.position_deg() == 0.0
 
 
+def test_reply_that_is_not_valid_text_raises_bad_reply_with_the_bytes(rig, family):
+    server = rig.server("stage")
+    stage = rig.device(family, "rotation_stage", server)
+    stage.connect()
+    server.faults.garble_next, server.faults.garble_with = 1, b"\xff\xfe12"
+    with pytest.raises(BadReply) as caught:
+        stage.position_deg()
+    assert "xff" in str(caught.value) and "ascii" in str(caught.value)
+    assert stage.position_deg() == 0.0
+
+
 def test_connection_dropped_before_a_command_raises_connection_lost_at_once(rig, family):
     server = rig.server("stage")
     stage = rig.device(family, "rotation_stage", server, {"timeout_s": 2.0}, name="hwp")
