@@ -27,7 +27,7 @@ from sequencer.fields import (
     fail,
     frozen_matrix,
     normalized_ket,
-    suggestion,
+    aside,
     text,
     retyped,
 )
@@ -323,10 +323,32 @@ class Bench:
     sha256: str
     source_path: str = field(compare=False)
     extends: tuple[str, ...] = field(compare=False)
+    tree: YMap | None = field(default=None, compare=False, repr=False)
 
     @property
     def is_simulated(self) -> bool:
         return self.simulation is not None
+
+    def locate(self, path: str) -> tuple[str, int]:
+        """(file, line) where the dotted ``path`` (``devices.pm_hH.options.timeout_s``) was written.
+
+        Falls back to the deepest part of the path that exists, so a message can always point somewhere.
+        """
+        where = (self.source_path, 1)
+        node: YNode | None = self.tree
+        for part in path.split("."):
+            if isinstance(node, YSeq) and part.isdigit() and int(part) < len(node.items):
+                node = node.items[int(part)]
+                where = (node.file, node.line)
+                continue
+            entry = node.entry(part) if isinstance(node, YMap) else None
+            if entry is None:
+                break
+            where = (node.file, entry.key_line)  # type: ignore[union-attr]
+            if isinstance(entry.value, YScalar):
+                where = (entry.value.file, entry.value.line)
+            node = entry.value
+        return where
 
     def device_for(self, role: str) -> DeviceSpec | None:
         """The device playing ``role`` (one of the single-device roles), or None."""
@@ -345,7 +367,10 @@ def _frozen_value(node: YNode, what: str) -> Any:
 
 
 def plugin_names() -> frozenset[str]:
-    """Names registered under the ``lightloom.drivers`` entry-point group (no plugin code is imported)."""
+    """Driver names (``family.kind``) registered under the ``lightloom.drivers`` entry-point group.
+
+    No plugin code is imported.
+    """
     try:
         return frozenset(ep.name for ep in importlib.metadata.entry_points(group=PLUGIN_GROUP))
     except Exception:  # a broken distribution's metadata must not stop a bench from validating
@@ -383,12 +408,13 @@ def _device(name: str, key_line: int, node: YNode, plugins: frozenset[str]) -> D
     if not dot or not family:
         fail(f"{sec.name('driver')}: expected FAMILY.KIND such as sim.rotation_stage, got '{driver}'", driver_node)
     if kind not in KINDS:
-        fail(f"{sec.name('driver')}: unknown device kind '{kind}'{suggestion(kind, KINDS)}; expected one of"
+        fail(f"{sec.name('driver')}: unknown device kind '{kind}'{aside(kind, KINDS)}; expected one of"
              f" {', '.join(KINDS)}", driver_node)
-    families = TRANSPORTS + tuple(sorted(plugins))
-    if family not in families and driver not in plugins:
-        fail(f"{sec.name('driver')}: unknown driver family '{family}'{suggestion(family, families)}; expected"
-             f" sim, visa, serial or an installed plugin ({', '.join(sorted(plugins)) or 'none installed'})",
+    if family not in TRANSPORTS and driver not in plugins:
+        known = [f"{f}.{kind}" for f in TRANSPORTS] + sorted(plugins)
+        fail(f"{sec.name('driver')}: unknown driver '{driver}'{aside(driver, known)}; expected sim.{kind},"
+             f" visa.{kind}, serial.{kind} or an installed plugin driver"
+             f" ({', '.join(sorted(plugins)) or 'none installed'})",
              driver_node)
     sec.check_keys(_COMMON_DEVICE_KEYS + _KIND_KEYS[kind])
 
@@ -463,7 +489,7 @@ def _device_ref(node: YNode, what: str, devices: Mapping[str, DeviceSpec], kinds
                 purpose: str) -> str:
     name = text(node, what)
     if name not in devices:
-        fail(f"{what}: no device named '{name}'{suggestion(name, devices)}; devices are"
+        fail(f"{what}: no device named '{name}'{aside(name, devices)}; devices are"
              f" {', '.join(devices)}", node)
     kind = devices[name].kind
     if kind not in kinds:
@@ -738,7 +764,7 @@ def _faults(seq: YSeq | None, devices: Mapping[str, DeviceSpec]) -> tuple[Fault,
             node = sec.require("device", "the name of the device that misbehaves")
             device = text(node, sec.name("device"))
             if device not in devices:
-                fail(f"{sec.name('device')}: no device named '{device}'{suggestion(device, devices)}; devices"
+                fail(f"{sec.name('device')}: no device named '{device}'{aside(device, devices)}; devices"
                      f" are {', '.join(devices)}", node)
         timing = [k for k in ("at_s", "probability") if sec.has(k)]
         if kind == "beam_loss" and timing != ["at_s"]:
@@ -828,6 +854,7 @@ def _bench_from_tree(root: YMap, source_path: str, extends: tuple[str, ...]) -> 
         sha256=hashlib.sha256(resolved_text.encode("utf-8")).hexdigest(),
         source_path=source_path,
         extends=extends,
+        tree=root,
     )
 
 

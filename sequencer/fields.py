@@ -61,10 +61,26 @@ def described(node: YNode) -> str:
     return node.shown()
 
 
+def nearest(word: str, choices: Iterable[str]) -> str | None:
+    """The choice closest to ``word`` (a match ignoring case first), or None."""
+    options = list(choices)
+    for option in options:
+        if option.lower() == word.lower():
+            return option
+    close = difflib.get_close_matches(word, options, n=1, cutoff=0.6)
+    return close[0] if close else None
+
+
 def suggestion(word: str, choices: Iterable[str]) -> str:
-    """``"; did you mean 'x'?"`` for the nearest choice, or an empty string."""
-    close = difflib.get_close_matches(word, list(choices), n=1, cutoff=0.6)
-    return f"; did you mean '{close[0]}'?" if close else ""
+    """``"; did you mean 'x'?"`` for the nearest choice, or an empty string (ends a message)."""
+    close = nearest(word, choices)
+    return f"; did you mean '{close}'?" if close else ""
+
+
+def aside(word: str, choices: Iterable[str]) -> str:
+    """``" (did you mean 'x'?)"`` for the nearest choice, or an empty string (inside a message)."""
+    close = nearest(word, choices)
+    return f" (did you mean '{close}'?)" if close else ""
 
 
 def unit_phrase(unit: str) -> str:
@@ -345,7 +361,8 @@ def density_matrix(node: YNode, what: str, n: int) -> tuple[tuple[complex, ...],
     rows = [complex_list(row, f"{what}[{i}]", n) for i, row in enumerate(seq.items)]
     m = np.array(rows, dtype=np.complex128)
     scale = max(1.0, float(np.abs(m).max()))
-    bad = np.argwhere(np.abs(m - m.conj().T) > HERMITIAN_TOLERANCE * scale)
+    # Report the entry below the diagonal: people write the upper triangle first and copy it down.
+    bad = np.argwhere(np.tril(np.abs(m - m.conj().T) > HERMITIAN_TOLERANCE * scale))
     if bad.size:
         i, j = (int(x) for x in bad[0])
         fail(

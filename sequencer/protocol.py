@@ -29,7 +29,7 @@ from sequencer.fields import (
     normalized_ket,
     number,
     retyped,
-    suggestion,
+    aside,
 )
 from sequencer.optics.states import (
     JOINT_KETS,
@@ -261,7 +261,7 @@ def _named_target(node: YScalar, factor: str, what: str) -> FactorTarget:
             " (polarization names are upper case, spatial modes lower case)",
             node,
         )
-    hint = suggestion(name, names) if isinstance(name, str) else ""
+    hint = aside(name, names) if isinstance(name, str) else ""
     fail(
         f"{what}: unknown {factor} target {described(node)}{hint}; expected one of {expected},"
         " {stokes: [s1, s2, s3]} or {ket: [a, b]}",
@@ -277,8 +277,7 @@ def _stokes_vector(node: YNode, what: str) -> tuple[float, float, float]:
     seq = expect_seq(node, what, "[s1, s2, s3]")
     if len(seq) != 3:
         fail(f"{what}: expected three numbers [s1, s2, s3], got {len(seq)}", seq)
-    return tuple(number(item, f"{what}[{i}]", ge=-1.0 - STOKES_UNIT_TOLERANCE, le=1.0 + STOKES_UNIT_TOLERANCE)
-                 for i, item in enumerate(seq.items))  # type: ignore[return-value]
+    return tuple(number(item, f"{what}[{i}]") for i, item in enumerate(seq.items))  # type: ignore[return-value]
 
 
 def factor_target(node: YNode, factor: str, what: str) -> FactorTarget:
@@ -379,7 +378,7 @@ def _measure_targets(sec: Section, analyzes: tuple[str, ...]) -> list[Measuremen
             fail(
                 f"{sec.name('combine')}: zip needs equally long lists, got {len(lists[0])} polarization"
                 f" and {len(lists[1])} spatial targets; use combine: product or make them equal",
-                sec.node,
+                sec.node.get("combine") or sec.node,
             )
         for p, s, line in zip(lists[0], lists[1], lines[0]):
             points.append(_targets_point({p.factor: p, s.factor: s}, line))
@@ -476,7 +475,7 @@ def _target_state(sec: Section, analyzes: tuple[str, ...]) -> tuple[tuple[tuple[
             listed = ", ".join(names)
         value = node.value if isinstance(node, YScalar) else None
         if not isinstance(value, str) or value not in names:
-            hint = suggestion(value, names) if isinstance(value, str) else ""
+            hint = aside(value, names) if isinstance(value, str) else ""
             fail(
                 f"{what}: unknown target state {described(node)} for a {dim}-dimensional"
                 f" ({' x '.join(analyzes)}) protocol{hint}; expected {listed}",

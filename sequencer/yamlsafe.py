@@ -281,7 +281,11 @@ def parse_text(text: str, file: str) -> YNode:
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         line = mark.line + 1 if mark is not None else 1
-        what = " ".join(p for p in (exc.context, exc.problem) if p)
+        what = exc.problem or "syntax error"
+        if exc.context:
+            opened = exc.context_mark.line + 1 if exc.context_mark is not None else None
+            where = f" started at line {opened}" if opened is not None and opened != line else ""
+            what = f"{what} ({exc.context}{where})"
         raise InputError(f"not valid YAML: {what}", file, line) from None
     except yaml.reader.ReaderError as exc:
         raise InputError(
@@ -348,6 +352,20 @@ def merge(base: YNode, override: YNode) -> YNode:
     return YMap(tuple(entries[k] for k in order), override.line, override.file)
 
 
+class _Dumper(yaml.SafeDumper):
+    """SafeDumper that quotes text this module would read back as a number (``1e-3``)."""
+
+    def represent_str(self, data: str) -> yaml.ScalarNode:
+        if _EXPONENT_FLOAT.match(data):
+            return self.represent_scalar(_TAG + "str", data, style="'")
+        return super().represent_str(data)
+
+
+_Dumper.add_representer(str, _Dumper.represent_str)
+
+
 def dump_plain(data: Any) -> str:
-    """Render plain data as block-style YAML that this module reads back to the same data."""
-    return yaml.safe_dump(data, sort_keys=False, default_flow_style=None, allow_unicode=True, width=100)
+    """Render plain data as YAML (flow style for innermost collections) that reads back to the same data."""
+    return yaml.dump(
+        data, Dumper=_Dumper, sort_keys=False, default_flow_style=None, allow_unicode=True, width=100
+    )

@@ -8,6 +8,7 @@ import json
 from typing import Any
 
 from sequencer.bench import Bench, load_bench
+from sequencer.errors import BenchError
 from sequencer.protocol import Protocol, load_protocol
 
 
@@ -70,21 +71,64 @@ def bench_summary(bench: Bench) -> dict[str, Any]:
     }
 
 
+def driver_options_check(bench: Bench) -> None:
+    """Check the options of visa./serial. devices against their drivers' schema, at the line written.
+
+    The bench language passes ``options`` through untouched; the driver families own their keys.
+    """
+    try:
+        options_module = importlib.import_module("drivers.options")
+    except ModuleNotFoundError as exc:
+        if exc.name not in ("drivers", "drivers.options"):
+            raise
+        return
+    check = getattr(options_module, "check_options", None)
+    error_type = getattr(options_module, "DriverConfigError", None)
+    if check is None or error_type is None:
+        return
+    for spec in bench.devices.values():
+        if spec.family not in ("visa", "serial"):
+            continue
+        try:
+            check(spec.driver, spec.options)
+        except error_type as exc:
+            path = f"devices.{spec.name}" + (f".{exc.key}" if getattr(exc, "key", None) else "")
+            file, line = bench.locate(path)
+            raise BenchError(f"{path}: {exc.message}", file, line) from None
+
+
+def _find_compiler() -> Any:
+    # The compiler may live in either module; a missing one means this version cannot compile yet.
+    for module_name in ("sequencer.tablemodel", "sequencer.compiler"):
+        try:
+            module = importlib.import_module(module_name)
+        except ModuleNotFoundError as exc:
+            if exc.name != module_name:
+                raise
+            continue
+        compile_protocol = getattr(module, "compile_protocol", None)
+        if compile_protocol is not None:
+            return compile_protocol
+    return None
+
+
 def compile_check(protocol: Protocol, bench: Bench) -> dict[str, Any]:
     """Compile against the bench when the compiler is present, to catch settings the table cannot reach.
 
-    Compile errors propagate (they are LightloomErrors: one line, exit status 2).
+    Compile errors propagate (they are LightloomErrors: one line, exit status 2); moves outside the
+    travel limits are a BenchError.
     """
-    try:
-        compiler = importlib.import_module("sequencer.compiler")
-    except ModuleNotFoundError as exc:
-        if exc.name != "sequencer.compiler":
-            raise
-        compiler = None
-    compile_protocol = getattr(compiler, "compile_protocol", None)
+    compile_protocol = _find_compiler()
     if compile_protocol is None:
         return {"checked": False, "reason": "the compiler is not available in this version"}
     plan = compile_protocol(protocol, bench)
+    violations = list(getattr(plan, "violations", ()) or ())
+    if violations:
+        more = f" (and {len(violations) - 1} more)" if len(violations) > 1 else ""
+        raise BenchError(
+            f"protocol '{protocol.name}' needs moves outside the travel limits of bench '{bench.name}':"
+            f" {violations[0]}{more}; widen devices.*.limits or change the protocol"
+        )
     steps = getattr(plan, "steps", plan)
     result: dict[str, Any] = {"checked": True}
     if hasattr(steps, "__len__"):
@@ -149,6 +193,8 @@ def render_text(summary: dict[str, Any]) -> str:
 def run(args: argparse.Namespace) -> int:
     protocol = load_protocol(args.protocol)
     bench = load_bench(args.bench) if args.bench else None
+    if bench is not None:
+        driver_options_check(bench)
     summary: dict[str, Any] = {
         "protocol": protocol_summary(protocol),
         "bench": bench_summary(bench) if bench is not None else None,
