@@ -1,0 +1,102 @@
+"""``lightloom analyze FILE.h5 [--json] [--plots DIR]``: states, figures of merit and error bars."""
+
+from __future__ import annotations
+
+import argparse
+import json
+
+import numpy as np
+from rich.console import Console
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser("analyze", help="reconstruct the state of a run (complete, interrupted or still running)")
+    p.add_argument("file", help="run file (FILE.h5) or its journal")
+    p.add_argument("--json", action="store_true", help="print the result as JSON")
+    p.add_argument("--plots", metavar="DIR", help="write PNG figures into DIR")
+    p.add_argument("--bench", help="recompute the operators from the read-back positions with this bench's calibration (e.g. a calibrate overlay)")
+    p.add_argument("--normalize", action="store_true", help="normalise each setting over its complementary ports (cancels drift without a reference meter)")
+    p.add_argument("--bootstrap", type=int, default=200, metavar="N", help="bootstrap resamples for the error bars (default 200)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
+    p.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    from sequencer.analysis import AnalysisError, estimate, prepare, result_json, target_of
+    from sequencer.errors import UsageError
+    from sequencer.storage.store import load_run
+
+    if args.bootstrap < 2:
+        raise UsageError("--bootstrap needs at least 2 resamples")
+    data = load_run(args.file)
+    operators = None
+    if args.bench:
+        operators = _recomputed_operators(data, args.bench)
+    try:
+        prep = prepare(data, normalize=args.normalize, operators=operators)
+        est = estimate(prep, target=target_of(data), rng=np.random.default_rng(args.seed), n_bootstrap=args.bootstrap)
+    except AnalysisError as exc:
+        raise UsageError(f"{args.file}: {exc}") from None
+    doc = result_json(data, est)
+    if args.bench:
+        doc["corrections"]["operators"] = f"recomputed from read-back positions with the calibration of {args.bench}"
+    if args.plots:
+        doc["plots"] = [str(p) for p in _plots(data, est, args.plots)]
+    if args.json:
+        print(json.dumps(doc, indent=1))
+    else:
+        from sequencer.report import print_report
+
+        console = Console()
+        print_report(console, doc)
+        for p in doc.get("plots", []):
+            console.print(f"  figure: {p}", highlight=False)
+    return 0
+
+
+def _recomputed_operators(data, bench_spec: str) -> np.ndarray:
+    from sequencer.bench import load_bench
+    from sequencer.errors import UsageError
+    from sequencer.optics.analyzer import port_operators
+    from sequencer.tablemodel import table_model
+
+    bench = load_bench(bench_spec)
+    table = table_model(bench)
+    if tuple(p.name for p in table.ports) != tuple(data.header.port_names):
+        raise UsageError(
+            f"bench {bench_spec} has detector ports {[p.name for p in table.ports]}, the run has "
+            f"{list(data.header.port_names)}; use the bench of the run or an overlay of it"
+        )
+    return port_operators(table.analyzer, table.ports, data.readings.readback)
+
+
+def _plots(data, est, directory: str) -> list:
+    from pathlib import Path
+
+    from sequencer.errors import UsageError
+
+    try:
+        from sequencer import plots
+    except ImportError as exc:  # plots extra missing
+        raise UsageError(f"plots need matplotlib: pip install 'lightloom[plots]' ({exc})") from None
+    out = Path(directory)
+    written = []
+    try:
+        written.append(plots.plot_density_matrix(est.rho, list(est.basis), out / "density_matrix.png",
+                                                 title=f"{data.header.protocol_name}: reconstructed state"))
+        points = {f: np.array([v for v, _ in s]) for f, s in est.stokes.items()}
+        unc = {f: float(np.sqrt(sum(sd**2 for _, sd in s[1:]))) for f, s in est.stokes.items()}
+        written.append(plots.plot_poincare(points, out / "poincare.png", title="reduced states", uncertainties=unc))
+        r = data.readings
+        lit = ~r.of_kind("background")
+        ref = r.reference_w[lit]
+        t = 0.5 * (r.t_start + r.t_end)[lit]
+        if np.isfinite(ref).any():
+            flagged = (r.flags[lit] & 1) != 0
+            t0 = float(t.min()) if len(t) else 0.0
+            events = [(e.t - t0, e.kind) for e in data.events if e.kind in ("beam_lost", "beam_back", "drift", "fault", "interrupted", "resume")]
+            written.append(plots.plot_reference_trace(t - t0, ref, out / "reference.png",
+                                                      title="reference (pick-off) power", flagged=flagged, events=events))
+    except getattr(plots, "PlotsUnavailable", ImportError) as exc:
+        raise UsageError(str(exc)) from None
+    return written
