@@ -81,16 +81,16 @@ def design_matrix(operators: np.ndarray) -> np.ndarray:
 def least_squares_operator(design: np.ndarray, weights: np.ndarray | None = None) -> tuple[np.ndarray, int]:
     """Weighted least-squares solution operator P (d*d, n) with x = P @ v, and the rank of the design.
 
-    Minimises sum_i w_i (v_i - (A x)_i)^2; with a rank-deficient design the minimum-norm solution.
+    Minimises sum_i w_i (v_i - (A x)_i)^2; with a rank-deficient design, the minimum-norm solution.
+    Solved through the eigen-decomposition of the small Gram matrix A^T W A (d*d x d*d), which is
+    cheap and, for tomographic designs, well conditioned.
     """
-    if weights is None:
-        w_sqrt = np.ones(design.shape[0])
-    else:
-        w_sqrt = np.sqrt(weights)
-    weighted = design * w_sqrt[:, None]
-    pinv = np.linalg.pinv(weighted, rcond=1e-10)
-    rank = int(np.linalg.matrix_rank(weighted, tol=1e-10 * max(np.linalg.norm(weighted, 2), 1e-300)))
-    return pinv * w_sqrt[None, :], rank
+    w = np.ones(design.shape[0]) if weights is None else np.asarray(weights, dtype=float)
+    gram = design.T @ (design * w[:, None])
+    lam, vec = np.linalg.eigh(gram)
+    kept = lam > 1e-12 * max(float(lam[-1]), np.finfo(float).tiny)
+    inverse = (vec[:, kept] / lam[kept]) @ vec[:, kept].T
+    return inverse @ (design.T * w[None, :]), int(np.count_nonzero(kept))
 
 
 def _weights_from_sigma(sigma: np.ndarray | None, n: int) -> np.ndarray | None:
