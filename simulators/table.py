@@ -50,13 +50,19 @@ class Drift:
 class SimulatedTable:
     """All simulated devices of a simulated bench, sharing one clock, one source and one physics."""
 
-    def __init__(self, bench: Bench, *, wall_sleep: Callable[[float], None] | None = None) -> None:
+    def __init__(
+        self,
+        bench: Bench,
+        *,
+        wall_sleep: Callable[[float], None] | None = None,
+        time_scale: float | None = None,
+    ) -> None:
         sim = bench.simulation
         if sim is None:
             raise ValueError(f"bench '{bench.name}' has no simulation section")
         self.bench = bench
         kwargs = {} if wall_sleep is None else {"wall_sleep": wall_sleep}
-        self.clock = SimClock(sim.time_scale, **kwargs)
+        self.clock = SimClock(sim.time_scale if time_scale is None else time_scale, **kwargs)
         seeds = np.random.SeedSequence(sim.seed)
         fault_seed, drift_seed, *device_seeds = seeds.spawn(2 + len(bench.devices))
         self.faults = FaultInjector(
