@@ -116,7 +116,7 @@ def test_kill9_during_creation_leaves_a_run_that_resumes_or_nothing(tmp_path):
     for trial in range(6):
         path = tmp_path / f"new{trial}.h5"
         writer = start_writer("create", str(path))
-        lines = kill_after_lines(writer, 1, rng.uniform(0, 0.012))
+        lines = kill_after_lines(writer, 1, rng.uniform(0, 0.04))
         journal = path.with_name(path.name + ".journal")
         if journal.exists():
             RunStore.reopen(path).close("interrupted")

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import os
 import shutil
+from dataclasses import replace
 from itertools import count
 
 import numpy as np
@@ -209,3 +210,9 @@ def test_load_run_reads_a_run_of_every_final_status(tmp_path, status):
 def test_load_run_of_nothing_is_a_storage_error(tmp_path):
     with pytest.raises(StorageError, match="no such run"):
         load_run(tmp_path / "ghost.h5")
+
+
+def test_create_refuses_a_header_of_another_format_version(tmp_path):
+    with pytest.raises(ValueError, match="format_version"):
+        RunStore.create(tmp_path / "run.h5", replace(make_header(), format_version=2))
+    assert list(tmp_path.iterdir()) == []

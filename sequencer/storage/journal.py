@@ -19,6 +19,8 @@ from pathlib import Path
 
 import numpy as np
 
+from sequencer.errors import StorageError
+
 from .atomic import publish, sync_fd, temp_path
 from .codec import (
     JOURNAL_FORMAT, TYPE_EVENT, TYPE_HEADER, TYPE_READING, TYPE_STATUS, Damage, ReadingLayout,
@@ -27,7 +29,6 @@ from .codec import (
 )
 from .errors import JournalDamagedError, RunExistsError, RunInUseError, StorageWriteError
 from .records import FORMAT_VERSION, Event, Reading, ReadingTable, RunHeader
-from sequencer.errors import StorageError
 
 try:
     import fcntl

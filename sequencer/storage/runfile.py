@@ -34,7 +34,8 @@ from __future__ import annotations
 import datetime as dt
 import json
 import os
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -293,9 +294,9 @@ def _read_events(f: h5py.File) -> tuple[Event, ...]:
     return tuple(Event(float(t[i]), str(names[codes[i]]), str(messages[i])) for i in range(len(t)))
 
 
-def read_runfile(h5_path: str | os.PathLike[str]) -> RunData:
-    """Read a whole run file; raises StorageError if it is missing, unreadable or not a run."""
-    h5_path = Path(h5_path)
+@contextmanager
+def _open_run(h5_path: Path) -> Iterator[h5py.File]:
+    """Open a run file for reading, turning every way it can be unusable into StorageError."""
     if not h5_path.exists():
         raise StorageError(f"{h5_path}: no such run file")
     try:
@@ -306,15 +307,7 @@ def read_runfile(h5_path: str | os.PathLike[str]) -> RunData:
                     f"{h5_path}: written by a newer lightloom (file format {version}); upgrade "
                     "lightloom to read it"
                 )
-            header = _read_header(f)
-            return RunData(
-                header=header,
-                readings=_read_table(f, header),
-                events=_read_events(f),
-                status=_str(f.attrs["status"]),
-                message=_str(f.attrs["status_message"]),
-                source="runfile",
-            )
+            yield f
     except StorageError:
         raise
     except KeyError as exc:
@@ -326,3 +319,23 @@ def read_runfile(h5_path: str | os.PathLike[str]) -> RunData:
             f"{h5_path}: not a readable HDF5 file ({exc}); if its journal "
             f"{h5_path.name}.journal is beside it, `lightloom resume` or analyze rebuilds it"
         ) from exc
+
+
+def read_runfile_header(h5_path: str | os.PathLike[str]) -> tuple[RunHeader, int]:
+    """The header of a run file and its number of readings, without reading the readings."""
+    with _open_run(Path(h5_path)) as f:
+        return _read_header(f), int(f.attrs["n_readings"])
+
+
+def read_runfile(h5_path: str | os.PathLike[str]) -> RunData:
+    """Read a whole run file; raises StorageError if it is missing, unreadable or not a run."""
+    with _open_run(Path(h5_path)) as f:
+        header = _read_header(f)
+        return RunData(
+            header=header,
+            readings=_read_table(f, header),
+            events=_read_events(f),
+            status=_str(f.attrs["status"]),
+            message=_str(f.attrs["status_message"]),
+            source="runfile",
+        )

@@ -19,8 +19,8 @@ from sequencer.errors import StorageError
 from .atomic import stale_temp_paths
 from .errors import RunExistsError
 from .journal import Journal, read_journal, writer_active
-from .records import Event, Reading, ReadingTable, RunData, RunHeader
-from .runfile import read_runfile, utc_now_iso, write_runfile
+from .records import FORMAT_VERSION, Event, Reading, ReadingTable, RunData, RunHeader
+from .runfile import read_runfile, read_runfile_header, utc_now_iso, write_runfile
 
 JOURNAL_SUFFIX = ".journal"
 FINAL_STATUSES = ("complete", "interrupted", "fault")
@@ -81,6 +81,11 @@ class RunStore:
 
         Raises RunExistsError if the run file or its journal exists already.
         """
+        if header.format_version != FORMAT_VERSION:
+            raise ValueError(
+                f"header format_version {header.format_version}; this lightloom writes "
+                f"{FORMAT_VERSION} (use sequencer.storage.FORMAT_VERSION)"
+            )
         h5_path, journal_path = run_paths(h5_path)
         for found in (h5_path, journal_path):
             if found.exists():
@@ -222,29 +227,31 @@ def load_run(path: str | os.PathLike[str]) -> RunData:
     whose journal no process holds is shown as "interrupted".
     """
     h5_path, journal_path = run_paths(path)
-    from_file: RunData | None = None
+    file_header: RunHeader | None = None
+    file_count = 0
     file_error: StorageError | None = None
     if h5_path.exists():
         try:
-            from_file = read_runfile(h5_path)
+            file_header, file_count = read_runfile_header(h5_path)
         except StorageError as exc:
             file_error = exc
-    chosen = from_file
+    chosen: RunData | None = None
     if journal_path.exists():
         try:
             contents = read_journal(journal_path)
         except StorageError:
-            if from_file is None:
+            if file_header is None:
                 raise
         else:
-            if from_file is None or (
-                contents.header == from_file.header
-                and len(contents.readings) >= len(from_file.readings)
+            if file_header is None or (
+                contents.header == file_header and len(contents.readings) >= file_count
             ):
                 chosen = RunData(
                     contents.header, contents.readings, contents.events, contents.status,
                     contents.status_message, source="journal",
                 )
+    if chosen is None and file_header is not None:
+        chosen = read_runfile(h5_path)
     if chosen is None:
         if file_error is not None:
             raise file_error

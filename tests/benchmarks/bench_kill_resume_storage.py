@@ -55,7 +55,7 @@ def create_kills(tmp: Path, kills: int, rng: random.Random) -> None:
     for trial in range(kills):
         path = tmp / f"new{trial}.h5"
         writer = start_writer("create", str(path))
-        kill_after_lines(writer, 1, rng.uniform(0, 0.015))
+        kill_after_lines(writer, 1, rng.uniform(0, 0.045))
         journal = path.with_name(path.name + ".journal")
         h5_ok = True
         try:
@@ -76,8 +76,10 @@ def main(append: int = 50, create: int = 40) -> None:
     rng = random.Random(4242)
     with tempfile.TemporaryDirectory() as tmpdir:
         tmp = Path(tmpdir)
-        append_kills(tmp, append, rng)
-        create_kills(tmp, create, rng)
+        if append:
+            append_kills(tmp, append, rng)
+        if create:
+            create_kills(tmp, create, rng)
 
 
 if __name__ == "__main__":

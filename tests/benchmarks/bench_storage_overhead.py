@@ -16,6 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
+import sequencer.storage.journal as journal_module
 from sequencer.storage import Reading, RunHeader, RunStore
 from sequencer.storage.atomic import sync_fd
 from sequencer.storage.codec import (
@@ -53,14 +54,14 @@ def make_readings(n: int, seed: int = 1) -> list[Reading]:
     ]
 
 
-def bare_loop_s(path: Path, blobs: list[bytes]) -> list[float]:
+def bare_loop_s(path: Path, blobs: list[bytes], sync=sync_fd) -> list[float]:
     fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o644)
     costs = []
     try:
         for blob in blobs:
             t0 = time.perf_counter()
             os.write(fd, blob)
-            sync_fd(fd)
+            sync(fd)
             costs.append(time.perf_counter() - t0)
     finally:
         os.close(fd)
@@ -95,13 +96,21 @@ def main(rounds: int = 10, per_round: int = 200, n_rebuild: int = 20_000) -> Non
             ours += record_s(store, readings[chunk])
             bare += bare_loop_s(tmp / "bare.bin", blobs[chunk])
         store.close("complete")
+        journal_module.sync_fd = lambda fd: None
+        cpu_store = RunStore.create(tmp / "cpu.h5", header)
+        cpu_ours = record_s(cpu_store, readings)
+        cpu_bare = bare_loop_s(tmp / "cpu.bin", blobs, sync=lambda fd: None)
+        cpu_store.close("complete")
+        journal_module.sync_fd = sync_fd
         med_ours, med_bare = statistics.median(ours), statistics.median(bare)
-        print(f"sync call: {sync_fd.__doc__.split(':')[0]}")
+        print(f"sync call: {sync_fd.__doc__.strip()}")
         print(f"reading frame: {len(blobs[0])} bytes (4 ports, 5 elements, d=4)")
         print(f"encode+frame per reading: {encode_us:.1f} us")
         print(f"record() median: {med_ours * 1e3:.3f} ms over {len(ours)} readings")
         print(f"bare os.write+sync median: {med_bare * 1e3:.3f} ms over {len(bare)} writes")
         print(f"ratio record()/bare: {med_ours / med_bare:.3f}")
+        print(f"without the sync (CPU only): record() {statistics.median(cpu_ours) * 1e6:.1f} us, "
+              f"bare os.write {statistics.median(cpu_bare) * 1e6:.1f} us")
 
         big = make_readings(n_rebuild, seed=2)
         journal = tmp / "big.h5.journal"
