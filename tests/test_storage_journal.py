@@ -188,6 +188,43 @@ def test_failed_write_is_undone_and_the_journal_stays_valid(tmp_path, monkeypatc
     np.testing.assert_array_equal(contents.readings.step_index, [0, 1, 2])
 
 
+def test_ctrl_c_during_the_sync_keeps_the_written_reading_in_memory_too(tmp_path, monkeypatch):
+    path = tmp_path / "run.h5.journal"
+    journal = _filled(path, 2, events=False)
+
+    def interrupted_sync(fd):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(journal_module, "sync_fd", interrupted_sync)
+    with pytest.raises(KeyboardInterrupt):
+        journal.append_reading(make_reading(2))
+    monkeypatch.undo()
+    assert journal.n_readings == 3
+    journal.append_reading(make_reading(3))
+    journal.close()
+    np.testing.assert_array_equal(read_journal(path).readings.step_index, [0, 1, 2, 3])
+
+
+def test_ctrl_c_during_a_partial_write_cuts_the_torn_record(tmp_path, monkeypatch):
+    path = tmp_path / "run.h5.journal"
+    journal = _filled(path, 2, events=False)
+    size = path.stat().st_size
+    real_write = os.write
+
+    def half_then_interrupt(fd, data):
+        real_write(fd, bytes(data[: len(data) // 2]))
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(journal_module.os, "write", half_then_interrupt)
+    with pytest.raises(KeyboardInterrupt):
+        journal.append_event(Event(1.0, "interrupted", "Ctrl-C"))
+    monkeypatch.undo()
+    assert path.stat().st_size == size and journal.events == ()
+    journal.append_event(Event(2.0, "note", "after"))
+    journal.close()
+    assert [e.message for e in read_journal(path).events] == ["after"]
+
+
 def test_failed_sync_stops_every_later_append(tmp_path, monkeypatch):
     path = tmp_path / "run.h5.journal"
     journal = _filled(path, 1, events=False)

@@ -92,17 +92,14 @@ def check_run(path: Path, reported: set[int]) -> int:
 
 def test_kill9_during_appends_loses_no_reported_reading(tmp_path):
     rng = random.Random(20260304)
-    total = 600
+    total = 200
     for trial in range(3):
         path = tmp_path / f"run{trial}.h5"
-        for _ in range(3):
+        for _ in range(2):
             writer = start_writer("append", str(path), str(total))
-            lines = kill_after_lines(writer, rng.randint(3, 120), rng.uniform(0, 0.004))
+            lines = kill_after_lines(writer, rng.randint(3, 60), rng.uniform(0, 0.004))
             assert writer.returncode == -signal.SIGKILL
             check_run(path, reported_indices(lines))
-        store = RunStore.reopen(path)
-        assert store.bytes_cut >= 0
-        store.release()
         writer = start_writer("append", str(path), str(total))
         out, _ = writer.communicate(timeout=120)
         assert writer.returncode == 0 and out.splitlines()[-1] == "closed"
@@ -113,7 +110,7 @@ def test_kill9_during_appends_loses_no_reported_reading(tmp_path):
 
 def test_kill9_during_creation_leaves_a_run_that_resumes_or_nothing(tmp_path):
     rng = random.Random(77)
-    for trial in range(6):
+    for trial in range(5):
         path = tmp_path / f"new{trial}.h5"
         writer = start_writer("create", str(path))
         lines = kill_after_lines(writer, 1, rng.uniform(0, 0.04))

@@ -292,26 +292,21 @@ class Journal:
     def append_reading(self, reading: Reading) -> None:
         """Append one reading; it is on disk when this returns."""
         payload = encode_reading(reading, self.layout)
-        self._append(frame(TYPE_READING, payload))
-        if self._n == len(self._rows):
-            # Grow by doubling: appends stay O(1) on average, refresh reads one array.
-            grown = np.empty(max(1024, 2 * len(self._rows)), dtype=self.layout.dtype)
-            grown[:self._n] = self._rows[:self._n]
-            self._rows = grown
-        self._rows.view(np.uint8)[self._n * len(payload):(self._n + 1) * len(payload)] = (
-            np.frombuffer(payload, dtype=np.uint8)
-        )
-        self._n += 1
+        index = self._n
+        self._append(frame(TYPE_READING, payload), lambda: self._keep_row(index, payload))
 
     def append_event(self, event: Event) -> None:
         """Append one event; it is on disk when this returns."""
-        self._append(frame(TYPE_EVENT, encode_event(event)))
-        self._events.append(event)
+        index = len(self._events)
+        self._append(frame(TYPE_EVENT, encode_event(event)), lambda: self._keep_event(index, event))
 
     def append_status(self, t: float, status: str, message: str = "") -> None:
         """Record the run's status as of UNIX time t; on disk when this returns."""
-        self._append(frame(TYPE_STATUS, encode_status(t, status, message)))
-        self.status, self.status_message = status, message
+
+        def keep() -> None:
+            self.status, self.status_message = status, message
+
+        self._append(frame(TYPE_STATUS, encode_status(t, status, message)), keep)
 
     def close(self) -> None:
         """Release the lock and the descriptor; every record is already on disk."""
@@ -319,34 +314,69 @@ class Journal:
             os.close(self._fd)
             self._fd = None
 
-    def _append(self, data: bytes) -> None:
+    def _keep_row(self, index: int, payload: bytes) -> None:
+        # Idempotent (keeps row `index`, whatever was kept after it): see _settle.
+        if index == len(self._rows):
+            # Grow by doubling: appends stay O(1) on average, refresh reads one array.
+            grown = np.empty(max(1024, 2 * len(self._rows)), dtype=self.layout.dtype)
+            grown[:index] = self._rows[:index]
+            self._rows = grown
+        size = len(payload)
+        self._rows.view(np.uint8)[index * size:(index + 1) * size] = np.frombuffer(payload, np.uint8)
+        self._n = index + 1
+
+    def _keep_event(self, index: int, event: Event) -> None:
+        del self._events[index:]
+        self._events.append(event)
+
+    def _append(self, data: bytes, keep: Callable[[], None]) -> None:
+        """Write a record, keep it in memory, sync it; memory matches the file on any exit."""
         if self._fd is None:
             raise StorageError(f"{self.path}: the journal is closed; this is a bug in the caller")
         if self._broken is not None:
             raise StorageWriteError(self._broken)
+        start = self._size
         try:
             _write_all(self._fd, data)
-        except OSError as exc:
-            self._undo()
-            raise StorageWriteError(
-                f"{self.path}: cannot append to the journal: {exc.strerror}; free disk space "
-                "or fix the disk, then `lightloom resume` the run"
-            ) from exc
-        try:
+            self._size = start + len(data)
+            keep()
             sync_fd(self._fd)
         except OSError as exc:
+            if self._size == start:
+                self._undo(start)
+                raise StorageWriteError(
+                    f"{self.path}: cannot append to the journal: {exc.strerror}; free disk "
+                    "space or fix the disk, then `lightloom resume` the run"
+                ) from exc
             self._broken = (
                 f"{self.path}: the disk failed to confirm a write ({exc.strerror}); readings "
                 "may not be safe. Stop, check the disk, then `lightloom resume` the run"
             )
             raise StorageWriteError(self._broken) from exc
-        self._size += len(data)
+        except BaseException:
+            self._settle(start, len(data), keep)
+            raise
 
-    def _undo(self) -> None:
+    def _settle(self, start: int, length: int, keep: Callable[[], None]) -> None:
+        # Interrupted (Ctrl-C, SIGTERM handler) somewhere in _append: the file decides.
+        assert self._fd is not None
+        size = os.fstat(self._fd).st_size
+        if size == start + length:
+            self._size = size
+            keep()
+            try:
+                sync_fd(self._fd)
+            except OSError as exc:
+                self._broken = f"{self.path}: the disk failed to confirm a write ({exc.strerror})"
+        elif size != start:
+            self._undo(start)
+
+    def _undo(self, start: int) -> None:
         # A partly written record would make every later record unreachable: cut it now.
+        assert self._fd is not None
         try:
-            assert self._fd is not None
-            os.ftruncate(self._fd, self._size)
+            os.ftruncate(self._fd, start)
+            self._size = start
         except OSError:
             self._broken = (
                 f"{self.path}: a failed append could not be undone; stop, free disk space, "
