@@ -6,7 +6,14 @@ import time
 
 import pytest
 
-from drivers.errors import BadReply, ConnectionLost, IdentityMismatch, InstrumentTimeout
+from drivers.errors import (
+    BadReply,
+    ConnectionLost,
+    IdentityMismatch,
+    InstrumentError,
+    InstrumentTimeout,
+)
+from drivers.registry import create_device
 from drivers_fake_server import Rig
 
 ALL_PATHS = ["visa", "serial", "visa-asrl"]
@@ -149,3 +156,13 @@ def test_replies_stay_paired_with_queries_after_a_reconnect_following_a_timeout(
     stage.reconnect()
     stage.move_to_deg(20.0)
     assert stage.wait_settled(1.0) == 20.0
+
+
+def test_missing_visa_library_is_a_permanent_error_saying_what_to_install():
+    meter = create_device(
+        "pm", "visa.power_meter", "TCPIP::127.0.0.1::1::SOCKET", {"visa_library": "@nosuch"}, None
+    )
+    with pytest.raises(InstrumentError) as caught:
+        meter.connect()
+    assert not caught.value.transient
+    assert "@nosuch" in str(caught.value) and "options.visa_library" in str(caught.value)
