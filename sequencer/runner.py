@@ -412,10 +412,11 @@ class Runner:
             status, message = "fault", f"internal error {exc!r}; the shutter was closed. Please report this."
             self._finish(status, message)
             raise
-        self._finish(status, message)
+        message = self._finish(status, message)
         return status, message
 
-    def _finish(self, status: str, message: str) -> None:
+    def _finish(self, status: str, message: str) -> str:
+        """Close the shutter, record the final event, close the devices; return the final message."""
         closed = self.close_shutter_safely()
         if not closed:
             message += " — WARNING: the shutter did not confirm closing; block the beam by hand"
@@ -432,6 +433,7 @@ class Runner:
                 device.close()
             except Exception as exc:
                 self.log(f"closing {device.name}: {exc!r}")
+        return message
 
     def _wait_for_pass(self, step: Step) -> None:
         if self.plan.pass_interval_s <= 0 or step.pass_index == 0 or self.run_start is None:
