@@ -241,7 +241,8 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
         done = {int(i) for i in store.readings.step_index}
         assembled = assemble(bench)
     except BaseException:
-        store.close("interrupted", "resume refused")
+        # A refused resume changes nothing: the run keeps its status and message (e.g. the fault).
+        store.release()
         raise
     if store.bytes_cut:
         _say(console, f"cut a torn journal tail of {store.bytes_cut} bytes (a reading that was never reported)")
