@@ -101,7 +101,3 @@ class SimClock:
         if not (math.isfinite(virtual_s) and virtual_s >= 0.0):
             raise ValueError(f"sleep: the duration must be finite and >= 0 s, got {virtual_s!r}")
         self.advance_to(self.now() + virtual_s)
-
-    def wall_for(self, virtual_s: float) -> float:
-        """Wall seconds that ``virtual_s`` virtual seconds take at this clock's scale."""
-        return virtual_s * self._scale

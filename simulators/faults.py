@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 import threading
 from dataclasses import dataclass
-from typing import Iterable, Mapping, Sequence
+from typing import Iterable, Mapping
 
 import numpy as np
 
