@@ -43,8 +43,13 @@ def simplex_from_ascending(w: np.ndarray) -> np.ndarray:
 
 def project_density_coordinates(x: np.ndarray) -> np.ndarray:
     """Closest density matrix (Smolin, Gambetta, Smith, PRL 108, 070502 (2012)), in Hermitian coordinates."""
+    return _project_density_with_basis(x)[0]
+
+
+def _project_density_with_basis(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The projection and the eigenvectors (batch, d, d) of the projected state."""
     w, v = np.linalg.eigh(to_matrix(x))
-    return _eig_to_coordinates(v, simplex_from_ascending(w))
+    return _eig_to_coordinates(v, simplex_from_ascending(w)), v
 
 
 def project_positive_coordinates(x: np.ndarray) -> np.ndarray:
@@ -58,10 +63,18 @@ def _rowdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
 
 
 def _excess_log(u: np.ndarray) -> np.ndarray:
-    """u - log(1 + u) for u > -1, by its series where the plain form would cancel."""
-    series = u * u * (0.5 - u * (1.0 / 3.0 - u * 0.25))
-    plain = u - np.log1p(u)
-    return np.where(np.abs(u) < _SERIES_BELOW, series, plain)
+    """u - log(1 + u) for u > -1, row by row: by its series in rows where every |u| is small.
+
+    The plain form cancels for tiny u; in a row with some |u| >= 1e-4 its absolute error,
+    eps |u|, is negligible against the row's sum, which is at least of order max u^2.
+    """
+    out = np.empty_like(u)
+    small = np.max(np.abs(u), axis=-1) < _SERIES_BELOW
+    us = u[small]
+    out[small] = us * us * (0.5 - us * (1.0 / 3.0 - us * 0.25))
+    ul = u[~small]
+    out[~small] = ul - np.log1p(ul)
+    return out
 
 
 class _Batch:
@@ -102,10 +115,25 @@ def _poisson_ratio(p: np.ndarray, f: np.ndarray, used: np.ndarray) -> np.ndarray
 
 
 def _poisson_gap(p: np.ndarray, f: np.ndarray, used: np.ndarray, n_tot: np.ndarray, design: np.ndarray,
-                 identity: np.ndarray) -> np.ndarray:
-    r = _poisson_ratio(p, f, used) @ design - identity
-    lam = np.linalg.eigvalsh(to_matrix(r))[:, -1]
-    return n_tot * np.log1p(np.maximum(lam, 0.0))
+                 identity: np.ndarray, basis: np.ndarray | None = None, tol: float = 0.0) -> np.ndarray:
+    """Certificate n_tot log lambda_max(R) per row.
+
+    With `basis` (eigenvectors of the state), rows whose Rayleigh quotients of R - 1 in that basis
+    (lower bounds on lambda_max - 1) already exceed `tol` skip the eigenvalue solve and get +inf:
+    they cannot stop yet, and most iterations are such.
+    """
+    r = to_matrix(_poisson_ratio(p, f, used) @ design - identity)
+    gap = np.full(p.shape[0], np.inf)
+    if basis is None:
+        todo = np.arange(p.shape[0])
+    else:
+        rayleigh = np.real(np.sum(np.conj(basis) * (r @ basis), axis=-2))
+        lower = n_tot * np.log1p(np.maximum(np.max(rayleigh, axis=-1), 0.0))
+        todo = np.flatnonzero(lower <= tol)
+    if todo.size:
+        lam = np.linalg.eigvalsh(r[todo])[:, -1]
+        gap[todo] = n_tot[todo] * np.log1p(np.maximum(lam, 0.0))
+    return gap
 
 
 def _poisson_bregman(p: np.ndarray, dp: np.ndarray, f: np.ndarray, used: np.ndarray) -> np.ndarray:
@@ -114,7 +142,7 @@ def _poisson_bregman(p: np.ndarray, dp: np.ndarray, f: np.ndarray, used: np.ndar
     s = np.sum(dp, axis=1) / np.sum(p, axis=1)
     outside = np.any(u <= -1.0, axis=1) | (s <= -1.0)
     u = np.maximum(u, -0.5)
-    value = np.sum(f * _excess_log(u), axis=1) - _excess_log(np.maximum(s, -0.5))
+    value = np.sum(f * _excess_log(u), axis=1) - _excess_log(np.maximum(s, -0.5)[:, None])[:, 0]
     value[outside | np.any(u <= -0.5, axis=1)] = np.inf
     return value
 
@@ -155,7 +183,7 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
             work["theta"][outside] = 1.0
         grad = _poisson_ratio(py, fw, used) @ design - identity
         t = work["step"].copy()
-        z = project_density_coordinates(y + t[:, None] * grad)
+        z, basis = _project_density_with_basis(y + t[:, None] * grad)
         delta = z - y
         dp = delta @ design.T
         ok = _poisson_bregman(py, dp, fw, used) <= _rowdot(delta, delta) / (2.0 * t)
@@ -164,16 +192,17 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
             if pending.size == 0:
                 break
             t[pending] *= STEP_SHRINK
-            cand = project_density_coordinates(y[pending] + t[pending, None] * grad[pending])
+            cand, cand_basis = _project_density_with_basis(y[pending] + t[pending, None] * grad[pending])
             dc = cand - y[pending]
             dpc = dc @ design.T
             good = _poisson_bregman(py[pending], dpc, fw[pending], used[pending]) <= _rowdot(dc, dc) / (
                 2.0 * t[pending]
             )
-            z[pending[good]], dp[pending[good]] = cand[good], dpc[good]
+            z[pending[good]], dp[pending[good]], basis[pending[good]] = cand[good], dpc[good], cand_basis[good]
             pending = pending[~good]
         if pending.size:
             z[pending], dp[pending] = x[pending], p[pending] - py[pending]
+            basis[pending] = np.linalg.eigh(to_matrix(x[pending]))[1]
         pz = py + dp
         # gradient restart (O'Donoghue, Candes, Found. Comput. Math. 15, 715 (2015)): drop the momentum
         # once the step points against the gradient; it needs no objective values, which rounding blurs
@@ -186,7 +215,7 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
         work["x"], work["p"] = z, pz
         work["theta"] = np.where(restart, 1.0, theta_next)
         work["step"] = t * STEP_GROWTH
-        gap = _poisson_gap(pz, fw, used, work["n_tot"], design, identity)
+        gap = _poisson_gap(pz, fw, used, work["n_tot"], design, identity, basis, tol)
         work.retire(gap <= tol, z, gap, iteration)
     if work.size:
         work.retire(np.ones(work.size, dtype=bool), work["x"],

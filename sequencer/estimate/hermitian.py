@@ -19,6 +19,28 @@ def _indices(d: int) -> tuple[np.ndarray, np.ndarray]:
     return iu, ju
 
 
+@lru_cache(maxsize=16)
+def _maps(d: int) -> tuple[np.ndarray, np.ndarray]:
+    """Real matrices taking interleaved (re, im) matrix entries (2 d^2) to coordinates (d^2), and back."""
+    iu, ju = _indices(d)
+    k = iu.size
+    to_coords = np.zeros((2 * d * d, d * d))
+    to_entries = np.zeros((d * d, 2 * d * d))
+    for j in range(d):
+        to_coords[2 * (j * d + j), j] = 1.0
+        to_entries[j, 2 * (j * d + j)] = 1.0
+    for m, (j, l) in enumerate(zip(iu, ju)):
+        upper, lower = j * d + l, l * d + j
+        to_coords[2 * upper, d + m] = _SQRT2
+        to_coords[2 * upper + 1, d + k + m] = _SQRT2
+        to_entries[d + m, 2 * upper] = to_entries[d + m, 2 * lower] = 1.0 / _SQRT2
+        to_entries[d + k + m, 2 * upper + 1] = 1.0 / _SQRT2
+        to_entries[d + k + m, 2 * lower + 1] = -1.0 / _SQRT2
+    to_coords.setflags(write=False)
+    to_entries.setflags(write=False)
+    return to_coords, to_entries
+
+
 def to_vector(matrices: np.ndarray) -> np.ndarray:
     """Coordinates of Hermitian matrices in the orthonormal matrix-unit basis.
 
@@ -32,12 +54,10 @@ def to_vector(matrices: np.ndarray) -> np.ndarray:
     for j < k (row-major upper triangle). The basis is orthonormal in the Hilbert-Schmidt inner
     product, so tr(A B) = to_vector(A) @ to_vector(B) for Hermitian A, B.
     """
-    m = np.asarray(matrices)
+    m = np.ascontiguousarray(matrices, dtype=complex)
     d = m.shape[-1]
-    iu, ju = _indices(d)
-    diag = np.real(np.diagonal(m, axis1=-2, axis2=-1))
-    upper = m[..., iu, ju]
-    return np.concatenate([diag, _SQRT2 * upper.real, _SQRT2 * upper.imag], axis=-1)
+    entries = m.reshape(m.shape[:-2] + (d * d,)).view(np.float64)
+    return entries @ _maps(d)[0]
 
 
 def to_matrix(vectors: np.ndarray) -> np.ndarray:
@@ -46,15 +66,8 @@ def to_matrix(vectors: np.ndarray) -> np.ndarray:
     d = int(round(np.sqrt(x.shape[-1])))
     if d * d != x.shape[-1]:
         raise EstimationError(f"a Hermitian coordinate vector has d*d entries; got {x.shape[-1]}")
-    iu, ju = _indices(d)
-    k = iu.size
-    out = np.zeros(x.shape[:-1] + (d, d), dtype=complex)
-    diag = np.arange(d)
-    out[..., diag, diag] = x[..., :d]
-    upper = (x[..., d : d + k] + 1j * x[..., d + k :]) / _SQRT2
-    out[..., iu, ju] = upper
-    out[..., ju, iu] = np.conj(upper)
-    return out
+    entries = np.ascontiguousarray(x @ _maps(d)[1])
+    return entries.view(np.complex128).reshape(x.shape[:-1] + (d, d))
 
 
 def hermitian_part(matrices: np.ndarray) -> np.ndarray:
