@@ -12,7 +12,7 @@ import os
 import signal
 import sys
 import time
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Iterator
@@ -321,6 +321,17 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
         runner._beam.baseline = _initial_beam_level(store, table)
         with stop_on_sigterm():
             status, message = runner.execute(done)
+    except BaseException as exc:
+        # Stopped outside the runner's own handling (a bug, a second Ctrl-C): say so in the run
+        # file and release it; the runner has closed the shutter if it had started.
+        resume = f"`lightloom resume {out_path}` continues the run"
+        if isinstance(exc, (KeyboardInterrupt, StopRequested)):
+            status, message = "interrupted", f"stopped by Ctrl-C or SIGTERM; {resume}"
+        else:
+            status, message = "fault", f"internal error {exc!r}; please report this; {resume}"
+        with suppress(Exception):
+            store.close(status, message)
+        raise
     finally:
         if monitor is not None:
             monitor.__exit__(None, None, None)
