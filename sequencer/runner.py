@@ -418,7 +418,9 @@ class Runner:
     def _finish(self, status: str, message: str) -> str:
         """Close the shutter, record the final event, close the devices; return the final message."""
         closed = self.close_shutter_safely()
-        if not closed:
+        if closed:
+            self.log("shutter closed (it reads back closed)")
+        else:
             message += " — WARNING: the shutter did not confirm closing; block the beam by hand"
             self.monitor.warning("the shutter did not confirm closing: block the beam by hand")
         kind = {"complete": "complete", "interrupted": "interrupted"}.get(status, "fault")
