@@ -166,6 +166,9 @@ class Runner:
                     pass
             except Exception as exc:  # the shutter must be tried again whatever went wrong
                 self.log(f"closing the shutter failed ({exc!r}); retrying")
+            except (KeyboardInterrupt, StopRequested):
+                # A second Ctrl-C or SIGTERM while stopping: the run stops anyway, the shutter first.
+                self.log("stop requested again while closing the shutter; closing it first")
         return False
 
     # ------------------------------------------------------------------ retries
