@@ -44,6 +44,10 @@ SETS = {
     "joint36": joint_set("HVDARL", ["h", "v", "d", "a", "l+", "l-"]),
     "single4": np.array([projector(POL[n]) for n in "HVDR"]),
     "single6": np.array([projector(POL[n]) for n in "HVDARL"]),
+    # d = 8: all products of three six-state analyzers
+    "triple216": np.array(
+        [projector(np.kron(np.kron(POL[a], POL[b]), POL[c])) for a in "HVDARL" for b in "HVDARL" for c in "HVDARL"]
+    ),
 }
 
 

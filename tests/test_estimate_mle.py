@@ -31,6 +31,7 @@ def projector(ket) -> np.ndarray:
 SINGLE6 = np.array([projector(k) for k in KETS])
 JOINT36 = np.array([projector(np.kron(a, b)) for a in KETS for b in KETS])
 JOINT16 = np.array([projector(np.kron(KETS[a], KETS[b])) for a in (0, 1, 2, 4) for b in (0, 1, 2, 4)])
+TRIPLE216 = np.array([projector(np.kron(np.kron(a, b), c)) for a in KETS for b in KETS for c in KETS])
 
 
 def random_state(d: int, rng: np.random.Generator, rank: int | None = None) -> np.ndarray:
@@ -168,7 +169,9 @@ def test_unconverged_result_says_so():
     assert result.certified_gap > 1e-9
 
 
-@pytest.mark.parametrize("ops", [SINGLE6, JOINT16, JOINT36], ids=["single6", "joint16", "joint36"])
+@pytest.mark.parametrize(
+    "ops", [SINGLE6, JOINT16, JOINT36, TRIPLE216], ids=["single6", "joint16", "joint36", "d8_216"]
+)
 @pytest.mark.parametrize("rank", [1, 2, 4])
 def test_poisson_mle_of_noise_free_data_reproduces_the_state(ops, rank):
     d = ops.shape[1]

@@ -12,6 +12,7 @@ STEP_SHRINK = 0.5
 STEP_GROWTH = 1.1
 BACKTRACK_LIMIT = 60
 _SERIES_BELOW = 1e-4
+_RESYNC_EVERY = 50
 
 
 @dataclass(frozen=True)
@@ -114,24 +115,27 @@ def _poisson_ratio(p: np.ndarray, f: np.ndarray, used: np.ndarray) -> np.ndarray
     return f / np.where(used, p, 1.0)
 
 
-def _poisson_gap(p: np.ndarray, f: np.ndarray, used: np.ndarray, n_tot: np.ndarray, design: np.ndarray,
-                 identity: np.ndarray, basis: np.ndarray | None = None, tol: float = 0.0) -> np.ndarray:
-    """Certificate n_tot log lambda_max(R) per row.
+def _poisson_gap(x: np.ndarray, f: np.ndarray, used: np.ndarray, n_tot: np.ndarray, design: np.ndarray,
+                 identity: np.ndarray, screen: tuple[np.ndarray, np.ndarray, float] | None = None) -> np.ndarray:
+    """Certificate n_tot log lambda_max(R) per row, computed afresh from the state coordinates x.
 
-    With `basis` (eigenvectors of the state), rows whose Rayleigh quotients of R - 1 in that basis
-    (lower bounds on lambda_max - 1) already exceed `tol` skip the eigenvalue solve and get +inf:
-    they cannot stop yet, and most iterations are such.
+    With `screen` = (p, basis, tol), the running probabilities p and the eigenvectors of the state
+    first give Rayleigh quotients of R - 1 (lower bounds on lambda_max - 1); rows whose bound already
+    exceeds tol cannot stop yet, skip the eigenvalue solve and get +inf. Most iterations are such.
     """
-    r = to_matrix(_poisson_ratio(p, f, used) @ design - identity)
-    gap = np.full(p.shape[0], np.inf)
-    if basis is None:
-        todo = np.arange(p.shape[0])
+    gap = np.full(x.shape[0], np.inf)
+    if screen is None:
+        todo = np.arange(x.shape[0])
     else:
+        p, basis, tol = screen
+        r = to_matrix(_poisson_ratio(p, f, used) @ design - identity)
         rayleigh = np.real(np.sum(np.conj(basis) * (r @ basis), axis=-2))
         lower = n_tot * np.log1p(np.maximum(np.max(rayleigh, axis=-1), 0.0))
         todo = np.flatnonzero(lower <= tol)
     if todo.size:
-        lam = np.linalg.eigvalsh(r[todo])[:, -1]
+        p_exact = x[todo] @ design.T
+        r_exact = to_matrix(_poisson_ratio(p_exact, f[todo], used[todo]) @ design - identity)
+        lam = np.linalg.eigvalsh(r_exact)[:, -1]
         gap[todo] = n_tot[todo] * np.log1p(np.maximum(lam, 0.0))
     return gap
 
@@ -169,7 +173,7 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
     p0 = x0 @ design.T
     work = _Batch(batch, dim, f=f, used=f > 0, n_tot=n_tot, x=x0.copy(), p=p0, y=x0.copy(), py=p0.copy(),
                   theta=np.ones(batch), step=np.ones(batch))
-    gap = _poisson_gap(p0, f, f > 0, n_tot, design, identity)
+    gap = _poisson_gap(x0, f, f > 0, n_tot, design, identity)
     work.retire(gap <= tol, x0, gap, 0)
     iteration = 0
     while work.size and iteration < max_iterations:
@@ -203,7 +207,8 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
         if pending.size:
             z[pending], dp[pending] = x[pending], p[pending] - py[pending]
             basis[pending] = np.linalg.eigh(to_matrix(x[pending]))[1]
-        pz = py + dp
+        # the running probabilities follow the iterates by linear updates; resynchronise now and then
+        pz = z @ design.T if iteration % _RESYNC_EVERY == 0 else py + dp
         # gradient restart (O'Donoghue, Candes, Found. Comput. Math. 15, 715 (2015)): drop the momentum
         # once the step points against the gradient; it needs no objective values, which rounding blurs
         restart = _rowdot(grad, z - x) < 0
@@ -215,11 +220,11 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
         work["x"], work["p"] = z, pz
         work["theta"] = np.where(restart, 1.0, theta_next)
         work["step"] = t * STEP_GROWTH
-        gap = _poisson_gap(pz, fw, used, work["n_tot"], design, identity, basis, tol)
+        gap = _poisson_gap(z, fw, used, work["n_tot"], design, identity, (pz, basis, tol))
         work.retire(gap <= tol, z, gap, iteration)
     if work.size:
         work.retire(np.ones(work.size, dtype=bool), work["x"],
-                    _poisson_gap(work["p"], work["f"], work["used"], work["n_tot"], design, identity), iteration)
+                    _poisson_gap(work["x"], work["f"], work["used"], work["n_tot"], design, identity), iteration)
     return work.solution()
 
 
