@@ -35,7 +35,10 @@ POSITION_TOLERANCE_DEG = 0.05
 
 
 class StopRequested(BaseException):
-    """Raised in the main thread by the SIGTERM handler: stop safely, like Ctrl-C."""
+    """Raised in the main thread by the SIGTERM (or SIGHUP) handler: stop safely, like Ctrl-C.
+
+    ``args[0]``, when given, names the signal ("SIGTERM", "SIGHUP").
+    """
 
 
 @dataclass
@@ -147,6 +150,7 @@ class Runner:
         self._retried = False
         self._pool = ThreadPoolExecutor(max_workers=max(1, len(rig.detectors) + 1), thread_name_prefix="read")
         self._last_refresh = -math.inf
+        self._refresh_every_s = policy.refresh_s
         self._complete_product = _complete_product(table)
 
     # ------------------------------------------------------------------ safety
@@ -399,13 +403,16 @@ class Runner:
                 n_done += 1
                 self.log(_reading_line(step, reading, self.units))
                 self.monitor.step_done(step, reading, n_done, total)
-                if self.wall() - self._last_refresh >= self.policy.refresh_s:
+                if self.wall() - self._last_refresh >= self._refresh_every_s:
+                    t0 = self.wall()
                     self.store.refresh("running")
                     self._last_refresh = self.wall()
+                    # Rebuilding the .h5 grows with the run: keep it under ~5% of the time.
+                    self._refresh_every_s = max(self.policy.refresh_s, 20.0 * (self._last_refresh - t0))
             status, message = "complete", f"all {total} steps recorded"
         except (KeyboardInterrupt, StopRequested) as exc:
             status = "interrupted"
-            message = "stopped by Ctrl-C" if isinstance(exc, KeyboardInterrupt) else "stopped by SIGTERM"
+            message = "stopped by Ctrl-C" if isinstance(exc, KeyboardInterrupt) else f"stopped by {exc.args[0] if exc.args else 'SIGTERM'}"
             message += f" after {n_done} of {total} steps; `lightloom resume` continues it"
         except RunFault as exc:
             status, message = "fault", exc.one_line()
