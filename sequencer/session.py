@@ -161,19 +161,27 @@ def policy_for(bench: Bench) -> RunPolicy:
 
 @contextmanager
 def stop_on_sigterm() -> Iterator[None]:
-    """While active, SIGTERM raises StopRequested in the main thread (a safe stop, exit 130)."""
-    def handler(signum, frame):  # noqa: ARG001
-        raise StopRequested()
+    """While active, SIGTERM and SIGHUP raise StopRequested in the main thread (a safe stop, exit 130).
 
+    SIGHUP (the terminal or ssh session closed) is left alone when it is ignored, as under nohup.
+    """
+    def handler(signum, frame):  # noqa: ARG001
+        raise StopRequested(signal.Signals(signum).name)
+
+    wanted = [signal.SIGTERM]
+    if hasattr(signal, "SIGHUP") and signal.getsignal(signal.SIGHUP) is not signal.SIG_IGN:
+        wanted.append(signal.SIGHUP)
+    previous = {}
     try:
-        previous = signal.signal(signal.SIGTERM, handler)
+        for signum in wanted:
+            previous[signum] = signal.signal(signum, handler)
     except ValueError:  # not the main thread
-        yield
-        return
+        pass
     try:
         yield
     finally:
-        signal.signal(signal.SIGTERM, previous)
+        for signum, old in previous.items():
+            signal.signal(signum, old)
 
 
 class RunLog:
