@@ -43,12 +43,12 @@ def run_cli(*args: object) -> int:
     return cli.main([str(a) for a in args])
 
 
-def spawn(*args: object) -> subprocess.Popen:
-    """The command line in a new process (stdout and stderr piped, text)."""
+def spawn(*args: object, **popen: object) -> subprocess.Popen:
+    """The command line in a new process (stdout and stderr piped, text); ``popen`` goes to Popen."""
     return subprocess.Popen(
         [sys.executable, "-m", "sequencer", *[str(a) for a in args]],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-        env={**os.environ, "PYTHONPATH": str(REPO)}, cwd=str(REPO),
+        env={**os.environ, "PYTHONPATH": str(REPO)}, cwd=str(REPO), **popen,
     )
 
 

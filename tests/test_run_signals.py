@@ -14,13 +14,15 @@ from test_run_complete import (  # noqa: F401
 )
 
 
-@pytest.mark.parametrize("signum, said", [(signal.SIGINT, "Ctrl-C"), (signal.SIGTERM, "SIGTERM")])
+@pytest.mark.parametrize(
+    "signum, said", [(signal.SIGINT, "Ctrl-C"), (signal.SIGTERM, "SIGTERM"), (signal.SIGHUP, "SIGHUP")]
+)
 def test_a_signal_stops_the_run_safely_with_exit_130_and_resume_completes_it(tmp_path, capsys, signum, said):
     bench = write_bench(tmp_path, "sim-tenth", simulation={"time_scale": 0.1})
     out = tmp_path / "run.h5"
     log = log_path_for(out)
-    proc = spawn("run", "joint-36", "--bench", bench, "--out", out, "--quiet")
-    wait_for_log_steps(log, 3, proc)
+    proc = spawn("run", "polarization-6", "--bench", bench, "--out", out, "--quiet")
+    wait_for_log_steps(log, 2, proc)
     proc.send_signal(signum)
     stdout, _ = proc.communicate(timeout=60)
     assert proc.returncode == 130, stdout
@@ -29,11 +31,25 @@ def test_a_signal_stops_the_run_safely_with_exit_130_and_resume_completes_it(tmp
     assert data.events[-1].kind == "interrupted"
     lines = log.read_text().splitlines()
     assert "shutter closed (it reads back closed)" in lines[-2] and lines[-1].split(" ", 1)[1].startswith("interrupted:")
-    assert 3 <= len(data.readings) < data.header.steps_total
+    assert 2 <= len(data.readings) < data.header.steps_total
     before = read_journal(journal_path_for(out)).readings
     assert run_cli("resume", out) == 0
     final = assert_complete(out)
     assert final.readings.select(slice(0, len(before))) == before
+
+
+def test_a_run_started_under_nohup_ignores_sighup_and_completes(tmp_path, capsys):
+    bench = write_bench(tmp_path, "sim-tenth", simulation={"time_scale": 0.1})
+    out = tmp_path / "run.h5"
+    proc = spawn(
+        "run", "polarization-6", "--bench", bench, "--out", out, "--quiet",
+        preexec_fn=lambda: signal.signal(signal.SIGHUP, signal.SIG_IGN),
+    )
+    wait_for_log_steps(log_path_for(out), 2, proc)
+    proc.send_signal(signal.SIGHUP)
+    stdout, _ = proc.communicate(timeout=60)
+    assert proc.returncode == 0, stdout
+    assert_complete(out)
 
 
 def test_a_second_ctrl_c_while_the_shutter_closes_does_not_stop_the_closing(tmp_path, capsys, monkeypatch, shutter_watch):
