@@ -20,17 +20,15 @@ from sequencer import builtins
 from sequencer.errors import BenchError, InputError
 from sequencer.fields import (
     Section,
+    aside,
     choice,
     density_matrix,
-    described,
-    expect_seq,
     fail,
     frozen_matrix,
     normalized_ket,
-    aside,
-    text,
     retyped,
 )
+from sequencer.fields import text as read_text
 from sequencer.yamlsafe import YMap, YNode, YScalar, YSeq, dump_plain, merge, parse_bytes, parse_text, to_plain
 
 KINDS: tuple[str, ...] = ("rotation_stage", "actuator", "shutter", "power_meter", "photon_counter")
@@ -403,7 +401,7 @@ def _device(name: str, key_line: int, node: YNode, plugins: frozenset[str]) -> D
         )
     sec = Section.of(node, what, "bench", "driver, address, options, ...")
     driver_node = sec.require("driver", "FAMILY.KIND such as sim.rotation_stage or visa.power_meter")
-    driver = text(driver_node, sec.name("driver"))
+    driver = read_text(driver_node, sec.name("driver"))
     family, dot, kind = driver.rpartition(".")
     if not dot or not family:
         fail(f"{sec.name('driver')}: expected FAMILY.KIND such as sim.rotation_stage, got '{driver}'", driver_node)
@@ -425,7 +423,7 @@ def _device(name: str, key_line: int, node: YNode, plugins: frozenset[str]) -> D
                  " (or use a visa./serial. driver to reach a served simulator)", sec.node.get("address"))
     elif family in ("visa", "serial"):
         example = "TCPIP::127.0.0.1::5025::SOCKET" if family == "visa" else "/dev/ttyUSB0 or socket://127.0.0.1:5025"
-        address = text(sec.require("address", f"the instrument's address, e.g. {example}"), sec.name("address"))
+        address = read_text(sec.require("address", f"the instrument's address, e.g. {example}"), sec.name("address"))
         if family == "visa" and "::" not in address:
             fail(f"{sec.name('address')}: expected a VISA resource name such as {example}, got '{address}'",
                  sec.node.get("address"))
@@ -448,7 +446,7 @@ def _device(name: str, key_line: int, node: YNode, plugins: frozenset[str]) -> D
         assert seq is not None
         values = []
         for i, item in enumerate(seq.items):
-            state = text(item, f"{sec.name('states')}[{i}]")
+            state = read_text(item, f"{sec.name('states')}[{i}]")
             if state in values:
                 fail(f"{sec.name('states')}: '{state}' is listed twice", item)
             values.append(state)
@@ -487,7 +485,7 @@ def _devices(sec: Section, plugins: frozenset[str]) -> dict[str, DeviceSpec]:
 
 def _device_ref(node: YNode, what: str, devices: Mapping[str, DeviceSpec], kinds: tuple[str, ...],
                 purpose: str) -> str:
-    name = text(node, what)
+    name = read_text(node, what)
     if name not in devices:
         fail(f"{what}: no device named '{name}'{aside(name, devices)}; devices are"
              f" {', '.join(devices)}", node)
@@ -762,7 +760,7 @@ def _faults(seq: YSeq | None, devices: Mapping[str, DeviceSpec]) -> tuple[Fault,
                      sec.get("device"))  # type: ignore[arg-type]
         else:
             node = sec.require("device", "the name of the device that misbehaves")
-            device = text(node, sec.name("device"))
+            device = read_text(node, sec.name("device"))
             if device not in devices:
                 fail(f"{sec.name('device')}: no device named '{device}'{aside(device, devices)}; devices"
                      f" are {', '.join(devices)}", node)
@@ -813,7 +811,7 @@ def _without_nulls(data: Any) -> Any:
 def _bench_from_tree(root: YMap, source_path: str, extends: tuple[str, ...]) -> Bench:
     sec = Section.of(root, "", "bench", "bench: NAME, devices: {...}, roles: {...}")
     sec.check_keys(_TOP_KEYS)
-    name = sec.text("bench")
+    name = read_text(sec.require("bench", "the bench's name"), "bench")
     plugins = plugin_names()
     devices = _devices(sec.section("devices", "device name -> driver, address, ...", required=True),  # type: ignore[arg-type]
                        plugins)
@@ -870,10 +868,15 @@ def _resolve(root: YNode, directory: Path | None, chain: tuple[tuple[str, str], 
              ) -> tuple[YMap, tuple[str, ...]]:
     """Merge ``root`` over the benches it extends; ``chain`` holds (identity, file) of the extending files."""
     sec = Section.of(root, "", "bench", "bench: NAME, devices: {...}, roles: {...}")
+    if "protocol" in sec.node and "bench" not in sec.node:
+        raise InputError("this is a protocol file, not a bench; give it as PROTOCOL, and a bench with --bench",
+                         sec.node.file, sec.key_line("protocol"))
+    # Every file names itself, so that an extending bench is never recorded under its base's name.
+    read_text(sec.require("bench", "the bench's name"), "bench")
     node = sec.get("extends")
     if node is None:
         return _without(sec.node, "extends"), ()
-    spec = text(node, "extends")
+    spec = read_text(node, "extends")
     try:
         parent = builtins.find("bench", spec, directory)
     except InputError as exc:
@@ -891,8 +894,8 @@ def _resolve(root: YNode, directory: Path | None, chain: tuple[tuple[str, str], 
     return merged, (parent.file,) + parent_chain
 
 
-def parse_bench(text_: str, path: str, *, directory: Path | None = None) -> Bench:
-    """Parse bench YAML ``text_``; ``path`` names it in messages; relative ``extends`` use ``directory``.
+def parse_bench(text: str, path: str, *, directory: Path | None = None) -> Bench:
+    """Parse bench YAML ``text``; ``path`` names it in messages; relative ``extends`` use ``directory``.
 
     ``directory`` defaults to the directory of ``path``. Parsing a Bench's ``resolved_text`` gives an
     equal Bench.
@@ -904,7 +907,7 @@ def parse_bench(text_: str, path: str, *, directory: Path | None = None) -> Benc
     """
     with retyped(BenchError):
         base = Path(path).resolve().parent if directory is None else directory
-        root = parse_text(text_, path)
+        root = parse_text(text, path)
         merged, chain = _resolve(root, base, ((str(Path(path).resolve()), path),))
         return _bench_from_tree(merged, path, chain)
 

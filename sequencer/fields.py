@@ -259,7 +259,8 @@ class Section:
         if node is None:
             entry = self.node.entry(key)
             line = self.node.line if entry is None else entry.key_line
-            raise InputError(f"missing {self.name(key)} in {self.where}; expected {expected}", self.node.file, line)
+            where = self.path or f"the {self.top} file"
+            raise InputError(f"missing key '{key}' in {where}; expected {expected}", self.node.file, line)
         return node
 
     def section(self, key: str, hint: str = "", *, required: bool = False) -> "Section | None":

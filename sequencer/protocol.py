@@ -19,6 +19,7 @@ from sequencer import builtins
 from sequencer.errors import OpticsError, ProtocolError
 from sequencer.fields import (
     Section,
+    aside,
     choice,
     density_matrix,
     described,
@@ -29,8 +30,8 @@ from sequencer.fields import (
     normalized_ket,
     number,
     retyped,
-    aside,
 )
+from sequencer.fields import text as read_text
 from sequencer.optics.states import (
     JOINT_KETS,
     POLARIZATION_KETS,
@@ -511,8 +512,10 @@ def _target_state(sec: Section, analyzes: tuple[str, ...]) -> tuple[tuple[tuple[
 
 def _protocol_from_tree(root: YNode, source_path: str, source_text: str) -> Protocol:
     sec = Section.of(root, "", "protocol", "protocol: NAME, analyzes: [...], measure: {...}, dwell_s: ...")
+    if "bench" in sec.node and "protocol" not in sec.node:
+        fail("this is a bench file, not a protocol; give it with --bench BENCH", sec.node.get("bench"))  # type: ignore[arg-type]
     sec.check_keys(_TOP_KEYS)
-    name = sec.text("protocol")
+    name = read_text(sec.require("protocol", "the protocol's name"), "protocol")
     description = sec.text("description", "")
     analyzes = _analyzes(sec)
 
@@ -618,8 +621,8 @@ def load_protocol(path_or_builtin_name: str | Path) -> Protocol:
     with retyped(ProtocolError):
         source = builtins.find("protocol", str(path_or_builtin_name))
         root = parse_bytes(source.data, source.file)
-        text_ = source.data.decode("utf-8").lstrip("\ufeff")
+        source_text = source.data.decode("utf-8").lstrip("\ufeff")
         try:
-            return _protocol_from_tree(root, source.file, text_)
+            return _protocol_from_tree(root, source.file, source_text)
         except OpticsError as exc:
             raise ProtocolError(str(exc), source.file, 1) from None

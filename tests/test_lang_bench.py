@@ -245,4 +245,14 @@ def test_converter_angle_stage_needs_a_mode_converter(tmp_path: Path) -> None:
 def test_rotation_stage_without_limits_is_refused(tmp_path: Path) -> None:
     text = MINIMAL.replace("roles:", '  stage: {driver: serial.rotation_stage, address: "socket://127.0.0.1:6004"}\nroles:')
     err = bench_error(text, tmp_path)
-    assert "missing devices.stage.limits" in err.message and err.line == 6
+    assert "missing key 'limits' in devices.stage" in err.message and err.line == 6
+
+
+def test_every_bench_file_names_itself_even_when_extending(tmp_path: Path) -> None:
+    err = bench_error("extends: sim\nwavelength_nm: 800\n", tmp_path)
+    assert (err.line, err.message) == (1, "missing key 'bench' in the bench file; expected the bench's name")
+
+
+def test_a_protocol_given_as_bench_is_recognised(tmp_path: Path) -> None:
+    err = bench_error("protocol: p\nanalyzes: [polarization]\n", tmp_path)
+    assert "this is a protocol file, not a bench" in err.message and err.line == 1

@@ -59,7 +59,7 @@ def test_boolean_is_not_a_number() -> None:
 
 def test_missing_required_key_says_what_to_write() -> None:
     err = raised(lambda: section("protocol: x\n").number("dwell_s", "s", gt=0))
-    assert err.message == "missing dwell_s in protocol; expected a number in seconds"
+    assert err.message == "missing key 'dwell_s' in the protocol file; expected a number in seconds"
 
 
 def test_null_value_takes_the_default() -> None:

@@ -208,3 +208,9 @@ def test_load_protocol_errors_are_protocol_errors_at_the_file(tmp_path) -> None:
         load_protocol(path)
     assert (info.value.file, info.value.line) == (str(path), 4)
     assert "unknown polarization target 'X'" in info.value.message
+
+
+def test_a_bench_given_as_protocol_is_recognised() -> None:
+    with pytest.raises(ProtocolError) as info:
+        parse_protocol("# a bench\nbench: sim\ndevices: {}\n", "b.yaml")
+    assert "this is a bench file, not a protocol" in info.value.message and info.value.line == 2

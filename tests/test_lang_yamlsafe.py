@@ -178,7 +178,7 @@ _plain = st.recursive(
 )
 
 
-@settings(max_examples=150, deadline=None)
+@settings(max_examples=100, deadline=None)
 @given(st.dictionaries(_texts, _plain, max_size=5))
 def test_dump_then_parse_gives_back_the_same_data(data: dict) -> None:
     # Law: to_plain(parse(dump(x))) == x for plain data with text keys and finite numbers.
