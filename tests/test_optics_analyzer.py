@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-from hypothesis import given, settings, strategies as st
+from hypothesis import example, given, settings, strategies as st
 
 from sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_ANGLE, HWP, QWP, ROTATOR,
@@ -62,6 +62,7 @@ def test_every_port_operator_is_positive_semidefinite(q, h, conv_in, c, r, ext, 
 @settings(max_examples=80, deadline=None)
 @given(complex_pairs, complex_pairs, st.sampled_from(["H", "V"]), st.sampled_from(["h", "v"]),
        offsets, offsets, offsets, offsets)
+@example((0.0, 0.0, 0.0, 1.0), (0.0, 1.0, 1.0, 0.0), "H", "h", 0.0, 0.0, 0.001, 0.0)  # angle just below 0
 def test_inverse_settings_send_random_targets_to_their_port(pol, sp, pport, sport, qo, ho, co, ro):
     model = _model(qo, ho, co, ro)
     a, b = _ket(pol), _ket(sp)

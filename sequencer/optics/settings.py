@@ -56,7 +56,7 @@ class SpatialSetting:
 def _wrap180(angle_deg: float) -> float:
     """Plate and rotator angles are periodic in 180 deg: map to [0, 180)."""
     a = float(np.mod(angle_deg, 180.0))
-    return 0.0 if np.isclose(a, 180.0, atol=1e-12) else a
+    return 0.0 if abs(a - 180.0) < 1e-9 else a
 
 
 def _azimuth_ellipticity(ket: Complex) -> tuple[float, float]:
