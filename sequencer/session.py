@@ -205,7 +205,7 @@ def log_path_for(out: Path) -> Path:
 
 def _say(console: Console | None, text: str) -> None:
     if console is not None:
-        console.print(text, highlight=False)
+        console.print(text, highlight=False, markup=False)
 
 
 def start_run(protocol_spec: str, bench_spec: str, out: str, *, console: Console | None, live: bool) -> int:

@@ -63,6 +63,6 @@ def run(args: argparse.Namespace) -> int:
         for p in _plots(data, est, str(folder / "figures")):
             console.print(f"  figure: {p}", highlight=False)
     except UsageError as exc:
-        console.print(f"  (no figures: {exc})", highlight=False)
+        console.print(f"  (no figures: {exc})", highlight=False, markup=False)
     console.print(f"done in {time.monotonic() - t0:.1f} s; files in {folder}", highlight=False)
     return 0
