@@ -16,11 +16,14 @@ def _pm(x: dict[str, float], digits: int = 4) -> str:
 def print_report(console: Console, doc: dict[str, Any]) -> None:
     """Print the analysis document produced by analysis.result_json."""
     run = doc["run"]
-    console.print(
-        f"[bold]{run['protocol']}[/bold] on {run['bench']}: {run['status']}, "
-        f"{run['steps_done']}/{run['steps_total']} steps"
+    from rich.text import Text
+
+    head = Text(run["protocol"], style="bold")
+    head.append(
+        f" on {run['bench']}: {run['status']}, {run['steps_done']}/{run['steps_total']} steps"
         + (f" — {run['message']}" if run.get("message") else "")
     )
+    console.print(head)
     basis = doc["basis"]
     rho = np.array(doc["density_matrix"]["real"]) + 1j * np.array(doc["density_matrix"]["imag"])
     t = Table(title="density matrix (maximum likelihood)")
@@ -76,4 +79,4 @@ def print_report(console: Console, doc: dict[str, Any]) -> None:
         f"certified gap {e['certified_gap']:.2g}, {e['bootstrap_resamples']} bootstrap resamples"
     )
     for line in lines:
-        console.print(f"  {line}", highlight=False)
+        console.print(f"  {line}", highlight=False, markup=False)

@@ -153,6 +153,13 @@ class Runner:
         self._refresh_every_s = policy.refresh_s
         self._complete_product = _complete_product(table)
 
+    def _tell(self, fn: Callable[..., None], *args) -> None:
+        """Update the display; a closed terminal or a display bug never stops a run."""
+        try:
+            fn(*args)
+        except (Exception, SystemExit) as exc:
+            self.log(f"display update failed ({exc!r}); the run goes on")
+
     # ------------------------------------------------------------------ safety
     def close_shutter_safely(self) -> bool:
         """Close the shutter, retrying and reconnecting; True if the shutter reports closed."""
@@ -190,7 +197,7 @@ class Runner:
                     ) from exc
                 self._retried = True
                 self.log(f"transient fault on {what} (attempt {attempt}): {exc}; retrying in {delay:.2f} s")
-                self.monitor.warning(f"retrying {what}: {exc}")
+                self._tell(self.monitor.warning, f"retrying {what}: {exc}")
                 self.sleep(delay)
                 try:
                     device.reconnect()
@@ -307,7 +314,7 @@ class Runner:
         )
         self.store.event(Event(self.now(), "beam_lost", msg))
         self.log(msg)
-        self.monitor.warning(msg)
+        self._tell(self.monitor.warning, msg)
         waited = 0.0
         while waited <= self.policy.beam_wait_s:
             self.sleep(self.policy.beam_poll_s)
@@ -317,7 +324,7 @@ class Runner:
                 back = f"beam back after {waited:.0f} s (monitor {probe:.3g}); measuring the step again"
                 self.store.event(Event(self.now(), "beam_back", back))
                 self.log(back)
-                self.monitor.info(back)
+                self._tell(self.monitor.info, back)
                 return
         raise RunFault(
             f"the beam did not come back within {self.policy.beam_wait_s:g} s "
@@ -362,7 +369,7 @@ class Runner:
                         )
                         self.store.event(Event(self.now(), "drift", msg))
                         self.log(msg)
-                        self.monitor.warning(msg)
+                        self._tell(self.monitor.warning, msg)
                 else:
                     self._beam.drifting = False
             if self._retried:
@@ -402,7 +409,7 @@ class Runner:
                 self.store.record(reading)
                 n_done += 1
                 self.log(_reading_line(step, reading, self.units))
-                self.monitor.step_done(step, reading, n_done, total)
+                self._tell(self.monitor.step_done, step, reading, n_done, total)
                 if self.wall() - self._last_refresh >= self._refresh_every_s:
                     t0 = self.wall()
                     self.store.refresh("running")
@@ -432,7 +439,7 @@ class Runner:
             self.log("shutter closed (it reads back closed)")
         else:
             message += " — WARNING: the shutter did not confirm closing; block the beam by hand"
-            self.monitor.warning("the shutter did not confirm closing: block the beam by hand")
+            self._tell(self.monitor.warning, "the shutter did not confirm closing: block the beam by hand")
         kind = {"complete": "complete", "interrupted": "interrupted"}.get(status, "fault")
         try:
             self.store.event(Event(self.now(), kind, message))
@@ -454,7 +461,7 @@ class Runner:
         wait = due - self.now()
         if wait > 0:
             self.log(f"pass {step.pass_index + 1}: waiting {wait:.0f} s for its start time")
-            self.monitor.info(f"waiting {wait:.0f} s for pass {step.pass_index + 1}")
+            self._tell(self.monitor.info, f"waiting {wait:.0f} s for pass {step.pass_index + 1}")
             self.sleep(wait)
 
 

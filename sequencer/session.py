@@ -27,7 +27,7 @@ from sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, 
 from sequencer.optics.states import BASIS_LABELS
 from sequencer.plan import Plan
 from sequencer.protocol import Protocol, load_protocol, parse_protocol
-from sequencer.runner import Rig, Runner, RunPolicy, StopRequested
+from sequencer.runner import Rig, Runner, RunPolicy, StopRequested, _complete_product as _complete_ports
 from sequencer.safety import LASER_SAFETY_CAUTION
 from sequencer.storage.records import FORMAT_VERSION, Event, RunHeader
 from sequencer.storage.store import RunStore
@@ -204,8 +204,13 @@ def log_path_for(out: Path) -> Path:
 
 
 def _say(console: Console | None, text: str) -> None:
-    if console is not None:
+    """Tell the person watching; a closed or broken terminal must never stop a run."""
+    if console is None:
+        return
+    try:
         console.print(text, highlight=False, markup=False)
+    except (OSError, SystemExit):  # rich turns a broken pipe into SystemExit
+        pass
 
 
 def start_run(protocol_spec: str, bench_spec: str, out: str, *, console: Console | None, live: bool) -> int:
@@ -313,6 +318,14 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             sys.stderr.write(LASER_SAFETY_CAUTION)
             sys.stderr.flush()
             log("laser-safety caution shown; the shutter will open unattended")
+        if bench.roles.reference is None and not _complete_ports(table):
+            blind = (
+                "warning: this bench has no beam monitor (no reference meter, and its ports do not "
+                "measure a complete set), so a lost beam cannot be told from a dark projector and "
+                "would be recorded; add a reference pick-off meter for unattended runs"
+            )
+            log(blind)
+            _say(console, blind)
         _say(console, f"{'resuming' if resumed else 'running'} {protocol.name} on {bench.name}: "
                       f"{len(plan.steps) - len(done)} steps, about {left:.0f} s -> {out_path}")
         runner_kwargs = {}
