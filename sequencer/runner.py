@@ -148,6 +148,7 @@ class Runner:
         self._converter_state: str | None = None
         self._shutter_open: bool | None = None
         self._retried = False
+        self._state_lost = False
         self._pool = ThreadPoolExecutor(max_workers=max(1, len(rig.detectors) + 1), thread_name_prefix="read")
         self._last_refresh = -math.inf
         self._refresh_every_s = policy.refresh_s
@@ -203,8 +204,21 @@ class Runner:
                     device.reconnect()
                 except InstrumentError as again:
                     self.log(f"reconnect of {device.name} failed: {again}")
+                else:
+                    self._forget_state_of(device)
                 delay = min(self.policy.max_backoff_s, delay * 2)
         raise AssertionError("unreachable")
+
+    def _forget_state_of(self, device: Device) -> None:
+        """After a reconnect the instrument, or the whole rack, may have restarted: what we knew of
+        every device's state is void, and the step under way is measured again from the start,
+        re-commanding the shutter, the converter and every stage (see measure_step).
+        """
+        if isinstance(device, (RotationStage, DiscreteActuator, Shutter, PowerMeter, PhotonCounter)):
+            self._state_lost = True
+            self._positions.clear()
+            self._converter_state = None
+            self._shutter_open = None
 
     # ------------------------------------------------------------------ motion
     def _set_shutter(self, open_: bool) -> None:
@@ -256,16 +270,20 @@ class Runner:
         if conv_target is not None:
             c = self.rig.converter
             state = self._call(c, f"waiting for {c.name}", lambda: c.wait_settled(self.policy.settle_timeout_s))
+            if state != conv_target and self._state_lost:
+                return  # the actuator restarted under us: measure_step measures the step again
             if state != conv_target:
                 raise RunFault(f"device '{c.name}' reports state {state!r} after being set {conv_target!r}; check the actuator")
             self._converter_state = conv_target
 
-    def _readback(self, commanded: Sequence[float]) -> np.ndarray:
+    def _readback(self, commanded: Sequence[float]) -> np.ndarray | None:
         rb = np.full(len(ELEMENT_NAMES), math.nan)
         for i, stage in self.rig.stages.items():
             if math.isnan(commanded[i]):
                 continue
             pos = self._call(stage, f"reading the position of {stage.name}", stage.position_deg)
+            if abs(pos - commanded[i]) > POSITION_TOLERANCE_DEG and self._state_lost:
+                return None  # the instrument restarted under us: measure the step again
             if abs(pos - commanded[i]) > POSITION_TOLERANCE_DEG:
                 raise RunFault(
                     f"device '{stage.name}' is at {pos:.3f} deg, not at the commanded {commanded[i]:.3f} deg: "
@@ -319,6 +337,9 @@ class Runner:
         while waited <= self.policy.beam_wait_s:
             self.sleep(self.policy.beam_poll_s)
             waited += self.policy.beam_poll_s
+            # Re-command the shutter open: a restarted shutter controller comes back closed.
+            self._shutter_open = None
+            self._set_shutter(True)
             probe = self._probe_beam()
             if probe is not None and probe >= self.policy.beam_loss_fraction * baseline:
                 back = f"beam back after {waited:.0f} s (monitor {probe:.3g}); measuring the step again"
@@ -343,14 +364,26 @@ class Runner:
     def measure_step(self, step: Step) -> Reading:
         """Move, read every port, check the beam; returns the reading (not yet stored)."""
         flags = 0
+        redos = 0
         while True:
             self._retried = False
+            self._state_lost = False
             self._set_shutter(step.shutter_open)
             self._move(step.settings)
             readback = self._readback(step.settings)
             t_start = self.now()
-            values, ref = self._read_all(step.dwell_s)
+            values, ref = self._read_all(step.dwell_s) if readback is not None else (None, math.nan)
             t_end = self.now()
+            if readback is None or self._state_lost:
+                redos += 1
+                if redos > self.policy.retry_attempts:
+                    raise RunFault(
+                        f"step {step.index}: instruments kept reconnecting in a changed state "
+                        f"({redos - 1} times); check them, then `lightloom resume` the run"
+                    )
+                self.log(f"step {step.index}: an instrument reconnected and may have restarted; measuring the step again")
+                flags |= FLAG_RETRIED
+                continue
             level = self._beam_level(step, values, ref)
             if level is not None and step.kind != "background":
                 if self._beam.baseline is None:

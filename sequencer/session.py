@@ -112,8 +112,8 @@ def make_header(protocol: Protocol, bench: Bench, plan: Plan, units: str, protoc
     extra = {
         "protocol_spec": protocol_spec,
         "bench_spec": bench_spec,
-        "protocol_path": protocol.source_path,
-        "bench_path": bench.source_path,
+        "protocol_path": _absolute(protocol.source_path),
+        "bench_path": _absolute(bench.source_path),
         "target_label": protocol.target_label,
         "target_state_2x2": (
             {"real": np.real(protocol.target_state).tolist(), "imag": np.imag(protocol.target_state).tolist()}
@@ -148,6 +148,12 @@ def make_header(protocol: Protocol, bench: Bench, plan: Plan, units: str, protoc
         target_state=target,
         extra=extra,
     )
+
+
+def _absolute(path: str) -> str:
+    """An existing file's absolute path (so resume and calibrate work from any folder)."""
+    p = Path(path)
+    return str(p.resolve()) if p.is_file() else path
 
 
 def policy_for(bench: Bench) -> RunPolicy:

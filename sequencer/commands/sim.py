@@ -17,13 +17,19 @@ import yaml
 from rich.console import Console
 
 
+DEFAULT_BASE_PORT = 47100
+SERVED_HEADER = "# Written by `lightloom sim serve`"
+
+
 def add_parser(sub) -> None:
     p = sub.add_parser("sim", help="simulated instruments (sim serve)")
     verbs = p.add_subparsers(dest="sim_verb", metavar="VERB")
     verbs.required = True
     s = verbs.add_parser("serve", help="serve a simulated bench's instruments on 127.0.0.1")
     s.add_argument("--bench", required=True, help="simulated bench file or built-in name (e.g. sim)")
-    s.add_argument("--base-port", type=int, default=0, help="first TCP port (device i on base+i); 0 = free ports")
+    s.add_argument("--base-port", type=int, default=DEFAULT_BASE_PORT,
+                   help=f"first TCP port, device i on base+i (default {DEFAULT_BASE_PORT}, so a restarted "
+                        "server comes back on the same addresses); 0 = any free ports")
     s.add_argument("--transport", choices=("visa", "serial"), default="visa",
                    help="driver family the written bench uses (default visa)")
     s.add_argument("--bench-out", metavar="FILE", help="where to write the bench that points at the served instruments (default served-<bench>.yaml)")
@@ -53,7 +59,7 @@ def served_bench_text(bench, addresses, transport: str) -> str:
         options = {"read_termination": "\n", "write_termination": "\n", "timeout_s": 2.0}
         dev["options"] = options
     header = (
-        "# Written by `lightloom sim serve`: the instruments below are simulated and listen on 127.0.0.1\n"
+        f"{SERVED_HEADER}: the instruments below are simulated and listen on 127.0.0.1\n"
         "# only while the server runs. Running a protocol on this bench goes through the real drivers.\n"
     )
     return header + yaml.safe_dump(data, sort_keys=False)
@@ -69,8 +75,8 @@ def run(args: argparse.Namespace) -> int:
     if not bench.is_simulated:
         raise UsageError(f"bench '{bench.name}' has no simulation section; only simulated benches can be served")
     out = Path(args.bench_out or f"served-{bench.name}.yaml")
-    if out.exists():
-        raise UsageError(f"{out} exists already; choose another --bench-out (it is never overwritten)")
+    if out.exists() and not out.read_text(encoding="utf-8", errors="replace").startswith(SERVED_HEADER):
+        raise UsageError(f"{out} exists and was not written by `lightloom sim serve`; choose another --bench-out")
     scale = args.time_scale
     if scale is None:
         scale = bench.simulation.time_scale if bench.simulation.time_scale > 0 else 1.0
