@@ -149,6 +149,7 @@ class Runner:
         self._shutter_open: bool | None = None
         self._retried = False
         self._state_lost = False
+        self._may_remove = True
         self._pool = ThreadPoolExecutor(max_workers=max(1, len(rig.detectors) + 1), thread_name_prefix="read")
         self._last_refresh = -math.inf
         self._refresh_every_s = policy.refresh_s
@@ -214,11 +215,14 @@ class Runner:
         every device's state is void, and the step under way is measured again from the start,
         re-commanding the shutter, the converter and every stage (see measure_step).
         """
-        if isinstance(device, (RotationStage, DiscreteActuator, Shutter, PowerMeter, PhotonCounter)):
-            self._state_lost = True
-            self._positions.clear()
-            self._converter_state = None
-            self._shutter_open = None
+        if isinstance(device, (RotationStage, DiscreteActuator, Shutter)):
+            self._forget_all()
+
+    def _forget_all(self) -> None:
+        self._state_lost = True
+        self._positions.clear()
+        self._converter_state = None
+        self._shutter_open = None
 
     # ------------------------------------------------------------------ motion
     def _set_shutter(self, open_: bool) -> None:
@@ -282,8 +286,12 @@ class Runner:
             if math.isnan(commanded[i]):
                 continue
             pos = self._call(stage, f"reading the position of {stage.name}", stage.position_deg)
-            if abs(pos - commanded[i]) > POSITION_TOLERANCE_DEG and self._state_lost:
-                return None  # the instrument restarted under us: measure the step again
+            if abs(pos - commanded[i]) > POSITION_TOLERANCE_DEG and (self._state_lost or self._may_remove):
+                # The instrument may have restarted under us (a restarted controller forgets its
+                # position): command everything again once before calling the axis stuck.
+                self.log(f"{stage.name} reads {pos:.3f} deg instead of {commanded[i]:.3f} deg; moving again")
+                self._forget_all()
+                return None
             if abs(pos - commanded[i]) > POSITION_TOLERANCE_DEG:
                 raise RunFault(
                     f"device '{stage.name}' is at {pos:.3f} deg, not at the commanded {commanded[i]:.3f} deg: "
@@ -368,6 +376,7 @@ class Runner:
         while True:
             self._retried = False
             self._state_lost = False
+            self._may_remove = redos == 0
             self._set_shutter(step.shutter_open)
             self._move(step.settings)
             readback = self._readback(step.settings)
@@ -381,7 +390,7 @@ class Runner:
                         f"step {step.index}: instruments kept reconnecting in a changed state "
                         f"({redos - 1} times); check them, then `lightloom resume` the run"
                     )
-                self.log(f"step {step.index}: an instrument reconnected and may have restarted; measuring the step again")
+                self.log(f"an instrument reconnected or lost its position during step {step.index}; measuring that step again")
                 flags |= FLAG_RETRIED
                 continue
             level = self._beam_level(step, values, ref)
