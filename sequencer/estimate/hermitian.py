@@ -6,6 +6,7 @@ from functools import lru_cache
 
 import numpy as np
 
+from sequencer.estimate.blas import matmul_rows
 from sequencer.estimate.errors import EstimationError
 
 _SQRT2 = np.sqrt(2.0)
@@ -57,7 +58,7 @@ def to_vector(matrices: np.ndarray) -> np.ndarray:
     m = np.ascontiguousarray(matrices, dtype=complex)
     d = m.shape[-1]
     entries = m.reshape(m.shape[:-2] + (d * d,)).view(np.float64)
-    return entries @ _maps(d)[0]
+    return matmul_rows(entries, _maps(d)[0])
 
 
 def to_matrix(vectors: np.ndarray) -> np.ndarray:
@@ -66,7 +67,7 @@ def to_matrix(vectors: np.ndarray) -> np.ndarray:
     d = int(round(np.sqrt(x.shape[-1])))
     if d * d != x.shape[-1]:
         raise EstimationError(f"a Hermitian coordinate vector has d*d entries; got {x.shape[-1]}")
-    entries = np.ascontiguousarray(x @ _maps(d)[1])
+    entries = np.ascontiguousarray(matmul_rows(x, _maps(d)[1]))
     return entries.view(np.complex128).reshape(x.shape[:-1] + (d, d))
 
 

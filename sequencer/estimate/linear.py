@@ -6,6 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from sequencer.estimate.blas import matmul_rows
 from sequencer.estimate.errors import EstimationError
 from sequencer.estimate.hermitian import check_operators, check_values, hermitian_part, to_matrix, to_vector
 
@@ -86,11 +87,11 @@ def least_squares_operator(design: np.ndarray, weights: np.ndarray | None = None
     cheap and, for tomographic designs, well conditioned.
     """
     w = np.ones(design.shape[0]) if weights is None else np.asarray(weights, dtype=float)
-    gram = design.T @ (design * w[:, None])
+    gram = matmul_rows(design.T, design * w[:, None])
     lam, vec = np.linalg.eigh(gram)
     kept = lam > 1e-12 * max(float(lam[-1]), np.finfo(float).tiny)
     inverse = (vec[:, kept] / lam[kept]) @ vec[:, kept].T
-    return inverse @ (design.T * w[None, :]), int(np.count_nonzero(kept))
+    return matmul_rows(inverse, design.T * w[None, :]), int(np.count_nonzero(kept))
 
 
 def _weights_from_sigma(sigma: np.ndarray | None, n: int) -> np.ndarray | None:
@@ -134,7 +135,7 @@ def linear_inversion_batch(
             f"{d}x{d} state; linear inversion needs an informationally complete set (use more settings, "
             "or the maximum-likelihood estimator)"
         )
-    t = to_matrix(v @ solve.T)
+    t = to_matrix(matmul_rows(v, solve.T))
     intensity = np.real(np.trace(t, axis1=-2, axis2=-1))
     if np.any(intensity <= 0):
         bad = int(np.argmax(intensity <= 0))

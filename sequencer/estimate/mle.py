@@ -6,6 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from sequencer.estimate.blas import matmul_rows
 from sequencer.estimate.errors import EstimationError
 from sequencer.estimate.hermitian import check_operators, check_values, to_matrix, to_vector
 from sequencer.estimate.apg import (
@@ -135,11 +136,11 @@ def mle_poisson_batch(
         raise EstimationError(f"data set {bad} has no counts at all; check that the beam and detectors were on")
     f = c / n_tot[:, None]
     # a little of the maximally mixed state keeps every predicted probability > 0 at the start
-    start = project_density_coordinates(f @ solve.T)
+    start = project_density_coordinates(matmul_rows(f, solve.T))
     start = (1.0 - _START_MIXING) * start + _START_MIXING * to_vector(np.eye(d) / d)[None, :]
     sol = solve_poisson(design, f, n_tot, start, tol, max_iterations)
     x, iterations, gap = sol.x, sol.iterations, sol.gap
-    phi = _neg_mean_log(x @ design.T, f)
+    phi = _neg_mean_log(matmul_rows(x, design.T), f)
     t = n_tot[:, None, None] * (g_inv_half @ to_matrix(x) @ g_inv_half)
     intensity = np.real(np.trace(t, axis1=-2, axis2=-1))
     rho = t / intensity[:, None, None]
@@ -210,7 +211,7 @@ def mle_gaussian_batch(
     # readings and spreads divided by one common scale: chi^2 is unchanged and T comes out O(1)
     vs = v / scale
     ws = weights * scale**2
-    hess = design.T @ (design * ws[:, None])
+    hess = matmul_rows(design.T, design * ws[:, None])
     hw, hv = np.linalg.eigh(hess)
     if hw[0] <= 1e-12 * hw[-1]:
         raise EstimationError(
@@ -218,12 +219,12 @@ def mle_gaussian_batch(
             "the Gaussian estimator needs a complete set of settings"
         )
     hess_inv = (hv / hw) @ hv.T
-    c0 = (vs * ws[None, :]) @ design
+    c0 = matmul_rows(vs * ws[None, :], design)
     chi2_const = np.sum(ws[None, :] * vs**2, axis=1)
-    start = project_positive_coordinates(c0 @ hess_inv)
+    start = project_positive_coordinates(matmul_rows(c0, hess_inv))
     sol = solve_gaussian(hess, hess_inv, c0, start, tol, max_iterations)
     x, iterations, gap = sol.x, sol.iterations, sol.gap
-    q = np.einsum("ij,ij->i", x @ hess, x) - 2.0 * np.einsum("ij,ij->i", c0, x) + chi2_const
+    q = np.einsum("ij,ij->i", matmul_rows(x, hess), x) - 2.0 * np.einsum("ij,ij->i", c0, x) + chi2_const
     t = to_matrix(x) * scale
     intensity = np.real(np.trace(t, axis1=-2, axis2=-1))
     if np.any(intensity <= 0):
