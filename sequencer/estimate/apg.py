@@ -8,10 +8,11 @@ import numpy as np
 
 from sequencer.estimate.blas import matmul_rows
 from sequencer.estimate.hermitian import to_matrix, to_vector
+from sequencer.estimate.projection import from_eigen, simplex_from_ascending
 
-STEP_SHRINK = 0.5
-STEP_GROWTH = 1.1
-BACKTRACK_LIMIT = 60
+_STEP_SHRINK = 0.5
+_STEP_GROWTH = 1.1
+_BACKTRACK_LIMIT = 60
 _SERIES_BELOW = 1e-4
 _RESYNC_EVERY = 50
 
@@ -26,21 +27,7 @@ class Solution:
 
 
 def _eig_to_coordinates(vecs: np.ndarray, lam: np.ndarray) -> np.ndarray:
-    return to_vector((vecs * lam[..., None, :]) @ np.conj(np.swapaxes(vecs, -1, -2)))
-
-
-def simplex_from_ascending(w: np.ndarray) -> np.ndarray:
-    """Euclidean projection onto the probability simplex of rows already sorted ascending (as eigh returns them).
-
-    Held, Wolfe, Crowder, Math. Program. 6, 62 (1974).
-    """
-    d = w.shape[-1]
-    u = w[..., ::-1]
-    css = np.cumsum(u, axis=-1) - 1.0
-    keep = u * np.arange(1, d + 1) > css
-    r = d - 1 - np.argmax(keep[..., ::-1], axis=-1)
-    theta = np.take_along_axis(css, r[..., None], axis=-1) / (r[..., None] + 1)
-    return np.maximum(w - theta, 0.0)
+    return to_vector(from_eigen(vecs, lam))
 
 
 def project_density_coordinates(x: np.ndarray) -> np.ndarray:
@@ -201,10 +188,10 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
         dp = matmul_rows(delta, design.T)
         ok = _poisson_bregman(inverse_py, dp, fw) <= _rowdot(delta, delta) / (2.0 * t)
         pending = np.flatnonzero(~ok)
-        for _trial in range(BACKTRACK_LIMIT):
+        for _trial in range(_BACKTRACK_LIMIT):
             if pending.size == 0:
                 break
-            t[pending] *= STEP_SHRINK
+            t[pending] *= _STEP_SHRINK
             cand, cand_basis = _project_density_with_basis(y[pending] + t[pending, None] * grad[pending])
             dc = cand - y[pending]
             dpc = matmul_rows(dc, design.T)
@@ -226,7 +213,7 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
         work["py"] = pz + beta * (pz - p)
         work["x"], work["p"] = z, pz
         work["theta"] = np.where(restart, 1.0, theta_next)
-        work["step"] = t * STEP_GROWTH
+        work["step"] = t * _STEP_GROWTH
         gap = _poisson_gap(z, fw, used, work["n_tot"], design, identity, (pz, basis, tol))
         work.retire(gap <= tol, z, gap, iteration)
     if work.size:

@@ -109,7 +109,7 @@ def check_operators(operators: np.ndarray) -> np.ndarray:
 
 
 def check_values(values: np.ndarray, n: int, name: str = "values") -> np.ndarray:
-    """Validate readings: shape (n,) or (batch, n), finite. Returns a float array of at least 2 dimensions' shape (batch, n)."""
+    """Validate readings of shape (n,) or (batch, n), all finite; returns them as floats of shape (batch, n)."""
     v = np.asarray(values, dtype=float)
     if v.ndim == 1:
         v = v[None, :]

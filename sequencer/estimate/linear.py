@@ -1,4 +1,4 @@
-"""Linear-inversion state estimate and the projections onto density matrices and onto the positive cone."""
+"""Linear-inversion state estimate (weighted least squares over Hermitian matrices), with the projections re-exported."""
 
 from __future__ import annotations
 
@@ -8,7 +8,19 @@ import numpy as np
 
 from sequencer.estimate.blas import matmul_rows
 from sequencer.estimate.errors import EstimationError
-from sequencer.estimate.hermitian import check_operators, check_values, hermitian_part, to_matrix, to_vector
+from sequencer.estimate.hermitian import check_operators, check_values, to_matrix, to_vector
+from sequencer.estimate.projection import closest_density_matrix, closest_positive
+
+__all__ = [
+    "LinearBatchResult",
+    "LinearResult",
+    "closest_density_matrix",
+    "closest_positive",
+    "design_matrix",
+    "least_squares_operator",
+    "linear_inversion",
+    "linear_inversion_batch",
+]
 
 
 @dataclass(frozen=True)
@@ -32,46 +44,6 @@ class LinearBatchResult:
 
     rho: np.ndarray
     intensity: np.ndarray
-
-
-def project_simplex(values: np.ndarray) -> np.ndarray:
-    """Euclidean projection of each row of `values` (..., d) onto the probability simplex.
-
-    Held, Wolfe, Crowder, Math. Program. 6, 62 (1974); applied to eigenvalues this is the
-    projection of Smolin, Gambetta, Smith, PRL 108, 070502 (2012).
-    """
-    lam = np.asarray(values, dtype=float)
-    d = lam.shape[-1]
-    u = -np.sort(-lam, axis=-1)
-    css = np.cumsum(u, axis=-1) - 1.0
-    k = np.arange(1, d + 1)
-    keep = u - css / k > 0
-    # the last index where the condition holds (it always holds at index 0)
-    r = d - 1 - np.argmax(keep[..., ::-1], axis=-1)
-    theta = np.take_along_axis(css, r[..., None], axis=-1) / (r[..., None] + 1)
-    return np.maximum(lam - theta, 0.0)
-
-
-def closest_density_matrix(matrices: np.ndarray) -> np.ndarray:
-    """The density matrix nearest in Frobenius norm to each Hermitian matrix (..., d, d).
-
-    Smolin, Gambetta, Smith, PRL 108, 070502 (2012): keep the eigenvectors and project the
-    eigenvalues onto the probability simplex. For a unit-trace input this is their algorithm
-    (drop the most negative eigenvalues and share their weight equally among the rest); for
-    any other trace it is the same Euclidean projection onto {rho >= 0, tr rho = 1}.
-    """
-    w, v = np.linalg.eigh(hermitian_part(np.asarray(matrices, dtype=complex)))
-    lam = project_simplex(w)
-    return (v * lam[..., None, :]) @ np.conj(np.swapaxes(v, -1, -2))
-
-
-def closest_positive(matrices: np.ndarray) -> np.ndarray:
-    """The positive semidefinite matrix nearest in Frobenius norm to each Hermitian matrix (..., d, d).
-
-    Negative eigenvalues set to zero (Higham, Linear Algebra Appl. 103, 103 (1988)).
-    """
-    w, v = np.linalg.eigh(hermitian_part(np.asarray(matrices, dtype=complex)))
-    return (v * np.maximum(w, 0.0)[..., None, :]) @ np.conj(np.swapaxes(v, -1, -2))
 
 
 def design_matrix(operators: np.ndarray) -> np.ndarray:

@@ -6,15 +6,15 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from sequencer.estimate.blas import matmul_rows
-from sequencer.estimate.errors import EstimationError
-from sequencer.estimate.hermitian import check_operators, check_values, to_matrix, to_vector
 from sequencer.estimate.apg import (
     project_density_coordinates,
     project_positive_coordinates,
     solve_gaussian,
     solve_poisson,
 )
+from sequencer.estimate.blas import matmul_rows
+from sequencer.estimate.errors import EstimationError
+from sequencer.estimate.hermitian import check_operators, check_values, to_matrix, to_vector
 from sequencer.estimate.linear import least_squares_operator
 
 DEFAULT_TOLERANCE = 1e-6
@@ -220,11 +220,12 @@ def mle_gaussian_batch(
         )
     hess_inv = (hv / hw) @ hv.T
     c0 = matmul_rows(vs * ws[None, :], design)
-    chi2_const = np.sum(ws[None, :] * vs**2, axis=1)
     start = project_positive_coordinates(matmul_rows(c0, hess_inv))
     sol = solve_gaussian(hess, hess_inv, c0, start, tol, max_iterations)
     x, iterations, gap = sol.x, sol.iterations, sol.gap
-    q = np.einsum("ij,ij->i", matmul_rows(x, hess), x) - 2.0 * np.einsum("ij,ij->i", c0, x) + chi2_const
+    # chi^2 from the residuals themselves: the expanded quadratic form cancels badly at high signal-to-noise
+    residuals = vs - matmul_rows(x, design.T)
+    q = np.sum(ws[None, :] * residuals**2, axis=1)
     t = to_matrix(x) * scale
     intensity = np.real(np.trace(t, axis1=-2, axis2=-1))
     if np.any(intensity <= 0):
