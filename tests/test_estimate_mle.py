@@ -286,3 +286,15 @@ def test_non_positive_operators_are_refused():
     ops[0] = np.diag([1.0, -0.5])
     with pytest.raises(EstimationError, match="positive semidefinite"):
         mle_poisson(ops, np.ones(6))
+
+
+def test_gaussian_log_likelihood_is_accurate_at_high_signal_to_noise():
+    # readings 1e5 sigma above zero: chi^2 must come from residuals, not from a cancelling quadratic form
+    rng = np.random.default_rng(21)
+    truth = 1e-6 * random_state(4, rng, 2)
+    sigma = np.full(36, 2e-12)
+    values = probabilities(JOINT36, truth) + sigma * rng.standard_normal(36)
+    result = mle_gaussian(JOINT36, values, sigma)
+    assert result.log_likelihood == pytest.approx(
+        gaussian_log_likelihood(JOINT36, result.intensity * result.rho, values, sigma), abs=1e-7
+    )
