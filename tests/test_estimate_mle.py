@@ -298,3 +298,9 @@ def test_gaussian_log_likelihood_is_accurate_at_high_signal_to_noise():
     assert result.log_likelihood == pytest.approx(
         gaussian_log_likelihood(JOINT36, result.intensity * result.rho, values, sigma), abs=1e-7
     )
+
+
+def test_counts_on_a_zero_operator_are_refused():
+    ops = np.concatenate([SINGLE6, np.zeros((1, 2, 2))])
+    with pytest.raises(EstimationError, match="operator 6 is zero"):
+        mle_poisson(ops, [10, 5, 6, 9, 7, 8, 3])

@@ -63,7 +63,8 @@ def fidelity(rho: np.ndarray, sigma: np.ndarray) -> np.ndarray:
     """Fidelity F = (tr sqrt(sqrt(rho) sigma sqrt(rho)))^2 between density matrices (broadcast over leading axes).
 
     The squared (Uhlmann-Jozsa) convention, Jozsa, J. Mod. Opt. 41, 2315 (1994): F = <psi|rho|psi>
-    for a pure sigma = |psi><psi|. (qutip.fidelity returns sqrt(F).)
+    for a pure sigma = |psi><psi|. (qutip.fidelity returns sqrt(F).) Negative eigenvalues, as a
+    linear-inversion estimate may have, are treated as zero.
     """
     r, s = _as_states(rho), _as_states(sigma)
     # tr sqrt(sqrt(rho) sigma sqrt(rho)) is the sum of the singular values of X^dagger W (rho = XX^dagger, sigma = WW^dagger)
@@ -85,7 +86,8 @@ def concurrence(rho: np.ndarray) -> np.ndarray:
     """Concurrence of two-qubit states (..., 4, 4), Wootters, PRL 80, 2245 (1998).
 
     C = max(0, l1 - l2 - l3 - l4) with l_i, in decreasing order, the square roots of the eigenvalues
-    of sqrt(rho) rho~ sqrt(rho), rho~ = (sigma_y x sigma_y) rho* (sigma_y x sigma_y).
+    of sqrt(rho) rho~ sqrt(rho), rho~ = (sigma_y x sigma_y) rho* (sigma_y x sigma_y). Negative
+    eigenvalues of rho (a non-physical estimate) are treated as zero.
     """
     r = _as_states(rho, 4)
     # with rho = X X^dagger the l_i are the singular values of X^T (sigma_y x sigma_y) X, which avoids

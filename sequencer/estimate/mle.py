@@ -130,6 +130,13 @@ def mle_poisson_batch(
             "Poisson maximum likelihood needs non-negative counts; readings after background subtraction "
             "can be negative: use model='gaussian' with their spread"
         )
+    blind = np.real(np.trace(e, axis1=-2, axis2=-1)) <= 1e-12 * np.max(np.real(np.trace(e, axis1=-2, axis2=-1)))
+    if np.any(c[:, blind] > 0):
+        bad = int(np.flatnonzero(blind & np.any(c > 0, axis=0))[0])
+        raise EstimationError(
+            f"measurement operator {bad} is zero (that port sees nothing) yet its reading has counts; "
+            "the operator table does not match the readings"
+        )
     n_tot = c.sum(axis=1)
     if np.any(n_tot <= 0):
         bad = int(np.argmax(n_tot <= 0))
