@@ -24,15 +24,13 @@ from sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_ANGLE, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, HWP, QWP, ROTATOR,
     AnalyzerModel, PortModel,
 )
-from sequencer.optics.settings import polarization_setting, spatial_setting
+from sequencer.optics.settings import polarization_setting_variants, spatial_setting
 from sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, ORTHOGONAL_NAME
 from sequencer.optics.stokes import stokes_from_density
 from sequencer.optics.states import density
-from sequencer.ordering import order_settings
+from sequencer.ordering import PERIOD_DEG, order_settings
 from sequencer.plan import Plan, Step
 
-# Plates and the rotator repeat every 180 deg for any retardance; the converter stage too.
-PERIOD_DEG = 180.0
 STAGE_ELEMENTS = (QWP, HWP, CONVERTER_ANGLE, ROTATOR)
 
 
@@ -144,8 +142,7 @@ def compile_requests(
     expand_sp = "spatial" not in analyzes and model.analyzes_spatial and not merge_sp
 
     keys: list[tuple] = []
-    settings: list[np.ndarray] = []
-    key_labels: list[tuple[str, ...]] = []
+    entries: list[tuple] = []  # ("elements", settings, label) or ("targets", pol part, spatial part, point)
     logical: list[int] = []
 
     def factor_parts(req_part, reg: _FactorRegistry, expand: bool, kets: Mapping[str, np.ndarray], names: tuple[str, str]):
@@ -162,9 +159,8 @@ def compile_requests(
             key = ("elements",) + tuple(np.round(np.nan_to_num(s, nan=-999.0), 9))
             if key not in keys:
                 keys.append(key)
-                settings.append(s)
-                key_labels.append(tuple(_explicit_label(req.elements) for _ in table.ports))
-                logical.append(len(set(logical)))
+                entries.append(("elements", s, _explicit_label(req.elements)))
+                logical.append((max(logical) + 1) if logical else 0)
             continue
         pol_parts = factor_parts(req.polarization, pol_reg, expand_pol, POLARIZATION_KETS, ("H", "V"))
         sp_parts = factor_parts(req.spatial, sp_reg, expand_sp, SPATIAL_KETS, ("h", "v"))
@@ -178,27 +174,47 @@ def compile_requests(
                 )
                 if key in keys:
                     continue
-                try:
-                    s = _target_settings(table, pp, spp, pol_reg, sp_reg, pol_port, sp_port, merge_pol, merge_sp)
-                except OpticsError as exc:
-                    raise BenchError(f"point {r_index + 1}: {exc}", None, req.line) from None
                 if logical_index is None:
                     logical_index = (max(logical) + 1) if logical else 0
                 keys.append(key)
-                settings.append(s)
+                entries.append(("targets", pp, spp, r_index, req.line))
                 logical.append(logical_index)
-                key_labels.append(
-                    _port_labels(table.ports, pp, spp, pol_reg, sp_reg, analyzes, pol_port, sp_port)
-                )
-    if not settings:
+    if not entries:
         raise ProtocolError(f"protocol '{protocol_name}' asks for no measurement")
-    order_idx = order_settings(np.array(settings), table, order, seed)
+    # Every setting with the alternatives that measure the same projectors (a merged basis may be
+    # sent either way round through the splitter or the sorter): least-motion picks among them.
+    variants: list[np.ndarray] = []
+    variant_labels: list[list[tuple[str, ...]]] = []
+    for entry in entries:
+        if entry[0] == "elements":
+            variants.append(entry[1][None, :])
+            variant_labels.append([tuple(entry[2] for _ in table.ports)])
+            continue
+        _, pp, spp, r_index, line = entry
+        pol_choices = ["H", "V"] if (merge_pol and pp is not None) else [pol_port]
+        sp_choices = ["h", "v"] if (merge_sp and spp is not None) else [sp_port]
+        rows, labels = [], []
+        for pport in pol_choices:
+            for sport in sp_choices:
+                try:
+                    found = _target_settings(table, pp, spp, pol_reg, sp_reg, pport, sport)
+                except OpticsError as exc:
+                    raise BenchError(f"point {r_index + 1}: {exc}", None, line) from None
+                label = _port_labels(table.ports, pp, spp, pol_reg, sp_reg, analyzes, pport, sport)
+                rows.extend(found)
+                labels.extend([label] * len(found))
+        variants.append(np.array(rows))
+        variant_labels.append(labels)
+    order_idx, choice = order_settings(variants, table, order, seed, reference_every)
+    settings = np.array([variants[k][choice[k]] for k in range(len(variants))])
+    key_labels = [variant_labels[k][choice[k]] for k in range(len(variants))]
+    ref_settings, ref_labels = variants[0][0], variant_labels[0][0]
     return _expand_steps(
-        table, protocol_name, np.array(settings), key_labels, logical, order_idx, analyzes,
+        table, protocol_name, settings, key_labels, logical, order_idx, analyzes,
         dwell_s, repeats, background_every, background_at_start, background_at_end,
         background_dwell_s if background_dwell_s is not None else dwell_s,
         reference_every, reference_dwell_s if reference_dwell_s is not None else dwell_s,
-        passes, pass_interval_s, order,
+        passes, pass_interval_s, order, ref_settings, ref_labels,
     )
 
 
@@ -237,28 +253,32 @@ def _park(table: TableModel) -> np.ndarray:
     return s
 
 
-def _target_settings(table, pp, spp, pol_reg, sp_reg, pol_port, sp_port, merge_pol, merge_sp) -> np.ndarray:
-    s = _park(table)
+def _target_settings(table, pp, spp, pol_reg, sp_reg, pol_port, sp_port) -> list[np.ndarray]:
+    """Every setting found that sends the pol part to ``pol_port`` and the spatial part to ``sp_port``."""
+    base = _park(table)
     model = table.analyzer
-    if pp is not None:
-        b = pol_reg.bases[pp[0]]
-        ps = polarization_setting(b.ket, pol_port, model)
-        if ps.quarter_wave_plate_deg is not None:
-            s[QWP] = ps.quarter_wave_plate_deg
-        if ps.half_wave_plate_deg is not None:
-            s[HWP] = ps.half_wave_plate_deg
     if spp is not None:
         b = sp_reg.bases[spp[0]]
         ss = spatial_setting(b.ket, sp_port, model)
         if model.mode_converter is not None and table.present[CONVERTER]:
-            s[CONVERTER] = CONVERTER_IN if ss.converter_in else CONVERTER_OUT
+            base[CONVERTER] = CONVERTER_IN if ss.converter_in else CONVERTER_OUT
         elif ss.converter_in:
             raise OpticsError("this target needs the mode converter in the beam, but the bench has no mode_converter role")
         if ss.converter_angle_deg is not None:
-            s[CONVERTER_ANGLE] = ss.converter_angle_deg
+            base[CONVERTER_ANGLE] = ss.converter_angle_deg
         if ss.image_rotator_deg is not None:
-            s[ROTATOR] = ss.image_rotator_deg
-    return s
+            base[ROTATOR] = ss.image_rotator_deg
+    if pp is None:
+        return [base]
+    out = []
+    for ps in polarization_setting_variants(pol_reg.bases[pp[0]].ket, pol_port, model):
+        s = base.copy()
+        if ps.quarter_wave_plate_deg is not None:
+            s[QWP] = ps.quarter_wave_plate_deg
+        if ps.half_wave_plate_deg is not None:
+            s[HWP] = ps.half_wave_plate_deg
+        out.append(s)
+    return out
 
 
 def _port_labels(ports, pp, spp, pol_reg, sp_reg, analyzes, pol_port, sp_port) -> tuple[str, ...]:
@@ -294,6 +314,7 @@ def _setting_label(port_labels: tuple[str, ...]) -> str:
 def _expand_steps(
     table, protocol_name, settings, key_labels, logical, order_idx, analyzes, dwell_s, repeats,
     bg_every, bg_start, bg_end, bg_dwell, ref_every, ref_dwell, passes, pass_interval_s, order,
+    ref_settings, ref_labels,
 ) -> Plan:
     steps: list[Step] = []
     violations: list[str] = []
@@ -306,7 +327,7 @@ def _expand_steps(
             if math.isnan(target[i]) or i not in table.kinematics:
                 continue
             k = table.kinematics[i]
-            out[i] = nearest_equivalent_deg(target[i], position[i], PERIOD_DEG, k)
+            out[i] = nearest_equivalent_deg(target[i], position[i], PERIOD_DEG[i], k)
             if not (k.min_deg - 1e-9 <= out[i] <= k.max_deg + 1e-9):
                 violations.append(
                     f"{ELEMENT_NAMES[i]} at {out[i]:.3f} deg is outside its travel {k.min_deg:g}..{k.max_deg:g} deg"
@@ -319,8 +340,6 @@ def _expand_steps(
                           tuple(float(x) for x in s), float(dwell), label, tuple(port_labels)))
 
     n_ports = len(table.ports)
-    ref_settings = settings[0]
-    ref_labels = key_labels[0]
     for p in range(passes):
         sequence = list(order_idx) if p % 2 == 0 else list(reversed(order_idx))
         if bg_start and p == 0:

@@ -13,13 +13,15 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from sequencer.kinematics import leg_times_s, nearest_equivalent_deg
-from sequencer.optics.analyzer import CONVERTER
+from sequencer.optics.analyzer import CONVERTER, CONVERTER_ANGLE, HWP, QWP, ROTATOR
 
 if TYPE_CHECKING:
     from sequencer.compiler import TableModel
 
 ORDERS = ("as-written", "shuffled", "least-motion")
-PERIOD_DEG = 180.0
+# Angles that give the same operator: plates and the converter stage repeat every 180 deg whatever
+# their retardance; the image rotator (a reflection) every 90 deg.
+PERIOD_DEG: dict[int, float] = {QWP: 180.0, HWP: 180.0, CONVERTER_ANGLE: 180.0, ROTATOR: 90.0}
 
 
 def transition_time_s(a: np.ndarray, b: np.ndarray, table: "TableModel") -> float:
@@ -32,7 +34,7 @@ def transition_time_s(a: np.ndarray, b: np.ndarray, table: "TableModel") -> floa
     for i, k in table.kinematics.items():
         if math.isnan(a[i]) or math.isnan(b[i]):
             continue
-        target = nearest_equivalent_deg(b[i], a[i], PERIOD_DEG, k)
+        target = nearest_equivalent_deg(b[i], a[i], PERIOD_DEG[i], k)
         for j, leg in enumerate(leg_times_s(a[i], target, k)):
             if j == len(legs):
                 legs.append(leg)
@@ -44,20 +46,83 @@ def transition_time_s(a: np.ndarray, b: np.ndarray, table: "TableModel") -> floa
     return t
 
 
-def _path_cost(order: list[int], cost: np.ndarray, start: np.ndarray) -> float:
-    total = start[order[0]]
-    for i, j in zip(order[:-1], order[1:]):
-        total += cost[i, j]
-    return float(total)
+def _path_cost(order: list[int], cost: np.ndarray, start: np.ndarray, ref: int | None, ref_every: int) -> float:
+    """Transition time along ``order`` from the origin, with the visits to the reference setting
+    ``ref`` that the compiler inserts (at the start, after every ``ref_every`` settings, at the end)."""
+    if ref is None or ref_every <= 0:
+        total = start[order[0]]
+        for i, j in zip(order[:-1], order[1:]):
+            total += cost[i, j]
+        return float(total)
+    total = start[ref] + cost[ref, order[0]]
+    for k, (i, j) in enumerate(zip(order[:-1], order[1:]), start=1):
+        total += cost[i, ref] + cost[ref, j] if k % ref_every == 0 else cost[i, j]
+    return float(total + cost[order[-1], ref])
 
 
-def least_motion_order(settings: np.ndarray, table: "TableModel", origin: np.ndarray) -> list[int]:
-    """An order of ``settings`` (n, 5) with a short total transition time starting from ``origin``."""
-    n = len(settings)
+def _best_variants(
+    order: list[int], block: list[list[np.ndarray]], start: list[np.ndarray], ref_every: int
+) -> tuple[float, list[int]]:
+    """For a fixed order, the variant of every setting that minimises the total time (Viterbi).
+
+    ``block[i][j]`` (V_i, V_j) holds the transition times between the variants of settings i and
+    j, ``start[i]`` (V_i,) those from the origin; the reference is variant 0 of setting 0.
+    """
+    use_ref = ref_every > 0
+    first = order[0]
+    if use_ref:
+        t = start[0][0] + block[0][first][0, :]
+    else:
+        t = start[first].copy()
+    back: list[np.ndarray] = []
+    for k in range(1, len(order)):
+        i, j = order[k - 1], order[k]
+        if use_ref and k % ref_every == 0:
+            step = block[i][0][:, :1] + block[0][j][:1, :]
+        else:
+            step = block[i][j]
+        total = t[:, None] + step
+        arg = np.argmin(total, axis=0)
+        back.append(arg)
+        t = total[arg, np.arange(total.shape[1])]
+    if use_ref:
+        t = t + block[order[-1]][0][:, 0]
+    w = int(np.argmin(t))
+    best = float(t[w])
+    path = [w]
+    for arg in reversed(back):
+        w = int(arg[w])
+        path.append(w)
+    return best, path[::-1]
+
+
+def least_motion_order(
+    variants: list[np.ndarray], table: "TableModel", origin: np.ndarray, ref_every: int = 0
+) -> tuple[list[int], list[int]]:
+    """An order of the settings, and a variant of each, with a short total transition time.
+
+    ``variants[k]`` (V_k, 5) are interchangeable settings measuring the same projectors. With
+    ``ref_every`` > 0 the cost includes the returns to the reference setting (variant 0 of setting
+    0) that the compiler inserts. Nearest-neighbour construction, then 2-opt and or-opt moves, each
+    order scored with its best variants.
+    """
+    n = len(variants)
     if n <= 1:
-        return list(range(n))
-    cost = np.array([[transition_time_s(settings[i], settings[j], table) for j in range(n)] for i in range(n)])
-    start = np.array([transition_time_s(origin, settings[j], table) for j in range(n)])
+        return list(range(n)), [0] * n
+    block = [
+        [np.array([[transition_time_s(a, b, table) for b in variants[j]] for a in variants[i]]) for j in range(n)]
+        for i in range(n)
+    ]
+    start = [np.array([transition_time_s(origin, a, table) for a in variants[i]]) for i in range(n)]
+    cost = np.array([[block[i][j].min() for j in range(n)] for i in range(n)])
+    memo: dict[tuple[int, ...], tuple[float, list[int]]] = {}
+
+    def total(order: list[int]) -> float:
+        key = tuple(order)
+        if key not in memo:
+            memo[key] = _best_variants(order, block, start, ref_every)
+        return memo[key][0]
+
     best_order, best_cost = None, math.inf
     for first in range(n):
         order = [first]
@@ -67,7 +132,7 @@ def least_motion_order(settings: np.ndarray, table: "TableModel", origin: np.nda
             nxt = min(left, key=lambda j: (cost[here, j], j))
             order.append(nxt)
             left.remove(nxt)
-        c = _path_cost(order, cost, start)
+        c = total(order)
         if c < best_cost:
             best_order, best_cost = order, c
     assert best_order is not None
@@ -78,7 +143,7 @@ def least_motion_order(settings: np.ndarray, table: "TableModel", origin: np.nda
         for i in range(n - 1):
             for j in range(i + 1, n):
                 cand = order[:i] + order[i : j + 1][::-1] + order[j + 1 :]
-                c = _path_cost(cand, cost, start)
+                c = total(cand)
                 if c < best_cost - 1e-12:
                     order, best_cost, improved = cand, c, True
         for length in (1, 2, 3):
@@ -87,21 +152,31 @@ def least_motion_order(settings: np.ndarray, table: "TableModel", origin: np.nda
                 rest = order[:i] + order[i + length :]
                 for j in range(len(rest) + 1):
                     cand = rest[:j] + seg + rest[j:]
-                    c = _path_cost(cand, cost, start)
+                    c = total(cand)
                     if c < best_cost - 1e-12:
                         order, best_cost, improved = cand, c, True
                         break
-    return order
+    path = memo[tuple(order)][1]
+    choice = [0] * n
+    for k, setting in enumerate(order):
+        choice[setting] = path[k]
+    return order, choice
 
 
-def order_settings(settings: np.ndarray, table: "TableModel", order: str, seed: int) -> list[int]:
-    """Indices of ``settings`` in the requested order ("as-written", "shuffled", "least-motion")."""
-    n = len(settings)
+def order_settings(
+    variants: list[np.ndarray], table: "TableModel", order: str, seed: int, ref_every: int = 0
+) -> tuple[list[int], list[int]]:
+    """(indices of the settings in the requested order, the variant chosen for each setting).
+
+    "as-written" and "shuffled" use every setting's first variant; "least-motion" chooses.
+    """
+    n = len(variants)
     if order == "as-written":
-        return list(range(n))
+        return list(range(n)), [0] * n
     if order == "shuffled":
-        return [int(i) for i in np.random.default_rng(seed).permutation(n)]
+        return [int(i) for i in np.random.default_rng(seed).permutation(n)], [0] * n
     if order == "least-motion":
-        origin = np.where(np.isnan(settings[0]), np.nan, 0.0)
-        return least_motion_order(settings, table, origin)
+        first = variants[0][0]
+        origin = np.where(np.isnan(first), np.nan, 0.0)
+        return least_motion_order(variants, table, origin, ref_every)
     raise ValueError(f"order must be one of {', '.join(ORDERS)}, got {order!r}")

@@ -130,6 +130,7 @@ class Runner:
         log: Callable[[str], None] = lambda line: None,
         units: str = "W",
         run_start: float | None = None,
+        parallel_reads: bool = True,
     ) -> None:
         self.plan = plan
         self.table = table
@@ -143,6 +144,9 @@ class Runner:
         self.log = log
         self.units = units
         self.run_start = run_start
+        # Detectors integrate at once on real (or scaled-time) tables; on an instant simulated
+        # table they are read one after the other so that the same seed gives the same readings.
+        self.parallel_reads = parallel_reads
         self._beam = _BeamWatch()
         self._positions: dict[int, float] = {}
         self._converter_state: str | None = None
@@ -314,8 +318,8 @@ class Runner:
         devices: list[PowerMeter | PhotonCounter] = list(self.rig.detectors)
         if self.rig.reference is not None:
             devices.append(self.rig.reference)
-        if len(devices) == 1:
-            values = [self._read_one(devices[0], dwell_s)]
+        if len(devices) == 1 or not self.parallel_reads:
+            values = [self._read_one(d, dwell_s) for d in devices]
         else:
             futures = [self._pool.submit(self._read_one, d, dwell_s) for d in devices]
             values = [f.result() for f in futures]

@@ -344,7 +344,9 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             runner_kwargs["monitor"] = monitor
         runner = Runner(plan, table, assembled.rig, store, policy_for(bench), now=assembled.now,
                         sleep=assembled.sleep, wall=time.monotonic, log=log, units=store.header.port_units,
-                        run_start=_run_start(store, assembled.now), **runner_kwargs)
+                        run_start=_run_start(store, assembled.now),
+                        parallel_reads=not (bench.is_simulated and bench.simulation.time_scale == 0),
+                        **runner_kwargs)
         runner._beam.baseline = _initial_beam_level(store, table)
         with stop_on_sigterm():
             status, message = runner.execute(done)

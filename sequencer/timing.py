@@ -7,10 +7,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from sequencer.compiler import PERIOD_DEG, TableModel
+from sequencer.compiler import TableModel
 from sequencer.kinematics import nearest_equivalent_deg, path_time_s, path_travel_deg
 from sequencer.optics.analyzer import CONVERTER, ELEMENT_NAMES
-from sequencer.ordering import transition_time_s
+from sequencer.ordering import PERIOD_DEG, transition_time_s
 from sequencer.plan import Plan
 
 
@@ -70,7 +70,7 @@ def estimate_plan(plan: Plan, table: TableModel) -> PlanEstimate:
         for i, k in table.kinematics.items():
             if math.isnan(prev[i]) or math.isnan(cur[i]):
                 continue
-            tgt = nearest_equivalent_deg(cur[i], prev[i], PERIOD_DEG, k)
+            tgt = nearest_equivalent_deg(cur[i], prev[i], PERIOD_DEG[i], k)
             travel[ELEMENT_NAMES[i]] += path_travel_deg(prev[i], tgt, k.backlash_deg)
             stage_t[ELEMENT_NAMES[i]] += path_time_s(prev[i], tgt, k)
         if not (math.isnan(prev[CONVERTER]) or math.isnan(cur[CONVERTER])) and prev[CONVERTER] != cur[CONVERTER]:

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy.optimize import minimize
+from scipy.optimize import least_squares
 
 from sequencer.errors import OpticsError
 from sequencer.optics.analyzer import (
@@ -92,10 +92,20 @@ def _two_element_closed_form(
     return best
 
 
-def _polish(fun, x0: NDArray[np.float64]) -> tuple[NDArray[np.float64], float]:
-    """Minimise 1 - probability from x0 (deg) and return (x, probability)."""
-    res = minimize(fun, x0, method="Nelder-Mead", options={"xatol": 1e-9, "fatol": 1e-15, "maxiter": 2000})
-    return res.x, 1.0 - float(res.fun)
+def _loss_of(amp):
+    """1 - probability from the amplitude left at the other output (the elements are unitary)."""
+    return lambda x: abs(amp(x)) ** 2
+
+
+def _polish(amp, x0: NDArray[np.float64]) -> tuple[NDArray[np.float64], float]:
+    """Drive the amplitude at the other output to its minimum from x0 (deg), Levenberg-Marquardt;
+    return (x, probability)."""
+    def residual(x: NDArray[np.float64]) -> NDArray[np.float64]:
+        a = amp(x)
+        return np.array([a.real, a.imag])
+
+    res = least_squares(residual, x0, method="lm", xtol=1e-14, ftol=1e-15, gtol=1e-15, max_nfev=400)
+    return res.x, 1.0 - float(abs(amp(res.x)) ** 2)
 
 
 def polarization_setting(target: ArrayLike, port: str, model: AnalyzerModel) -> PolarizationSetting:
@@ -115,13 +125,14 @@ def polarization_setting(target: ArrayLike, port: str, model: AnalyzerModel) -> 
             ket, idx, rq, rh, q.fast_axis_offset_deg, h.fast_axis_offset_deg
         )
         if p < 1.0 - 1e-12:
-            def loss(x: NDArray[np.float64]) -> float:
+            def loss_amp(x: NDArray[np.float64]) -> complex:
                 u = jones.retarder(np.radians(x[1] + h.fast_axis_offset_deg), rh) @ jones.retarder(
                     np.radians(x[0] + q.fast_axis_offset_deg), rq
                 )
-                return 1.0 - _projection(u, ket, idx)
+                return complex(u[1 - idx] @ ket)
+            loss = _loss_of(loss_amp)
 
-            x, p2 = _polish(loss, np.array([q_deg, h_deg]))
+            x, p2 = _polish(loss_amp, np.array([q_deg, h_deg]))
             if p2 > p:
                 q_deg, h_deg, p = float(x[0]), float(x[1]), p2
         return _checked(PolarizationSetting(_wrap180(q_deg), _wrap180(h_deg), p), "polarization", ket)
@@ -131,16 +142,70 @@ def polarization_setting(target: ArrayLike, port: str, model: AnalyzerModel) -> 
         return _checked(PolarizationSetting(None, None, p), "polarization", ket)
     r = np.radians(plate.retardance_deg)
 
-    def loss1(x: NDArray[np.float64]) -> float:
+    def loss1_amp(x: NDArray[np.float64]) -> complex:
         u = jones.retarder(np.radians(x[0] + plate.fast_axis_offset_deg), r)
-        return 1.0 - _projection(u, ket, idx)
+        return complex(u[1 - idx] @ ket)
+    loss1 = _loss_of(loss1_amp)
 
     grid = np.linspace(0.0, 180.0, 181)
     start = grid[int(np.argmin([loss1(np.array([g])) for g in grid]))]
-    x, p = _polish(loss1, np.array([start]))
+    x, p = _polish(loss1_amp, np.array([start]))
     angle = _wrap180(float(x[0]))
     setting = PolarizationSetting(angle if slot == "q" else None, angle if slot == "h" else None, p)
     return _checked(setting, "polarization", ket)
+
+
+def polarization_setting_variants(target: ArrayLike, port: str, model: AnalyzerModel) -> list[PolarizationSetting]:
+    """Every plate setting found that sends ``target`` to ``port`` as well as polarization_setting does.
+
+    A quarter-wave plate along either principal axis of the target's ellipse makes it linear (the
+    half-wave plate then follows), and for a circular target any quarter-wave axis does; the
+    scheduler picks the variant that moves least. The first element is polarization_setting's.
+    """
+    base = polarization_setting(target, port, model)
+    q, h = model.quarter_wave_plate, model.half_wave_plate
+    if q is None or h is None:
+        return [base]
+    ket = normalize_ket(target)
+    idx = "HV".index(port)
+    rq, rh = np.radians(q.retardance_deg), np.radians(h.retardance_deg)
+    psi, chi = _azimuth_ellipticity(ket)
+    if abs(abs(chi) - np.pi / 4) < 1e-6:
+        axes = np.radians([0.0, 45.0, 90.0, 135.0])
+    else:
+        axes = np.array([psi + np.pi / 2])
+    out = [base]
+    for q_opt in axes:
+        theta, _ = _azimuth_ellipticity(jones.retarder(q_opt, rq) @ ket)
+        h_opt = 0.5 * (theta + idx * np.pi / 2)
+
+        def loss_amp(x: NDArray[np.float64]) -> complex:
+            u = jones.retarder(np.radians(x[1] + h.fast_axis_offset_deg), rh) @ jones.retarder(
+                np.radians(x[0] + q.fast_axis_offset_deg), rq
+            )
+            return complex(u[1 - idx] @ ket)
+        loss = _loss_of(loss_amp)
+
+        x = np.array([np.degrees(q_opt) - q.fast_axis_offset_deg, np.degrees(h_opt) - h.fast_axis_offset_deg])
+        p = 1.0 - loss(x)
+        if p < base.probability - 1e-12:
+            x2, p2 = _polish(loss_amp, x)
+            if p2 > p:
+                x, p = x2, p2
+        if p < base.probability - 1e-9:
+            continue
+        cand = PolarizationSetting(_wrap180(float(x[0])), _wrap180(float(x[1])), p)
+        if all(_angle_distance(cand.quarter_wave_plate_deg, o.quarter_wave_plate_deg) > 1e-3
+               or _angle_distance(cand.half_wave_plate_deg, o.half_wave_plate_deg) > 1e-3 for o in out):
+            out.append(cand)
+    return out
+
+
+def _angle_distance(a: float | None, b: float | None) -> float:
+    if a is None or b is None:
+        return 0.0
+    d = abs(a - b) % 180.0
+    return min(d, 180.0 - d)
 
 
 def spatial_setting(target: ArrayLike, port: str, model: AnalyzerModel) -> SpatialSetting:
@@ -177,15 +242,16 @@ def spatial_setting(target: ArrayLike, port: str, model: AnalyzerModel) -> Spati
     if conv.rotatable:
         c_deg, a_deg, p = _two_element_closed_form(ket, idx, rc, np.pi, conv.axis_offset_deg, rot_offset)
         # The rotator is a reflection, not a retarder: check the closed form with the real matrix.
-        def loss(x: NDArray[np.float64]) -> float:
+        def loss_amp(x: NDArray[np.float64]) -> complex:
             u = jones.image_rotator(np.radians(x[1] + rot_offset)) @ jones.mode_converter(
                 np.radians(x[0] + conv.axis_offset_deg), rc
             )
-            return 1.0 - _projection(u, ket, idx)
+            return complex(u[1 - idx] @ ket)
+        loss = _loss_of(loss_amp)
 
         p = 1.0 - loss(np.array([c_deg, a_deg]))
         if p < 1.0 - 1e-12:
-            x, p2 = _polish(loss, np.array([c_deg, a_deg]))
+            x, p2 = _polish(loss_amp, np.array([c_deg, a_deg]))
             if p2 > p:
                 c_deg, a_deg, p = float(x[0]), float(x[1]), p2
         return _checked(SpatialSetting(True, _wrap180(c_deg), _wrap180(a_deg), p), "spatial", ket)
@@ -221,6 +287,7 @@ __all__ = [
     "PolarizationSetting",
     "SpatialSetting",
     "polarization_setting",
+    "polarization_setting_variants",
     "spatial_setting",
     "PlateModel",
     "ConverterModel",
