@@ -80,7 +80,8 @@ class SimulatedTable:
         self.model = analyzer_model(bench, truth=True)
         self.ports = port_models(bench, truth=True)
         self.port_index = {p.name: j for j, p in enumerate(self.ports)}
-        fraction = sim.table.reference_fraction
+        # The pick-off takes its fraction of the beam only if the bench has a reference meter.
+        fraction = sim.table.reference_fraction if bench.roles.reference else 0.0
         self.reference_fraction = fraction if fraction is not None else 0.01
         self.devices: dict[str, Device] = {}
         self.stage_of: dict[int, SimRotationStage] = {}

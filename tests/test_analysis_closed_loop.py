@@ -138,3 +138,23 @@ def test_counting_detectors_use_the_poisson_model(tmp_path: Path) -> None:
     assert doc["estimator"]["model"] == "poisson"
     f = qutip.fidelity(qutip.Qobj(est.rho), qutip.Qobj(rho)) ** 2  # qutip root fidelity, squared
     assert f > 0.98
+
+
+def test_a_run_stopped_part_way_is_analysed_from_what_it_recorded(tmp_path: Path, capsys) -> None:
+    # A stage sticks for good between the first and second passes of the overnight series: exit 3, then the
+    # night's data so far are analysed as they are (the journal is read, status and counts shown).
+    bench = tmp_path / "sticky.yaml"
+    bench.write_text(
+        "bench: sticky\nextends: sim\nsimulation:\n  faults:\n    - {device: hwp_stage, kind: stuck, at_s: 1500}\n",
+        encoding="utf-8",
+    )
+    out = tmp_path / "night.h5"
+    assert main(["run", "overnight-joint-36", "--bench", str(bench), "--out", str(out), "--quiet"]) == 3
+    capsys.readouterr()
+    assert main(["analyze", str(out), "--json", "--bootstrap", "30"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["run"]["status"] == "fault"
+    assert 0 < doc["run"]["steps_done"] < doc["run"]["steps_total"]
+    truth = load_bench("sim").simulation.source.density()
+    rho = np.array(doc["density_matrix"]["real"]) + 1j * np.array(doc["density_matrix"]["imag"])
+    assert qutip.fidelity(qutip.Qobj(rho), qutip.Qobj(truth)) ** 2 > 0.999  # qutip root fidelity, squared
