@@ -208,13 +208,15 @@ def compile_requests(
     order_idx, choice = order_settings(variants, table, order, seed, reference_every)
     settings = np.array([variants[k][choice[k]] for k in range(len(variants))])
     key_labels = [variant_labels[k][choice[k]] for k in range(len(variants))]
-    ref_settings, ref_labels = variants[0][0], variant_labels[0][0]
+    # Drift references are taken at the first setting measured (for as-written: the first point).
+    ref_index = order_idx[0]
+    ref_settings, ref_labels = settings[ref_index], key_labels[ref_index]
     return _expand_steps(
         table, protocol_name, settings, key_labels, logical, order_idx, analyzes,
         dwell_s, repeats, background_every, background_at_start, background_at_end,
         background_dwell_s if background_dwell_s is not None else dwell_s,
         reference_every, reference_dwell_s if reference_dwell_s is not None else dwell_s,
-        passes, pass_interval_s, order, ref_settings, ref_labels,
+        passes, pass_interval_s, order, ref_settings, ref_labels, logical[ref_index],
     )
 
 
@@ -314,7 +316,7 @@ def _setting_label(port_labels: tuple[str, ...]) -> str:
 def _expand_steps(
     table, protocol_name, settings, key_labels, logical, order_idx, analyzes, dwell_s, repeats,
     bg_every, bg_start, bg_end, bg_dwell, ref_every, ref_dwell, passes, pass_interval_s, order,
-    ref_settings, ref_labels,
+    ref_settings, ref_labels, ref_point,
 ) -> Plan:
     steps: list[Step] = []
     violations: list[str] = []
@@ -345,18 +347,18 @@ def _expand_steps(
         if bg_start and p == 0:
             add("background", p, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
         if ref_every > 0:
-            add("reference", p, logical[0], 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
+            add("reference", p, ref_point, 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
         for count, k in enumerate(sequence, start=1):
             s = resolve(settings[k])
             label = _setting_label(key_labels[k])
             for r in range(repeats):
                 add("measure", p, logical[k], r, s, dwell_s, label, key_labels[k])
             if ref_every > 0 and count % ref_every == 0 and count < len(sequence):
-                add("reference", p, logical[0], 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
+                add("reference", p, ref_point, 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
             if bg_every > 0 and count % bg_every == 0 and count < len(sequence):
                 add("background", p, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
         if ref_every > 0:
-            add("reference", p, logical[0], 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
+            add("reference", p, ref_point, 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
     if bg_end:
         add("background", passes - 1, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
     return Plan(

@@ -46,54 +46,46 @@ def transition_time_s(a: np.ndarray, b: np.ndarray, table: "TableModel") -> floa
     return t
 
 
-def _path_cost(order: list[int], cost: np.ndarray, start: np.ndarray, ref: int | None, ref_every: int) -> float:
-    """Transition time along ``order`` from the origin, with the visits to the reference setting
-    ``ref`` that the compiler inserts (at the start, after every ``ref_every`` settings, at the end)."""
-    if ref is None or ref_every <= 0:
-        total = start[order[0]]
-        for i, j in zip(order[:-1], order[1:]):
-            total += cost[i, j]
-        return float(total)
-    total = start[ref] + cost[ref, order[0]]
-    for k, (i, j) in enumerate(zip(order[:-1], order[1:]), start=1):
-        total += cost[i, ref] + cost[ref, j] if k % ref_every == 0 else cost[i, j]
-    return float(total + cost[order[-1], ref])
-
-
 def _best_variants(
     order: list[int], block: list[list[np.ndarray]], start: list[np.ndarray], ref_every: int
 ) -> tuple[float, list[int]]:
     """For a fixed order, the variant of every setting that minimises the total time (Viterbi).
 
     ``block[i][j]`` (V_i, V_j) holds the transition times between the variants of settings i and
-    j, ``start[i]`` (V_i,) those from the origin; the reference is variant 0 of setting 0.
+    j, ``start[i]`` (V_i,) those from the origin. With references, the reference setting is the
+    first setting measured (in the variant chosen for it); the compiler returns to it at the
+    start, after every ``ref_every`` settings and at the end.
     """
-    use_ref = ref_every > 0
     first = order[0]
-    if use_ref:
-        t = start[0][0] + block[0][first][0, :]
-    else:
+    candidates = range(len(start[first])) if ref_every > 0 else [None]
+    best_total, best_path = math.inf, [0] * len(order)
+    for v0 in candidates:
         t = start[first].copy()
-    back: list[np.ndarray] = []
-    for k in range(1, len(order)):
-        i, j = order[k - 1], order[k]
-        if use_ref and k % ref_every == 0:
-            step = block[i][0][:, :1] + block[0][j][:1, :]
-        else:
-            step = block[i][j]
-        total = t[:, None] + step
-        arg = np.argmin(total, axis=0)
-        back.append(arg)
-        t = total[arg, np.arange(total.shape[1])]
-    if use_ref:
-        t = t + block[order[-1]][0][:, 0]
-    w = int(np.argmin(t))
-    best = float(t[w])
-    path = [w]
-    for arg in reversed(back):
-        w = int(arg[w])
-        path.append(w)
-    return best, path[::-1]
+        if v0 is not None:
+            t = np.full_like(t, math.inf)
+            t[v0] = start[first][v0]
+        back: list[np.ndarray] = []
+        for k in range(1, len(order)):
+            i, j = order[k - 1], order[k]
+            if v0 is not None and k % ref_every == 0:
+                step = block[i][first][:, v0 : v0 + 1] + block[first][j][v0 : v0 + 1, :]
+            else:
+                step = block[i][j]
+            total = t[:, None] + step
+            arg = np.argmin(total, axis=0)
+            back.append(arg)
+            t = total[arg, np.arange(total.shape[1])]
+        if v0 is not None:
+            t = t + block[order[-1]][first][:, v0]
+        end = int(np.argmin(t))
+        if float(t[end]) < best_total:
+            best_total = float(t[end])
+            path, w = [end], end
+            for arg in reversed(back):
+                w = int(arg[w])
+                path.append(w)
+            best_path = path[::-1]
+    return best_total, best_path
 
 
 def least_motion_order(
@@ -102,8 +94,8 @@ def least_motion_order(
     """An order of the settings, and a variant of each, with a short total transition time.
 
     ``variants[k]`` (V_k, 5) are interchangeable settings measuring the same projectors. With
-    ``ref_every`` > 0 the cost includes the returns to the reference setting (variant 0 of setting
-    0) that the compiler inserts. Nearest-neighbour construction, then 2-opt and or-opt moves, each
+    ``ref_every`` > 0 the cost includes the returns to the reference setting (the first setting
+    measured) that the compiler inserts. Nearest-neighbour construction, then 2-opt and or-opt moves, each
     order scored with its best variants.
     """
     n = len(variants)
