@@ -32,6 +32,8 @@ from sequencer.ordering import PERIOD_DEG, order_settings
 from sequencer.plan import Plan, Step
 
 STAGE_ELEMENTS = (QWP, HWP, CONVERTER_ANGLE, ROTATOR)
+# A run file holds its whole plan; beyond this a series belongs in several runs.
+MAX_STEPS = 200_000
 
 
 @dataclass(frozen=True)
@@ -318,6 +320,16 @@ def _expand_steps(
     bg_every, bg_start, bg_end, bg_dwell, ref_every, ref_dwell, passes, pass_interval_s, order,
     ref_settings, ref_labels, ref_point,
 ) -> Plan:
+    per_pass = len(order_idx) * repeats
+    if ref_every > 0:
+        per_pass += 2 + len(order_idx) // ref_every
+    if bg_every > 0:
+        per_pass += len(order_idx) // bg_every
+    if passes * per_pass > MAX_STEPS:
+        raise ProtocolError(
+            f"the plan would have about {passes * per_pass} steps, more than {MAX_STEPS}; lower repeats "
+            "or sweep.passes, or split the series into several runs"
+        )
     steps: list[Step] = []
     violations: list[str] = []
     position = _park(table)
