@@ -32,6 +32,8 @@ T = TypeVar("T")
 
 # A stage read-back further than this from its target (deg) means the axis did not get there.
 POSITION_TOLERANCE_DEG = 0.05
+# Waits between sweep passes longer than this (s) are spent with the shutter closed.
+SHUTTER_CLOSED_WAIT_S = 5.0
 
 
 class StopRequested(BaseException):
@@ -506,6 +508,10 @@ class Runner:
         due = self.run_start + step.pass_index * self.plan.pass_interval_s
         wait = due - self.now()
         if wait > 0:
+            if wait > SHUTTER_CLOSED_WAIT_S:
+                # Nobody needs the beam until the next pass: keep it blocked meanwhile.
+                self._set_shutter(False)
+                self.log("shutter closed while waiting for the next pass")
             self.log(f"pass {step.pass_index + 1}: waiting {wait:.0f} s for its start time")
             self._tell(self.monitor.info, f"waiting {wait:.0f} s for pass {step.pass_index + 1}")
             self.sleep(wait)
