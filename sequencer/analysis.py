@@ -31,7 +31,6 @@ from sequencer.estimate import (
 )
 from sequencer.estimate import merit
 from sequencer.optics.states import BASIS_LABELS, JOINT_KETS, partial_trace
-from sequencer.optics.stokes import stokes_from_density
 from sequencer.plan import Plan
 from sequencer.storage.records import RunData
 

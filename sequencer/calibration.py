@@ -48,7 +48,7 @@ from scipy.optimize import least_squares, minimize
 
 from sequencer.errors import InputError
 from sequencer.optics.analyzer import (
-    CONVERTER, CONVERTER_IN, ELEMENT_NAMES, AnalyzerModel, ConverterModel, PlateModel, PortModel,
+    CONVERTER, ELEMENT_NAMES, AnalyzerModel, PlateModel, PortModel,
     RotatorModel, port_operators, probabilities,
 )
 

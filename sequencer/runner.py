@@ -10,7 +10,6 @@ reading goes to the store (durable on return) the moment it is taken.
 from __future__ import annotations
 
 import math
-import threading
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Callable, Protocol, Sequence, TypeVar

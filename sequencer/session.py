@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import datetime as dt
 import math
-import os
 import signal
 import sys
 import time
@@ -20,7 +19,6 @@ from typing import Callable, Iterator
 import numpy as np
 from rich.console import Console
 
-from drivers.interfaces import PhotonCounter, PowerMeter
 from sequencer import __version__
 from sequencer.bench import Bench, load_bench, parse_bench
 from sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, UsageError
@@ -107,8 +105,7 @@ def make_header(protocol: Protocol, bench: Bench, plan: Plan, units: str, protoc
     target = None
     if protocol.target_state is not None:
         t = np.array(protocol.target_state, dtype=np.complex128)
-        if t.shape == (4, 4) or len(protocol.analyzes) == 1:
-            target = t if t.shape[0] == 4 else None
+        target = t if t.shape == (4, 4) else None  # 2x2 targets go in extra
     extra = {
         "protocol_spec": protocol_spec,
         "bench_spec": bench_spec,

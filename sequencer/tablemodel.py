@@ -7,11 +7,10 @@ benches, the truth of the simulated table (``simulation.table``), used only by t
 
 from __future__ import annotations
 
-import math
 
 from sequencer.bench import Bench
 from sequencer.compiler import Request, TableModel, compile_requests
-from sequencer.errors import BenchError, InputError
+from sequencer.errors import InputError
 from sequencer.kinematics import StageKinematics
 from sequencer.optics.analyzer import (
     ELEMENT_NAMES, AnalyzerModel, ConverterModel, PlateModel, PortModel, RotatorModel,

@@ -19,7 +19,7 @@ import numpy as np
 from drivers.interfaces import Device
 from sequencer.bench import Bench
 from sequencer.optics.analyzer import (
-    CONVERTER, CONVERTER_ANGLE, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, HWP, QWP, ROTATOR,
+    CONVERTER, CONVERTER_ANGLE, CONVERTER_IN, CONVERTER_OUT, HWP, QWP, ROTATOR,
     park_settings, port_operators, probabilities,
 )
 from sequencer.tablemodel import analyzer_model, port_models

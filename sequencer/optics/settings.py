@@ -130,7 +130,6 @@ def polarization_setting(target: ArrayLike, port: str, model: AnalyzerModel) -> 
                     np.radians(x[0] + q.fast_axis_offset_deg), rq
                 )
                 return complex(u[1 - idx] @ ket)
-            loss = _loss_of(loss_amp)
 
             x, p2 = _polish(loss_amp, np.array([q_deg, h_deg]))
             if p2 > p:
