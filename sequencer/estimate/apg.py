@@ -1,4 +1,4 @@
-"""Accelerated projected-gradient solvers, vectorised over a batch, for the Poisson and Gaussian tomography likelihoods."""
+"""Accelerated projected-gradient solvers, vectorised over a batch, for the Poisson and Gaussian tomography likelihoods, and the Gaussian certificate."""
 
 from __future__ import annotations
 
@@ -15,6 +15,8 @@ _STEP_GROWTH = 1.1
 _BACKTRACK_LIMIT = 60
 _SERIES_BELOW = 1e-4
 _RESYNC_EVERY = 50
+# eigenvalues of X below this fraction of its largest count as its null space in the Gaussian certificate
+_NULL_BELOW = 1e-9
 
 
 @dataclass(frozen=True)
@@ -47,7 +49,8 @@ def project_positive_coordinates(x: np.ndarray) -> np.ndarray:
     return _eig_to_coordinates(v, np.maximum(w, 0.0))
 
 
-def _rowdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+def rowdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Dot product of matching rows of a and b (batch, k) -> (batch,)."""
     return np.einsum("ij,ij->i", a, b)
 
 
@@ -66,8 +69,12 @@ def _excess_log(u: np.ndarray) -> np.ndarray:
     return out
 
 
-class _Batch:
-    """Working arrays of the data sets still iterating; finished rows are written out and dropped."""
+class WorkingBatch:
+    """Working arrays of the data sets still iterating; finished rows are written out and dropped.
+
+    Every array given at construction (or set later) has the batch on its first axis, so that the
+    solvers run on ever smaller batches as data sets finish.
+    """
 
     def __init__(self, size: int, dim: int, **arrays: np.ndarray) -> None:
         self.index = np.arange(size)
@@ -87,6 +94,7 @@ class _Batch:
         return int(self.index.size)
 
     def retire(self, finished: np.ndarray, x: np.ndarray, gap: np.ndarray, iterations: int) -> None:
+        """Write out the rows `finished` (mask over the current rows) with their x and gap, and drop them."""
         if not np.any(finished):
             return
         rows = self.index[finished]
@@ -96,6 +104,7 @@ class _Batch:
         self.arrays = {k: a[keep] for k, a in self.arrays.items()}
 
     def solution(self) -> Solution:
+        """Everything written out, in the original order of the data sets."""
         return Solution(x=self.out_x, iterations=self.out_iterations, gap=self.out_gap)
 
 
@@ -166,8 +175,8 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
     d = int(round(np.sqrt(dim)))
     identity = to_vector(np.eye(d))
     p0 = matmul_rows(x0, design.T)
-    work = _Batch(batch, dim, f=f, used=f > 0, n_tot=n_tot, x=x0.copy(), p=p0, y=x0.copy(), py=p0.copy(),
-                  theta=np.ones(batch), step=np.ones(batch))
+    work = WorkingBatch(batch, dim, f=f, used=f > 0, n_tot=n_tot, x=x0.copy(), p=p0, y=x0.copy(), py=p0.copy(),
+                        theta=np.ones(batch), step=np.ones(batch))
     gap = _poisson_gap(x0, f, f > 0, n_tot, design, identity)
     work.retire(gap <= tol, x0, gap, 0)
     iteration = 0
@@ -186,7 +195,7 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
         z, basis = _project_density_with_basis(y + t[:, None] * grad)
         delta = z - y
         dp = matmul_rows(delta, design.T)
-        ok = _poisson_bregman(inverse_py, dp, fw) <= _rowdot(delta, delta) / (2.0 * t)
+        ok = _poisson_bregman(inverse_py, dp, fw) <= rowdot(delta, delta) / (2.0 * t)
         pending = np.flatnonzero(~ok)
         for _trial in range(_BACKTRACK_LIMIT):
             if pending.size == 0:
@@ -195,7 +204,7 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
             cand, cand_basis = _project_density_with_basis(y[pending] + t[pending, None] * grad[pending])
             dc = cand - y[pending]
             dpc = matmul_rows(dc, design.T)
-            good = _poisson_bregman(inverse_py[pending], dpc, fw[pending]) <= _rowdot(dc, dc) / (2.0 * t[pending])
+            good = _poisson_bregman(inverse_py[pending], dpc, fw[pending]) <= rowdot(dc, dc) / (2.0 * t[pending])
             z[pending[good]], dp[pending[good]], basis[pending[good]] = cand[good], dpc[good], cand_basis[good]
             pending = pending[~good]
         if pending.size:
@@ -205,7 +214,7 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
         pz = matmul_rows(z, design.T) if iteration % _RESYNC_EVERY == 0 else py + dp
         # gradient restart (O'Donoghue, Candes, Found. Comput. Math. 15, 715 (2015)): drop the momentum
         # once the step points against the gradient; it needs no objective values, which rounding blurs
-        restart = _rowdot(grad, z - x) < 0
+        restart = rowdot(grad, z - x) < 0
         theta = np.where(restart, 1.0, work["theta"])
         theta_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * theta**2))
         beta = np.where(restart, 0.0, (theta - 1.0) / theta_next)[:, None]
@@ -222,40 +231,118 @@ def solve_poisson(design: np.ndarray, f: np.ndarray, n_tot: np.ndarray, x0: np.n
     return work.solution()
 
 
-def solve_gaussian(hess: np.ndarray, hess_inv: np.ndarray, c0: np.ndarray, x0: np.ndarray, tol: float,
-                   max_iterations: int) -> Solution:
-    """Minimise q(x) = x.H x - 2 c0.x + const over positive semidefinite X, for each row of c0.
+@dataclass(frozen=True)
+class GaussianProblem:
+    """Weighted least squares q(x) = sum_i w_i (v_i - (A x)_i)^2 over positive semidefinite X (coordinates x).
 
-    The certified gap (log-likelihood units, q / 2) is half the duality gap (x - u).H(x - u) + tr(X Z)
-    with Z the positive part of the gradient at x and u = H^-1 (c0 + z/2); see `mle_gaussian_batch`.
-    Accelerated projected gradient with constant step 1 / L, L = 2 lambda_max(H).
+    Attributes
+    ----------
+    design : ndarray (n, m). A, the coordinates of the measurement operators (m = d*d).
+    weights : ndarray (n,). w_i = 1 / sigma_i^2, in the units of the readings.
+    hess : ndarray (m, m). H = A^T W A: q(x) = x.H x - 2 c.x + v.W v with c = A^T W v.
+    hess_inv : ndarray (m, m). H^-1 (H is positive definite for an informationally complete set).
+
+    One problem serves a batch of reading vectors (rows of `values` in the methods).
+    """
+
+    design: np.ndarray
+    weights: np.ndarray
+    hess: np.ndarray
+    hess_inv: np.ndarray
+
+    @property
+    def dim(self) -> int:
+        """d, the size of the matrices."""
+        return int(round(np.sqrt(self.design.shape[1])))
+
+    def residuals(self, x: np.ndarray, values: np.ndarray) -> np.ndarray:
+        """v_i - tr(X E_i), (batch, n)."""
+        return values - matmul_rows(x, self.design.T)
+
+    def chi_squared(self, x: np.ndarray, values: np.ndarray) -> np.ndarray:
+        """q(x) per row, from the residuals (the expanded quadratic form cancels at high signal-to-noise)."""
+        r = self.residuals(x, values)
+        return np.sum(self.weights * r * r, axis=1)
+
+    def gradient(self, x: np.ndarray, values: np.ndarray) -> np.ndarray:
+        """Coordinates of the gradient G = 2 (H x - c) = -2 sum_i w_i r_i E_i, from the residuals r."""
+        return -2.0 * matmul_rows(self.weights * self.residuals(x, values), self.design)
+
+    def certificate(self, x: np.ndarray, grad: np.ndarray,
+                    eigen: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
+        """Proven bound on (q(x) - min q) / 2, the log-likelihood gap, at positive semidefinite X.
+
+        Lagrange duality: for any Z >= 0, g(Z) = min_x [q(x) - tr(Z X)] <= min_{X >= 0} q, since
+        tr(Z X) >= 0 there. The minimiser is u = H^-1 (c + z/2), and q(x) - g(Z) = (x - u).H(x - u)
+        + tr(X Z) = tr(X Z) + (G - Z).H^-1.(G - Z) / 4 with G the gradient at x (Boyd, Vandenberghe,
+        Convex Optimization (2004), ch. 5). Z = G_+, the positive part of G, is exact at the optimum
+        by the KKT conditions. Two families of multipliers are tried and the smallest bound kept,
+        each a * Z with a in [0, 1] minimising the (quadratic) bound: Z = G_+, and Z the positive
+        part of G compressed to the eigenvectors where X is below 1e-9 of its largest eigenvalue
+        (the rounding in G along the range of X then stays out of tr(X Z)). a = 1 with Z = G_+ is
+        the plain choice; every one is a valid bound, so the smallest is too. G comes from the
+        residuals, so no term is a difference of large numbers.
+
+        Parameters
+        ----------
+        x, grad : ndarray (batch, m). The point and the gradient of q there (`gradient`).
+        eigen : optional (eigenvalues (batch, d), eigenvectors (batch, d, d)) of X, if known.
+        """
+        lam, vec = eigen if eigen is not None else np.linalg.eigh(to_matrix(x))
+        g_matrix = to_matrix(grad)
+        w, v = np.linalg.eigh(g_matrix)
+        plain = _eig_to_coordinates(v, np.maximum(w, 0.0))
+        null = (lam <= _NULL_BELOW * lam[:, -1:]).astype(float)
+        compressed = (vec * null[:, None, :]) @ np.conj(np.swapaxes(vec, -1, -2))
+        wc, vc = np.linalg.eigh(compressed @ g_matrix @ compressed)
+        face = _eig_to_coordinates(vc, np.maximum(wc, 0.0))
+        h_grad = matmul_rows(grad, self.hess_inv)
+        best = 0.25 * rowdot(grad, h_grad)
+        for z in (plain, face):
+            h_z = matmul_rows(z, self.hess_inv)
+            square = rowdot(z, h_z)
+            safe = np.where(square > 0, square, 1.0)
+            a = np.clip((rowdot(z, h_grad) - 2.0 * rowdot(x, z)) / safe, 0.0, 1.0) * (square > 0)
+            # the residual G - a Z directly: expanding its square would cancel near the optimum
+            rest = grad - a[:, None] * z
+            bound = a * rowdot(x, z) + 0.25 * rowdot(matmul_rows(rest, self.hess_inv), rest)
+            best = np.minimum(best, bound)
+        return 0.5 * best
+
+
+def solve_gaussian(problem: GaussianProblem, values: np.ndarray, x0: np.ndarray, tol: float,
+                   max_iterations: int) -> Solution:
+    """Minimise q(x) over positive semidefinite X for each row of `values`, from positive semidefinite x0.
+
+    Accelerated projected gradient with constant step 1 / L, L = 2 lambda_max(H), and gradient
+    restart (O'Donoghue, Candes, Found. Comput. Math. 15, 715 (2015)); stops once the certified gap
+    `GaussianProblem.certificate` (log-likelihood units) is <= tol. Its rate depends on the
+    conditioning of H, so it serves as the finisher when the interior-point solver of
+    `sequencer.estimate.barrier` stalls.
     """
     batch, dim = x0.shape
-    step = 1.0 / (2.0 * float(np.linalg.eigvalsh(hess)[-1]))
-
-    def certificate(x: np.ndarray, c: np.ndarray) -> np.ndarray:
-        z = project_positive_coordinates(2.0 * (matmul_rows(x, hess) - c))
-        diff = x - matmul_rows(c + 0.5 * z, hess_inv)
-        return 0.5 * (_rowdot(matmul_rows(diff, hess), diff) + _rowdot(x, z))
-
-    work = _Batch(batch, dim, c=c0, x=x0.copy(), y=x0.copy(), theta=np.ones(batch))
-    gap = certificate(x0, c0)
+    step = 1.0 / (2.0 * float(np.linalg.eigvalsh(problem.hess)[-1]))
+    c0 = matmul_rows(values * problem.weights, problem.design)
+    work = WorkingBatch(batch, dim, v=values, c=c0, x=x0.copy(), y=x0.copy(), theta=np.ones(batch))
+    gap = problem.certificate(x0, problem.gradient(x0, values))
     work.retire(gap <= tol, x0, gap, 0)
     iteration = 0
     while work.size and iteration < max_iterations:
         iteration += 1
         c, x, y = work["c"], work["x"], work["y"]
-        grad = 2.0 * (matmul_rows(y, hess) - c)
+        grad = 2.0 * (matmul_rows(y, problem.hess) - c)
         z = project_positive_coordinates(y - step * grad)
-        restart = _rowdot(grad, z - x) > 0
+        restart = rowdot(grad, z - x) > 0
         theta = np.where(restart, 1.0, work["theta"])
         theta_next = 0.5 * (1.0 + np.sqrt(1.0 + 4.0 * theta**2))
         beta = np.where(restart, 0.0, (theta - 1.0) / theta_next)[:, None]
         work["y"] = z + beta * (z - x)
         work["x"] = z
         work["theta"] = np.where(restart, 1.0, theta_next)
-        gap = certificate(z, c)
+        gap = problem.certificate(z, problem.gradient(z, work["v"]))
         work.retire(gap <= tol, z, gap, iteration)
     if work.size:
-        work.retire(np.ones(work.size, dtype=bool), work["x"], certificate(work["x"], work["c"]), iteration)
+        x = work["x"]
+        work.retire(np.ones(work.size, dtype=bool), x, problem.certificate(x, problem.gradient(x, work["v"])),
+                    iteration)
     return work.solution()

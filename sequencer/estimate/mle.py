@@ -1,4 +1,4 @@
-"""Maximum-likelihood state estimates (Poisson counts, Gaussian power readings) by accelerated projected gradient with certified stopping."""
+"""Maximum-likelihood state estimates (Poisson counts, Gaussian power readings) with certified stopping."""
 
 from __future__ import annotations
 
@@ -7,11 +7,13 @@ from dataclasses import dataclass
 import numpy as np
 
 from sequencer.estimate.apg import (
+    GaussianProblem,
     project_density_coordinates,
     project_positive_coordinates,
     solve_gaussian,
     solve_poisson,
 )
+from sequencer.estimate.barrier import solve_gaussian_barrier
 from sequencer.estimate.blas import matmul_rows
 from sequencer.estimate.errors import EstimationError
 from sequencer.estimate.hermitian import check_operators, check_values, to_matrix, to_vector
@@ -33,7 +35,8 @@ class MleResult:
         (counts, or W).
     log_likelihood : float. Poisson: sum_i n_i log tr(T E_i) - tr(T G) (the n_i! term dropped).
         Gaussian: -chi^2 / 2 = -sum_i (v_i - tr(T E_i))^2 / (2 sigma_i^2) (constants dropped).
-    iterations : int. Gradient steps taken.
+    iterations : int. Solver steps taken: gradient steps (Poisson); interior-point Newton steps,
+        then any projected-gradient steps of the finisher (Gaussian).
     certified_gap : float. Proven upper bound on (maximum log-likelihood - log_likelihood).
     converged : bool. certified_gap <= the requested tolerance.
     """
@@ -186,21 +189,29 @@ def mle_gaussian_batch(
 ) -> MleBatchResult:
     """Gaussian maximum likelihood (weighted least squares over T >= 0), for many reading vectors at once.
 
-    Minimises chi^2(T) = sum_i (v_i - tr(T E_i))^2 / sigma_i^2 over positive semidefinite T by
-    accelerated projected gradient with restart (Shang, Zhang, Ng, PRA 95, 062336 (2017)) from
-    the positive part of the weighted linear-inversion estimate; rho = T / tr T.
+    Minimises chi^2(T) = sum_i (v_i - tr(T E_i))^2 / sigma_i^2 over positive semidefinite T;
+    rho = T / tr T. Solver: an interior-point method with Newton polishing of a low-rank factor
+    (`sequencer.estimate.barrier.solve_gaussian_barrier`), started from the positive part of the
+    weighted linear-inversion estimate. Its step count does not grow with the spread of the weights
+    1 / sigma_i^2, which on readings of a near-pure state span decades and slow a gradient method
+    down to thousands of steps. A data set on which it stalls is finished by accelerated projected
+    gradient (`sequencer.estimate.apg.solve_gaussian`) from its best point.
 
     Stopping certificate (Lagrange duality): write chi^2 = x.H x - 2 c.x + b.b in Hermitian
     coordinates x of T. For any Z >= 0, g(Z) = min_x [chi^2(x) - tr(Z X)] <= min_{X >= 0} chi^2 = chi^2*
     since tr(Z X) >= 0. The minimiser is u = H^-1 (c + z/2), and chi^2(x) - g(Z) = (x - u).H(x - u)
-    + tr(X Z) >= chi^2(x) - chi^2*. With Z the positive part of the gradient at the iterate (exact at
-    the optimum by the KKT conditions), half of this bound is the certified log-likelihood gap.
+    + tr(X Z) >= chi^2(x) - chi^2*. With Z the positive part of the gradient at the returned point
+    (exact at the optimum by the KKT conditions), half of this bound is the certified log-likelihood
+    gap; `sequencer.estimate.apg.GaussianProblem.certificate` also tries scaled and compressed
+    variants of that Z and reports the smallest of these bounds.
 
     Parameters
     ----------
     operators : ndarray (n, d, d). Measurement operators E_i as measured.
     values : ndarray (batch, n) or (n,). Readings (W, or any unit), background-subtracted.
     sigma : ndarray (n,). Spread of each reading, same units (shared by the batch).
+    tol : float. Required certified log-likelihood gap.
+    max_iterations : int. Solver steps at most per data set.
     """
     e = check_operators(operators)
     n, d = e.shape[0], e.shape[1]
@@ -225,14 +236,20 @@ def mle_gaussian_batch(
             f"the {n} measurement operators do not determine a {d}x{d} state (not informationally complete); "
             "the Gaussian estimator needs a complete set of settings"
         )
-    hess_inv = (hv / hw) @ hv.T
+    problem = GaussianProblem(design=design, weights=ws, hess=hess, hess_inv=(hv / hw) @ hv.T)
     c0 = matmul_rows(vs * ws[None, :], design)
-    start = project_positive_coordinates(matmul_rows(c0, hess_inv))
-    sol = solve_gaussian(hess, hess_inv, c0, start, tol, max_iterations)
-    x, iterations, gap = sol.x, sol.iterations, sol.gap
+    start = project_positive_coordinates(matmul_rows(c0, problem.hess_inv))
+    sol = solve_gaussian_barrier(problem, vs, start, tol, max_iterations)
+    x, iterations, gap = sol.x.copy(), sol.iterations.copy(), sol.gap.copy()
+    stalled = np.flatnonzero((gap > tol) & (iterations < max_iterations))
+    if stalled.size:
+        budget = max_iterations - int(iterations[stalled].max())
+        finish = solve_gaussian(problem, vs[stalled], x[stalled], tol, budget)
+        better = finish.gap < gap[stalled]
+        x[stalled[better]], gap[stalled[better]] = finish.x[better], finish.gap[better]
+        iterations[stalled] += finish.iterations
     # chi^2 from the residuals themselves: the expanded quadratic form cancels badly at high signal-to-noise
-    residuals = vs - matmul_rows(x, design.T)
-    q = np.sum(ws[None, :] * residuals**2, axis=1)
+    q = problem.chi_squared(x, vs)
     t = to_matrix(x) * scale
     intensity = np.real(np.trace(t, axis1=-2, axis2=-1))
     if np.any(intensity <= 0):
