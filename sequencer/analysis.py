@@ -339,7 +339,7 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
         rho=fit.rho, rho_std=rho_std, basis=prep.basis, analyzes=prep.analyzes, figures=figs, stokes=stokes,
         closest_mode=closest,
         estimator={
-            "method": "maximum likelihood (accelerated projected gradient)", "model": prep.model,
+            "method": "maximum likelihood, certified", "model": prep.model,
             "log_likelihood": fit.log_likelihood, "certified_gap": fit.certified_gap,
             "iterations": fit.iterations, "converged": bool(fit.converged), "intensity": fit.intensity,
             "bootstrap_resamples": boot.n_resamples, "bootstrap_converged": boot.n_converged,
