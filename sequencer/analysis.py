@@ -30,6 +30,7 @@ from sequencer.estimate import (
     MleResult, linear_inversion, mle_gaussian, mle_poisson, parametric_bootstrap,
 )
 from sequencer.estimate import merit
+from sequencer.optics.analyzer import complete_port_set
 from sequencer.optics.states import BASIS_LABELS, JOINT_KETS, partial_trace
 from sequencer.plan import Plan
 from sequencer.storage.records import RunData
@@ -136,9 +137,7 @@ def _drift_factor(run: RunData, ref_bg: np.ndarray, use_complete_sum: bool, gain
 
 def _complete_ports(run: RunData) -> bool:
     extra = run.header.extra
-    sorter, splitter = extra.get("port_sorter", []), extra.get("port_splitter", [])
-    pairs = set(zip(sorter, splitter))
-    return len(pairs) == len(set(sorter)) * len(set(splitter)) == len(sorter) > 1
+    return complete_port_set(list(zip(extra.get("port_sorter", []), extra.get("port_splitter", []))))
 
 
 def _spread_model(values: np.ndarray, groups: np.ndarray, bg_std: float) -> tuple[float, float, str]:

@@ -22,7 +22,7 @@ from sequencer.errors import BenchError, OpticsError, ProtocolError
 from sequencer.kinematics import StageKinematics, nearest_equivalent_deg
 from sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_ANGLE, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, HWP, QWP, ROTATOR,
-    AnalyzerModel, PortModel,
+    AnalyzerModel, PortModel, complete_port_set,
 )
 from sequencer.optics.settings import polarization_setting_variants, spatial_setting
 from sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, ORTHOGONAL_NAME
@@ -96,10 +96,7 @@ def _partner(label: str) -> str | None:
 def _outputs(ports: Sequence[PortModel]) -> tuple[list[str | None], list[str | None], bool]:
     pol = sorted({p.splitter_port for p in ports}, key=str)
     sp = sorted({p.sorter_port for p in ports}, key=str)
-    complete = len(ports) == len(pol) * len(sp) and {(p.splitter_port, p.sorter_port) for p in ports} == {
-        (a, b) for a in pol for b in sp
-    }
-    return pol, sp, complete
+    return pol, sp, complete_port_set([(p.sorter_port, p.splitter_port) for p in ports])
 
 
 def compile_requests(

@@ -21,7 +21,9 @@ from drivers.interfaces import Device, DiscreteActuator, PhotonCounter, PowerMet
 from sequencer.compiler import TableModel
 from sequencer.errors import RunFault
 from sequencer.kinematics import approach_path
-from sequencer.optics.analyzer import CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, port_operators
+from sequencer.optics.analyzer import (
+    CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, complete_port_set, port_operators,
+)
 from sequencer.plan import Plan, Step
 from sequencer.storage.records import (
     FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT, FLAG_RETRIED, Event, Reading,
@@ -517,9 +519,7 @@ class Runner:
 
 
 def _complete_product(table: TableModel) -> bool:
-    pol = {p.splitter_port for p in table.ports}
-    sp = {p.sorter_port for p in table.ports}
-    return len(table.ports) == len(pol) * len(sp) and len(table.ports) > 1
+    return complete_port_set([(p.sorter_port, p.splitter_port) for p in table.ports])
 
 
 def _reading_line(step: Step, reading: Reading, units: str) -> str:

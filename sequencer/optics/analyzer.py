@@ -89,6 +89,16 @@ class PortModel:
     gain: float = 1.0
 
 
+def complete_port_set(pairs: "list[tuple[str | None, str | None]]") -> bool:
+    """True when the (sorter output, splitter output) pairs of several detector ports are every
+    combination of the outputs they use: each setting then measures a complete set of projectors
+    whose sum is the total power."""
+    distinct = set(pairs)
+    sorter = {a for a, _ in distinct}
+    splitter = {b for _, b in distinct}
+    return len(pairs) > 1 and len(distinct) == len(pairs) == len(sorter) * len(splitter)
+
+
 def park_settings(n: int = 1) -> NDArray[np.float64]:
     """Element settings (n, 5) with every stage at 0 deg and the converter out."""
     s = np.zeros((n, len(ELEMENT_NAMES)))
