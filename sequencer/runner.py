@@ -17,6 +17,7 @@ from typing import Callable, Protocol, Sequence, TypeVar
 import numpy as np
 
 from drivers.errors import InstrumentError
+from drivers.retry import call_with_retry
 from drivers.interfaces import Device, DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
 from sequencer.compiler import TableModel
 from sequencer.errors import RunFault
@@ -193,29 +194,35 @@ class Runner:
 
     # ------------------------------------------------------------------ retries
     def _call(self, device: Device, what: str, fn: Callable[[], T]) -> T:
-        """Run ``fn`` with bounded back-off and a reconnect on transient faults."""
-        delay = self.policy.backoff_s
-        for attempt in range(1, self.policy.retry_attempts + 1):
-            try:
-                return fn()
-            except InstrumentError as exc:
-                if not exc.transient or attempt == self.policy.retry_attempts:
-                    raise RunFault(
-                        f"{exc} — gave up on {what} after {attempt} attempt(s); check the instrument, "
-                        "then `lightloom resume` the run"
-                    ) from exc
-                self._retried = True
-                self.log(f"transient fault on {what} (attempt {attempt}): {exc}; retrying in {delay:.2f} s")
-                self._tell(self.monitor.warning, f"retrying {what}: {exc}")
-                self.sleep(delay)
-                try:
-                    device.reconnect()
-                except InstrumentError as again:
-                    self.log(f"reconnect of {device.name} failed: {again}")
-                else:
-                    self._forget_state_of(device)
-                delay = min(self.policy.max_backoff_s, delay * 2)
-        raise AssertionError("unreachable")
+        """Run ``fn`` with bounded back-off (drivers.retry) and a reconnect before each new attempt."""
+        failed = 0
+        reconnect = False
+
+        def attempt() -> T:
+            nonlocal reconnect
+            if reconnect:
+                reconnect = False
+                device.reconnect()
+                self._forget_state_of(device)
+            return fn()
+
+        def on_retry(n: int, exc: InstrumentError, delay: float) -> None:
+            nonlocal failed, reconnect
+            failed, reconnect = n, True
+            self._retried = True
+            self.log(f"transient fault on {what} (attempt {n}): {exc}; retrying in {delay:.2f} s")
+            self._tell(self.monitor.warning, f"retrying {what}: {exc}")
+
+        try:
+            return call_with_retry(
+                attempt, self.policy.retry_attempts, self.policy.backoff_s, self.policy.max_backoff_s,
+                on_retry, self.sleep,
+            )
+        except InstrumentError as exc:
+            raise RunFault(
+                f"{exc} — gave up on {what} after {failed + 1} attempt(s); check the instrument, "
+                "then `lightloom resume` the run"
+            ) from exc
 
     def _forget_state_of(self, device: Device) -> None:
         """After a reconnect the instrument, or the whole rack, may have restarted: what we knew of
