@@ -6,7 +6,7 @@ import math
 import time
 from typing import Any, Callable
 
-from drivers.errors import (
+from lightloom.drivers.errors import (
     BadReply,
     DeviceFault,
     IdentityMismatch,
@@ -14,15 +14,15 @@ from drivers.errors import (
     LimitViolation,
     NotSupported,
 )
-from drivers.interfaces import (
+from lightloom.drivers.interfaces import (
     DiscreteActuator,
     PhotonCounter,
     PowerMeter,
     RotationStage,
     Shutter,
 )
-from drivers.options import DeviceConfig
-from drivers.replies import (
+from lightloom.drivers.options import DeviceConfig
+from lightloom.drivers.replies import (
     ReplyError,
     extract,
     parse_count,
@@ -32,7 +32,7 @@ from drivers.replies import (
     parse_list,
     parse_pair,
 )
-from drivers.transport import LineTransport
+from lightloom.drivers.transport import LineTransport
 
 _MAX_QUEUED_ERRORS = 32
 _REPLY_HINT = (

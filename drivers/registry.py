@@ -6,10 +6,10 @@ import difflib
 from importlib.metadata import entry_points
 from typing import Any, Callable, Mapping, Protocol
 
-from drivers.interfaces import Device
-from drivers.message_devices import MESSAGE_DEVICE_CLASSES
-from drivers.options import FAMILIES, KINDS, DriverConfigError, parse_config, split_driver
-from drivers.transport import LineTransport
+from lightloom.drivers.interfaces import Device
+from lightloom.drivers.message_devices import MESSAGE_DEVICE_CLASSES
+from lightloom.drivers.options import FAMILIES, KINDS, DriverConfigError, parse_config, split_driver
+from lightloom.drivers.transport import LineTransport
 
 ENTRY_POINT_GROUP = "lightloom.drivers"
 BUILTIN_DRIVERS = tuple(f"{family}.{kind}" for family in FAMILIES for kind in KINDS)
@@ -111,7 +111,7 @@ def create_device(
     if isinstance(driver, str) and driver.startswith("sim."):
         raise DriverConfigError(
             f"driver {driver!r} is a simulated device, built by the simulators package, not by "
-            f"drivers.create_device; known here: {', '.join(known)}",
+            f"lightloom.drivers.create_device; known here: {', '.join(known)}",
             "driver",
         )
     match = difflib.get_close_matches(str(driver), list(known), n=1, cutoff=0.5)
@@ -139,7 +139,7 @@ def _create_message_device(
         )
     transport: LineTransport
     if family == "visa":
-        from drivers.visa_transport import VisaTransport, check_resource_name
+        from lightloom.drivers.visa_transport import VisaTransport, check_resource_name
 
         try:
             check_resource_name(address)
@@ -149,7 +149,7 @@ def _create_message_device(
             ) from None
         transport = VisaTransport(name, address, config.line)
     else:
-        from drivers.serial_transport import SerialTransport
+        from lightloom.drivers.serial_transport import SerialTransport
 
         transport = SerialTransport(name, address, config.line)
     return MESSAGE_DEVICE_CLASSES[kind](name, transport, config)

@@ -5,8 +5,8 @@ from __future__ import annotations
 import time
 from typing import Callable, TypeVar
 
-from drivers.errors import ConnectionLost, InstrumentError, InstrumentTimeout
-from drivers.interfaces import Device
+from lightloom.drivers.errors import ConnectionLost, InstrumentError, InstrumentTimeout
+from lightloom.drivers.interfaces import Device
 
 T = TypeVar("T")
 

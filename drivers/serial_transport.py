@@ -7,9 +7,9 @@ from typing import Any
 
 import serial
 
-from drivers.errors import InstrumentTimeout
-from drivers.options import LineSettings
-from drivers.transport import LineTransport
+from lightloom.drivers.errors import InstrumentTimeout
+from lightloom.drivers.options import LineSettings
+from lightloom.drivers.transport import LineTransport
 
 _PARITY = {
     "none": serial.PARITY_NONE,

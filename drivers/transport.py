@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from abc import ABC, abstractmethod
 
-from drivers.errors import BadReply, ConnectionLost, InstrumentTimeout
+from lightloom.drivers.errors import BadReply, ConnectionLost, InstrumentTimeout
 
 CONNECTION_HINT = "check the cable/address; is the instrument on?"
 TIMEOUT_HINT = (

@@ -11,10 +11,10 @@ from pyvisa import constants
 from pyvisa.errors import Error as VisaError
 from pyvisa.errors import VisaIOError
 
-from drivers.errors import InstrumentError
-from drivers.options import LineSettings
-from drivers.serial_transport import close_port_quickly
-from drivers.transport import LineTransport
+from lightloom.drivers.errors import InstrumentError
+from lightloom.drivers.options import LineSettings
+from lightloom.drivers.serial_transport import close_port_quickly
+from lightloom.drivers.transport import LineTransport
 
 _PARITY = {
     "none": constants.Parity.none,

@@ -1,7 +1,7 @@
-"""``python -m sequencer`` runs the lightloom command line."""
+"""``python -m lightloom.sequencer`` runs the lightloom command line."""
 
 import sys
 
-from sequencer.cli import main
+from lightloom.sequencer.cli import main
 
 sys.exit(main())

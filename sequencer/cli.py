@@ -7,8 +7,8 @@ import importlib
 import sys
 from typing import Sequence
 
-from sequencer import __version__
-from sequencer.errors import EXIT_INTERRUPTED, LightloomError
+from lightloom.sequencer import __version__
+from lightloom.sequencer.errors import EXIT_INTERRUPTED, LightloomError
 
 # verb -> module in sequencer.commands (imported lazily so that one verb's imports never slow another)
 VERBS: dict[str, str] = {
@@ -33,9 +33,9 @@ def build_parser() -> argparse.ArgumentParser:
     sub.required = True
     for verb, module_name in VERBS.items():
         try:
-            module = importlib.import_module(f"sequencer.commands.{module_name}")
+            module = importlib.import_module(f"lightloom.sequencer.commands.{module_name}")
         except ModuleNotFoundError as exc:
-            if exc.name != f"sequencer.commands.{module_name}":
+            if exc.name != f"lightloom.sequencer.commands.{module_name}":
                 raise
             continue  # verb not built yet
         module.add_parser(sub)

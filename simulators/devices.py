@@ -18,11 +18,11 @@ from typing import Callable, ClassVar, Iterator
 
 import numpy as np
 
-from drivers.errors import BadReply, ConnectionLost, DeviceFault, InstrumentTimeout, LimitViolation
-from drivers.interfaces import DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
-from sequencer.kinematics import move_time_s
-from simulators.clock import SimClock
-from simulators.faults import FaultInjector, garble_reply
+from lightloom.drivers.errors import BadReply, ConnectionLost, DeviceFault, InstrumentTimeout, LimitViolation
+from lightloom.drivers.interfaces import DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
+from lightloom.sequencer.plan.kinematics import move_time_s
+from lightloom.simulators.clock import SimClock
+from lightloom.simulators.faults import FaultInjector, garble_reply
 
 __all__ = [
     "ACTUATOR", "COUNTER", "DEVICE_KINDS", "POWERMETER", "SHUTTER", "STAGE",

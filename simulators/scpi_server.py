@@ -24,9 +24,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Iterable, Mapping, NamedTuple
 
-from drivers.errors import DeviceFault, InstrumentError, LimitViolation
-from simulators.devices import ACTUATOR, COUNTER, POWERMETER, SHUTTER, STAGE, SimDevice
-from simulators.faults import FaultInjector, garble_reply
+from lightloom.drivers.errors import DeviceFault, InstrumentError, LimitViolation
+from lightloom.simulators.devices import ACTUATOR, COUNTER, POWERMETER, SHUTTER, STAGE, SimDevice
+from lightloom.simulators.faults import FaultInjector, garble_reply
 
 LOOPBACK_HOST = "127.0.0.1"
 

@@ -16,18 +16,18 @@ from typing import Callable
 
 import numpy as np
 
-from drivers.interfaces import Device
-from sequencer.bench import Bench
-from sequencer.optics.analyzer import (
+from lightloom.drivers.interfaces import Device
+from lightloom.sequencer.lang.bench import Bench
+from lightloom.sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_ANGLE, CONVERTER_IN, CONVERTER_OUT, HWP, QWP, ROTATOR,
     park_settings, port_operators, probabilities,
 )
-from sequencer.tablemodel import analyzer_model, port_models
-from simulators.clock import SimClock
-from simulators.devices import (
+from lightloom.sequencer.plan.tablemodel import analyzer_model, port_models
+from lightloom.simulators.clock import SimClock
+from lightloom.simulators.devices import (
     SimActuator, SimPhotonCounter, SimPowerMeter, SimRotationStage, SimShutter,
 )
-from simulators.faults import FaultInjector
+from lightloom.simulators.faults import FaultInjector
 
 ROLE_INDEX = {"quarter_wave_plate": QWP, "half_wave_plate": HWP, "converter_angle": CONVERTER_ANGLE,
               "image_rotator": ROTATOR}

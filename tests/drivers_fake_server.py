@@ -378,7 +378,7 @@ class Rig:
         limits: dict | None = None,
         name: str = "dev",
     ):
-        from drivers.registry import create_device
+        from lightloom.drivers.registry import create_device
 
         merged = {"timeout_s": 0.3, **(options or {})}
         device = create_device(

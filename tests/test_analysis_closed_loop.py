@@ -10,12 +10,12 @@ import numpy as np
 import pytest
 import qutip
 
-from sequencer.analysis import estimate, prepare, result_json, target_of
-from sequencer.bench import load_bench
-from sequencer.cli import main
-from sequencer.optics.states import JOINT_KETS, partial_trace
-from sequencer.optics.stokes import stokes_from_density
-from sequencer.storage.store import load_run
+from lightloom.sequencer.analysis.pipeline import estimate, prepare, result_json, target_of
+from lightloom.sequencer.lang.bench import load_bench
+from lightloom.sequencer.cli import main
+from lightloom.sequencer.optics.states import JOINT_KETS, partial_trace
+from lightloom.sequencer.optics.stokes import stokes_from_density
+from lightloom.sequencer.storage.store import load_run
 
 
 def _run(tmp_path: Path, protocol: str, bench: str, name: str = "run.h5") -> Path:

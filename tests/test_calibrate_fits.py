@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from sequencer import calibration as cal
-from sequencer.errors import InputError
-from sequencer.optics.analyzer import (
+from lightloom.sequencer.analysis import calibration as cal
+from lightloom.sequencer.errors import InputError
+from lightloom.sequencer.optics.analyzer import (
     CONVERTER, HWP, QWP, ROTATOR, AnalyzerModel, PlateModel, PortModel, RotatorModel, park_settings,
     port_operators, probabilities,
 )

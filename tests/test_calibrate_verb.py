@@ -9,14 +9,14 @@ import numpy as np
 import pytest
 import yaml
 
-from sequencer import calibration as cal
-from sequencer import cli
-from sequencer.bench import Bench, load_bench
-from sequencer.optics import jones
-from sequencer.optics.analyzer import polarization_unitary, spatial_unitary
-from sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS
-from sequencer.protocol import load_protocol
-from sequencer.tablemodel import analyzer_model, compile_protocol
+from lightloom.sequencer.analysis import calibration as cal
+from lightloom.sequencer import cli
+from lightloom.sequencer.lang.bench import Bench, load_bench
+from lightloom.sequencer.optics import jones
+from lightloom.sequencer.optics.analyzer import polarization_unitary, spatial_unitary
+from lightloom.sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS
+from lightloom.sequencer.lang.protocol import load_protocol
+from lightloom.sequencer.plan.tablemodel import analyzer_model, compile_protocol
 
 BENCH = "sim-uncalibrated"
 SCANS = ("waveplate-calibration-hwp", "waveplate-calibration-qwp", "calibration-rotator", "calibration-converter")

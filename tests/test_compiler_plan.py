@@ -7,15 +7,15 @@ import math
 import numpy as np
 import pytest
 
-from sequencer.compiler import Request, TableModel, compile_requests
-from sequencer.kinematics import StageKinematics, approach_path, move_time_s, path_time_s
-from sequencer.optics.analyzer import (
+from lightloom.sequencer.plan.compiler import Request, TableModel, compile_requests
+from lightloom.sequencer.plan.kinematics import StageKinematics, approach_path, move_time_s, path_time_s
+from lightloom.sequencer.optics.analyzer import (
     AnalyzerModel, ConverterModel, PlateModel, PortModel, RotatorModel, port_operators, probabilities,
 )
-from sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS
-from sequencer.ordering import transition_time_s
-from sequencer.plan import Plan
-from sequencer.timing import estimate_plan
+from lightloom.sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS
+from lightloom.sequencer.plan.ordering import transition_time_s
+from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.plan.timing import estimate_plan
 
 K = StageKinematics(20.0, 50.0, 0.2, 0.05, -360.0, 360.0, 0.002)
 MODEL = AnalyzerModel(PlateModel(90, 0.3), PlateModel(180, -0.2), ConverterModel(90, 45, 0.1, False),

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from drivers.errors import BadReply, DeviceFault, LimitViolation
+from lightloom.drivers.errors import BadReply, DeviceFault, LimitViolation
 from drivers_fake_server import FAMILIES, Rig
 
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from drivers.errors import BadReply, LimitViolation, NotSupported
+from lightloom.drivers.errors import BadReply, LimitViolation, NotSupported
 from drivers_fake_server import FAMILIES, Rig
 
 

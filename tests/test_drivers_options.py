@@ -6,7 +6,7 @@ import dataclasses
 
 import pytest
 
-from drivers.options import (
+from lightloom.drivers.options import (
     DEFAULT_COMMANDS,
     DriverConfigError,
     check_limits,

@@ -6,12 +6,12 @@ import textwrap
 
 import pytest
 
-from drivers.interfaces import PowerMeter, RotationStage, Shutter
-from drivers.message_devices import MessageRotationStage
-from drivers.options import DriverConfigError
-from drivers.registry import BUILTIN_DRIVERS, create_device, known_drivers
-from drivers.serial_transport import SerialTransport
-from drivers.visa_transport import VisaTransport
+from lightloom.drivers.interfaces import PowerMeter, RotationStage, Shutter
+from lightloom.drivers.message_devices import MessageRotationStage
+from lightloom.drivers.options import DriverConfigError
+from lightloom.drivers.registry import BUILTIN_DRIVERS, create_device, known_drivers
+from lightloom.drivers.serial_transport import SerialTransport
+from lightloom.drivers.visa_transport import VisaTransport
 
 
 def test_builtin_drivers_build_the_interface_of_their_kind_without_connecting():
@@ -72,7 +72,7 @@ def _install_plugin(tmp_path, monkeypatch, module: str, source: str, target: str
 
 
 PLUGIN = """
-    from drivers.interfaces import Shutter
+    from lightloom.drivers.interfaces import Shutter
 
     class AcmeShutter(Shutter):
         def __init__(self, name, address, options):

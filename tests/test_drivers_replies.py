@@ -8,7 +8,7 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from drivers.replies import (
+from lightloom.drivers.replies import (
     ReplyError,
     parse_count,
     parse_error_entry,

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import pytest
 
-from drivers.errors import BadReply, ConnectionLost, InstrumentTimeout, LimitViolation
-from drivers.interfaces import Device
-from drivers.retry import backoff_delays_s, call_with_retry
+from lightloom.drivers.errors import BadReply, ConnectionLost, InstrumentTimeout, LimitViolation
+from lightloom.drivers.interfaces import Device
+from lightloom.drivers.retry import backoff_delays_s, call_with_retry
 from drivers_fake_server import FAMILIES, Rig
 
 

@@ -4,10 +4,10 @@ from __future__ import annotations
 
 import pytest
 
-from drivers.registry import create_device
-from sequencer.bench import load_bench
-from simulators.scpi_server import LoopbackServer
-from simulators.table import SimulatedTable
+from lightloom.drivers.registry import create_device
+from lightloom.sequencer.lang.bench import load_bench
+from lightloom.simulators.scpi_server import LoopbackServer
+from lightloom.simulators.table import SimulatedTable
 
 
 @pytest.fixture(scope="module")

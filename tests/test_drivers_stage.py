@@ -6,7 +6,7 @@ import time
 
 import pytest
 
-from drivers.errors import BadReply, DeviceFault, InstrumentTimeout, LimitViolation, NotSupported
+from lightloom.drivers.errors import BadReply, DeviceFault, InstrumentTimeout, LimitViolation, NotSupported
 from drivers_fake_server import FAMILIES, Rig
 
 

@@ -6,14 +6,14 @@ import time
 
 import pytest
 
-from drivers.errors import (
+from lightloom.drivers.errors import (
     BadReply,
     ConnectionLost,
     IdentityMismatch,
     InstrumentError,
     InstrumentTimeout,
 )
-from drivers.registry import create_device
+from lightloom.drivers.registry import create_device
 from drivers_fake_server import Rig
 
 ALL_PATHS = ["visa", "serial", "visa-asrl"]

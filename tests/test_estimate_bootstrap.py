@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from sequencer.estimate import EstimationError, mle_gaussian_batch, mle_poisson_batch, parametric_bootstrap
-from sequencer.estimate import merit
+from lightloom.sequencer.analysis.estimate import EstimationError, mle_gaussian_batch, mle_poisson_batch, parametric_bootstrap
+from lightloom.sequencer.analysis.estimate import merit
 
 R2 = 1 / np.sqrt(2)
 KETS = [[1, 0], [0, 1], [R2, R2], [R2, -R2], [R2, 1j * R2], [R2, -1j * R2]]  # H V D A R L

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from sequencer.estimate import (
+from lightloom.sequencer.analysis.estimate import (
     EstimationError,
     LinearResult,
     MleResult,

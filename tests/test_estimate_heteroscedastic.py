@@ -10,10 +10,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from sequencer.estimate import mle_gaussian, mle_gaussian_batch, parametric_bootstrap
-from sequencer.estimate import merit
-from sequencer.estimate.apg import GaussianProblem, solve_gaussian
-from sequencer.estimate.hermitian import to_vector
+from lightloom.sequencer.analysis.estimate import mle_gaussian, mle_gaussian_batch, parametric_bootstrap
+from lightloom.sequencer.analysis.estimate import merit
+from lightloom.sequencer.analysis.estimate.apg import GaussianProblem, solve_gaussian
+from lightloom.sequencer.analysis.estimate.hermitian import to_vector
 
 R2 = 1 / np.sqrt(2)
 KETS = [np.array(k, dtype=complex) for k in ([1, 0], [0, 1], [R2, R2], [R2, -R2], [R2, 1j * R2], [R2, -1j * R2])]

@@ -10,8 +10,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from sequencer.estimate import EstimationError, closest_density_matrix, closest_positive, linear_inversion
-from sequencer.estimate.linear import linear_inversion_batch
+from lightloom.sequencer.analysis.estimate import EstimationError, closest_density_matrix, closest_positive, linear_inversion
+from lightloom.sequencer.analysis.estimate.linear import linear_inversion_batch
 
 R2 = 1 / np.sqrt(2)
 # Kets written out here on purpose, independent of sequencer.optics.

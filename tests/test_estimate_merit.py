@@ -10,8 +10,8 @@ from sympy import I as sym_i
 from sympy import Matrix, sqrt
 from sympy.physics.optics.polarization import jones_2_stokes
 
-from sequencer.estimate import EstimationError
-from sequencer.estimate import merit
+from lightloom.sequencer.analysis.estimate import EstimationError
+from lightloom.sequencer.analysis.estimate import merit
 
 R2 = 1 / np.sqrt(2)
 H, V = np.array([1, 0]), np.array([0, 1])
@@ -161,7 +161,7 @@ def test_each_named_mode_is_found_closest_to_itself(name, ket):
 @pytest.mark.parametrize("name", ["radial", "azimuthal", "hybrid_plus", "hybrid_minus"])
 def test_named_modes_are_maximally_non_separable(name):
     # common practice, no source: maximally entangled, so C = 1 and both reduced states unpolarized
-    from sequencer.optics.states import JOINT_KETS
+    from lightloom.sequencer.optics.states import JOINT_KETS
 
     rho = ket_density(JOINT_KETS[name])
     assert merit.concurrence(rho) == pytest.approx(1.0, abs=1e-12)

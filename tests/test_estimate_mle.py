@@ -10,7 +10,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from sequencer.estimate import (
+from lightloom.sequencer.analysis.estimate import (
     EstimationError,
     mle_gaussian,
     mle_gaussian_batch,

@@ -8,9 +8,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from sequencer import bench as bench_module
-from sequencer.bench import DetectorPort, load_bench, parse_bench
-from sequencer.errors import BenchError
+from lightloom.sequencer.lang import bench as bench_module
+from lightloom.sequencer.lang.bench import DetectorPort, load_bench, parse_bench
+from lightloom.sequencer.errors import BenchError
 
 MINIMAL = """\
 bench: tiny

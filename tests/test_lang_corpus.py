@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from sequencer import cli
+from lightloom.sequencer import cli
 
 REPO = Path(__file__).resolve().parent.parent
 CORPUS = Path(__file__).resolve().parent / "bad_inputs"
@@ -84,7 +84,7 @@ def test_bad_input_by_subprocess_exits_2_without_traceback(name: str, tmp_path: 
     env = dict(os.environ, PYTHONPATH=str(REPO), PYTHONDONTWRITEBYTECODE="1")
     start = time.perf_counter()
     proc = subprocess.run(
-        [sys.executable, "-m", "sequencer", *command(path)],
+        [sys.executable, "-m", "lightloom.sequencer", *command(path)],
         cwd=tmp_path,
         env=env,
         capture_output=True,

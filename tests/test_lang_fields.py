@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from sequencer.errors import InputError, ProtocolError
-from sequencer.fields import (
+from lightloom.sequencer.errors import InputError, ProtocolError
+from lightloom.sequencer.lang.fields import (
     Section,
     complex_value,
     density_matrix,
@@ -15,7 +15,7 @@ from sequencer.fields import (
     normalized_ket,
     retyped,
 )
-from sequencer.yamlsafe import parse_text
+from lightloom.sequencer.lang.yamlsafe import parse_text
 
 ALLOWED = ("protocol", "dwell_s", "repeats", "order")
 

@@ -10,8 +10,8 @@ import pytest
 import sympy
 from sympy.physics.optics.polarization import jones_2_stokes
 
-from sequencer.errors import ProtocolError
-from sequencer.protocol import FACTORS, load_protocol, parse_protocol
+from lightloom.sequencer.errors import ProtocolError
+from lightloom.sequencer.lang.protocol import FACTORS, load_protocol, parse_protocol
 
 HEAD = "protocol: t\ndwell_s: 0.5\n"
 

@@ -10,9 +10,10 @@ from pathlib import Path
 
 import pytest
 
-from sequencer import builtins, cli
-from sequencer.bench import load_bench
-from sequencer.protocol import load_protocol
+from lightloom.sequencer.lang import builtins
+from lightloom.sequencer import cli
+from lightloom.sequencer.lang.bench import load_bench
+from lightloom.sequencer.lang.protocol import load_protocol
 
 REPO = Path(__file__).resolve().parent.parent
 
@@ -140,7 +141,7 @@ def test_validate_without_bench_reports_no_bench(capsys: pytest.CaptureFixture[s
 def test_validate_by_subprocess_from_another_directory(tmp_path: Path) -> None:
     env = dict(os.environ, PYTHONPATH=str(REPO), PYTHONDONTWRITEBYTECODE="1")
     proc = subprocess.run(
-        [sys.executable, "-m", "sequencer", "validate", "joint-36", "--bench", "sim-single"],
+        [sys.executable, "-m", "lightloom.sequencer", "validate", "joint-36", "--bench", "sim-single"],
         cwd=tmp_path, env=env, capture_output=True, text=True, timeout=60,
     )
     assert proc.returncode == 0, proc.stderr

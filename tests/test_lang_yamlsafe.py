@@ -8,8 +8,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from sequencer.errors import InputError
-from sequencer.yamlsafe import (
+from lightloom.sequencer.errors import InputError
+from lightloom.sequencer.lang.yamlsafe import (
     MAX_NODES,
     YMap,
     YScalar,

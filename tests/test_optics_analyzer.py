@@ -5,13 +5,13 @@ from __future__ import annotations
 import numpy as np
 from hypothesis import example, given, settings, strategies as st
 
-from sequencer.optics.analyzer import (
+from lightloom.sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_ANGLE, HWP, QWP, ROTATOR,
     AnalyzerModel, ConverterModel, PlateModel, PortModel, RotatorModel,
     park_settings, port_operators, probabilities,
 )
-from sequencer.optics.settings import polarization_setting, spatial_setting
-from sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, normalize_ket
+from lightloom.sequencer.optics.settings import polarization_setting, spatial_setting
+from lightloom.sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, normalize_ket
 
 FOUR_PORTS = tuple(PortModel(f"pm_{s}{p}", s, p) for s in "hv" for p in "HV")
 

@@ -7,10 +7,10 @@ import pytest
 import sympy
 from sympy.physics.optics import polarization as sp_pol
 
-from sequencer.optics import jones
-from sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS
-from sequencer.optics.stokes import stokes_from_density, density_from_stokes
-from sequencer.optics.states import density, ket_from_stokes
+from lightloom.sequencer.optics import jones
+from lightloom.sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS
+from lightloom.sequencer.optics.stokes import stokes_from_density, density_from_stokes
+from lightloom.sequencer.optics.states import density, ket_from_stokes
 
 RNG = np.random.default_rng(20261201)
 ANGLES = RNG.uniform(-np.pi, np.pi, 6)

@@ -14,7 +14,7 @@ matplotlib = pytest.importorskip("matplotlib")
 from matplotlib.colors import Normalize  # noqa: E402
 from mpl_toolkits.mplot3d import proj3d  # noqa: E402
 
-from sequencer import plots  # noqa: E402
+from lightloom.sequencer.present import plots  # noqa: E402
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 JOINT_LABELS = ("H,h", "H,v", "V,h", "V,v")

@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from sequencer.session import log_path_for
-from sequencer.storage import read_runfile
-from sequencer.storage.records import FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT
+from lightloom.sequencer.run.session import log_path_for
+from lightloom.sequencer.storage import read_runfile
+from lightloom.sequencer.model.records import FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT
 from test_run_complete import assert_complete, run_cli, shutter_watch, write_bench  # noqa: F401
 
 

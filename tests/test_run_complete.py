@@ -19,13 +19,13 @@ import numpy as np
 import pytest
 import yaml
 
-from sequencer import cli
-from sequencer.bench import load_bench
-from sequencer.plan import Plan
-from sequencer.protocol import load_protocol
-from sequencer.session import log_path_for
-from sequencer.storage import RunData, read_runfile
-from sequencer.tablemodel import compile_protocol
+from lightloom.sequencer import cli
+from lightloom.sequencer.lang.bench import load_bench
+from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.lang.protocol import load_protocol
+from lightloom.sequencer.run.session import log_path_for
+from lightloom.sequencer.storage import RunData, read_runfile
+from lightloom.sequencer.plan.tablemodel import compile_protocol
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -46,7 +46,7 @@ def run_cli(*args: object) -> int:
 def spawn(*args: object, **popen: object) -> subprocess.Popen:
     """The command line in a new process (stdout and stderr piped, text); ``popen`` goes to Popen."""
     return subprocess.Popen(
-        [sys.executable, "-m", "sequencer", *[str(a) for a in args]],
+        [sys.executable, "-m", "lightloom.sequencer", *[str(a) for a in args]],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
         env={**os.environ, "PYTHONPATH": str(REPO)}, cwd=str(REPO), **popen,
     )
@@ -127,8 +127,8 @@ class ShutterWatch:
 @pytest.fixture
 def shutter_watch(monkeypatch) -> ShutterWatch:
     """Record every completed open/close of a simulated shutter and every SimulatedTable built."""
-    from simulators import devices
-    from simulators.table import SimulatedTable
+    from lightloom.simulators import devices
+    from lightloom.simulators.table import SimulatedTable
 
     watch = ShutterWatch()
     opened, closed, built = devices.SimShutter.open, devices.SimShutter.close_beam, SimulatedTable.__init__

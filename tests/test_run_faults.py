@@ -7,12 +7,12 @@ import re
 import numpy as np
 import pytest
 
-from sequencer import runner as runner_module
-from sequencer.session import log_path_for
-from sequencer.storage import read_runfile
-from sequencer.storage.errors import StorageWriteError
-from sequencer.storage.records import FLAG_RETRIED
-from sequencer.storage.store import RunStore
+from lightloom.sequencer.run import runner as runner_module
+from lightloom.sequencer.run.session import log_path_for
+from lightloom.sequencer.storage import read_runfile
+from lightloom.sequencer.storage.errors import StorageWriteError
+from lightloom.sequencer.model.records import FLAG_RETRIED
+from lightloom.sequencer.storage.store import RunStore
 from test_run_complete import assert_complete, log_steps, run_cli, shutter_watch, write_bench  # noqa: F401
 
 _TRANSIENT = re.compile(r"transient fault on (.+?) \(attempt (\d+)\): device '(\w+)'.*retrying in ([\d.]+) s$")

@@ -8,8 +8,8 @@ import time
 
 import numpy as np
 
-from sequencer.session import log_path_for
-from sequencer.storage import journal_path_for, read_journal
+from lightloom.sequencer.run.session import log_path_for
+from lightloom.sequencer.storage import journal_path_for, read_journal
 from test_run_complete import (
     assert_complete, log_steps, run_cli, spawn, wait_for_log_steps, write_bench,
 )

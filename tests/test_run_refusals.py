@@ -8,11 +8,11 @@ import shutil
 
 import pytest
 
-from sequencer.bench import load_bench
-from sequencer.protocol import load_protocol
-from sequencer.storage import read_runfile
-from sequencer.tablemodel import compile_protocol, table_model
-from sequencer.timing import estimate_plan
+from lightloom.sequencer.lang.bench import load_bench
+from lightloom.sequencer.lang.protocol import load_protocol
+from lightloom.sequencer.storage import read_runfile
+from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
+from lightloom.sequencer.plan.timing import estimate_plan
 from test_run_complete import REPO, run_cli, write_bench
 
 

@@ -6,9 +6,9 @@ import signal
 
 import pytest
 
-from sequencer.session import log_path_for
-from sequencer.storage import journal_path_for, read_journal, read_runfile
-from sequencer.storage.store import RunStore
+from lightloom.sequencer.run.session import log_path_for
+from lightloom.sequencer.storage import journal_path_for, read_journal, read_runfile
+from lightloom.sequencer.storage.store import RunStore
 from test_run_complete import (  # noqa: F401
     assert_complete, run_cli, shutter_watch, spawn, wait_for_log_steps, write_bench,
 )
@@ -53,7 +53,7 @@ def test_a_run_started_under_nohup_ignores_sighup_and_completes(tmp_path, capsys
 
 
 def test_a_second_ctrl_c_while_the_shutter_closes_does_not_stop_the_closing(tmp_path, capsys, monkeypatch, shutter_watch):
-    from simulators.devices import SimShutter
+    from lightloom.simulators.devices import SimShutter
 
     record, close = RunStore.record, SimShutter.close_beam
     state = {"records": 0, "stopping": False, "second": False}

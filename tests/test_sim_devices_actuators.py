@@ -5,10 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from drivers.errors import ConnectionLost, InstrumentTimeout, LimitViolation
-from drivers.interfaces import DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
-from simulators.clock import SimClock
-from simulators.devices import SimActuator, SimPhotonCounter, SimPowerMeter, SimRotationStage, SimShutter
+from lightloom.drivers.errors import ConnectionLost, InstrumentTimeout, LimitViolation
+from lightloom.drivers.interfaces import DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
+from lightloom.simulators.clock import SimClock
+from lightloom.simulators.devices import SimActuator, SimPhotonCounter, SimPowerMeter, SimRotationStage, SimShutter
 
 
 def test_actuator_switch_takes_switch_time_and_the_beam_sees_the_old_state_until_done() -> None:

@@ -7,7 +7,7 @@ import time
 
 import pytest
 
-from simulators.clock import SimClock
+from lightloom.simulators.clock import SimClock
 
 
 class FakeWall:

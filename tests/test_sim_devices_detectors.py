@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from drivers.errors import LimitViolation
-from simulators.clock import SimClock
-from simulators.devices import SimPhotonCounter, SimPowerMeter, SimShutter
+from lightloom.drivers.errors import LimitViolation
+from lightloom.simulators.clock import SimClock
+from lightloom.simulators.devices import SimPhotonCounter, SimPowerMeter, SimShutter
 
 POWER_W = 2.0e-4
 

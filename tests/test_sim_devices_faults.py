@@ -7,10 +7,10 @@ import math
 import numpy as np
 import pytest
 
-from drivers.errors import BadReply, ConnectionLost, DeviceFault, InstrumentTimeout
-from simulators.clock import SimClock
-from simulators.devices import SimActuator, SimPowerMeter, SimRotationStage, move_time_s
-from simulators.faults import FaultInjector, FaultSpecError, garble_reply, parse_faults
+from lightloom.drivers.errors import BadReply, ConnectionLost, DeviceFault, InstrumentTimeout
+from lightloom.simulators.clock import SimClock
+from lightloom.simulators.devices import SimActuator, SimPowerMeter, SimRotationStage, move_time_s
+from lightloom.simulators.faults import FaultInjector, FaultSpecError, garble_reply, parse_faults
 
 
 def meter_with(clock: SimClock, faults: list[dict], seed: int = 5) -> SimPowerMeter:

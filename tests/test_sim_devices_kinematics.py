@@ -10,9 +10,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from drivers.errors import InstrumentTimeout, LimitViolation
-from simulators.clock import SimClock
-from simulators.devices import (
+from lightloom.drivers.errors import InstrumentTimeout, LimitViolation
+from lightloom.simulators.clock import SimClock
+from lightloom.simulators.devices import (
     SimRotationStage,
     home_time_s,
     move_time_s,

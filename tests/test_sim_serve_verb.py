@@ -16,8 +16,8 @@ from pathlib import Path
 import pyvisa
 import pytest
 
-from sequencer.cli import main
-from sequencer.storage.store import load_run
+from lightloom.sequencer.cli import main
+from lightloom.sequencer.storage.store import load_run
 
 REPO = Path(__file__).resolve().parents[1]
 ADDRESS = re.compile(r"^\s+(\w+)\s+(\w+)\s+(TCPIP::127\.0\.0\.1::(\d+)::SOCKET)\s+(socket://127\.0\.0\.1:\d+)$")
@@ -42,7 +42,7 @@ def _free_base_port(n: int = 12) -> int:
 def _serve(tmp_path: Path, *extra: str) -> tuple[subprocess.Popen, dict[str, tuple[str, str]], Path]:
     bench_out = tmp_path / "served.yaml"
     proc = subprocess.Popen(
-        [sys.executable, "-m", "sequencer", "sim", "serve", "--bench", "sim", "--bench-out", str(bench_out),
+        [sys.executable, "-m", "lightloom.sequencer", "sim", "serve", "--bench", "sim", "--bench-out", str(bench_out),
          "--base-port", str(_free_base_port()), *extra],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=str(tmp_path),
         env={**os.environ, "PYTHONPATH": str(REPO)},

@@ -9,8 +9,8 @@ from typing import Iterator
 import numpy as np
 import pytest
 
-from simulators.clock import SimClock
-from simulators.devices import (
+from lightloom.simulators.clock import SimClock
+from lightloom.simulators.devices import (
     SimActuator,
     SimDevice,
     SimPhotonCounter,
@@ -19,7 +19,7 @@ from simulators.devices import (
     SimShutter,
     move_time_s,
 )
-from simulators.scpi_server import LoopbackServer
+from lightloom.simulators.scpi_server import LoopbackServer
 
 
 class LineClient:

@@ -8,10 +8,10 @@ from typing import Iterator
 import numpy as np
 import pytest
 
-from simulators.clock import SimClock
-from simulators.devices import SimPowerMeter, SimRotationStage
-from simulators.faults import FaultInjector
-from simulators.scpi_server import LoopbackServer
+from lightloom.simulators.clock import SimClock
+from lightloom.simulators.devices import SimPowerMeter, SimRotationStage
+from lightloom.simulators.faults import FaultInjector
+from lightloom.simulators.scpi_server import LoopbackServer
 
 
 class LineClient:

@@ -10,10 +10,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from simulators.clock import SimClock
-from simulators.devices import SimPowerMeter, SimRotationStage, SimShutter
-from simulators.faults import FaultInjector
-from simulators.scpi_server import LoopbackServer, NonLoopbackHost, PortUnavailable
+from lightloom.simulators.clock import SimClock
+from lightloom.simulators.devices import SimPowerMeter, SimRotationStage, SimShutter
+from lightloom.simulators.faults import FaultInjector
+from lightloom.simulators.scpi_server import LoopbackServer, NonLoopbackHost, PortUnavailable
 
 
 def devices():

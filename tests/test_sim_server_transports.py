@@ -9,9 +9,9 @@ import pytest
 import pyvisa
 import serial
 
-from simulators.clock import SimClock
-from simulators.devices import SimPowerMeter, SimRotationStage, SimShutter
-from simulators.scpi_server import LoopbackServer
+from lightloom.simulators.clock import SimClock
+from lightloom.simulators.devices import SimPowerMeter, SimRotationStage, SimShutter
+from lightloom.simulators.scpi_server import LoopbackServer
 
 
 @pytest.fixture()

@@ -7,11 +7,11 @@ from pathlib import Path
 
 import numpy as np
 
-from sequencer.bench import load_bench
-from sequencer.optics.analyzer import port_operators, probabilities
-from sequencer.protocol import load_protocol
-from sequencer.tablemodel import analyzer_model, compile_protocol, port_models
-from simulators.table import SimulatedTable
+from lightloom.sequencer.lang.bench import load_bench
+from lightloom.sequencer.optics.analyzer import port_operators, probabilities
+from lightloom.sequencer.lang.protocol import load_protocol
+from lightloom.sequencer.plan.tablemodel import analyzer_model, compile_protocol, port_models
+from lightloom.simulators.table import SimulatedTable
 
 
 def _quiet_bench(tmp_path: Path) -> Path:

@@ -8,8 +8,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from sequencer.storage import Event, Reading
-from sequencer.storage.codec import (
+from lightloom.sequencer.storage import Event, Reading
+from lightloom.sequencer.storage.codec import (
     TYPE_EVENT, TYPE_HEADER, TYPE_READING, ReadingLayout, decode_event,
     decode_header, decode_rows, encode_event, encode_header, encode_reading, frame, scan_frames,
     table_from_rows,

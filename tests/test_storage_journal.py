@@ -11,9 +11,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-import sequencer.storage.journal as journal_module
-from sequencer.errors import StorageError
-from sequencer.storage import (
+import lightloom.sequencer.storage.journal as journal_module
+from lightloom.sequencer.errors import StorageError
+from lightloom.sequencer.storage import (
     Event, Journal, JournalDamagedError, RunExistsError, RunInUseError, StorageWriteError,
     read_journal, writer_active,
 )
@@ -248,7 +248,7 @@ def test_another_process_reads_the_journal_while_this_one_appends(tmp_path):
     reader = subprocess.Popen(
         [sys.executable, "-c", textwrap.dedent(f"""
             import numpy as np
-            from sequencer.storage import read_journal
+            from lightloom.sequencer.storage import read_journal
             print("ready", flush=True)
             counts = []
             while not counts or counts[-1] < {total}:

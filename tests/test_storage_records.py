@@ -9,7 +9,7 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from sequencer.storage import (
+from lightloom.sequencer.storage import (
     FLAG_DRIFT, FLAG_RETRIED, Event, Reading, ReadingTable, RunHeader,
 )
 

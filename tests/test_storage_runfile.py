@@ -13,9 +13,9 @@ import h5py
 import numpy as np
 import pytest
 
-import sequencer.storage.runfile as runfile_module
-from sequencer.errors import StorageError
-from sequencer.storage import Event, ReadingTable, read_runfile, write_runfile
+import lightloom.sequencer.storage.runfile as runfile_module
+from lightloom.sequencer.errors import StorageError
+from lightloom.sequencer.storage import Event, ReadingTable, read_runfile, write_runfile
 from test_storage_records import ELEMENTS, PORTS, make_header, make_reading
 
 REPO = Path(__file__).resolve().parents[1]
@@ -157,7 +157,7 @@ def test_reader_never_sees_a_half_written_file_while_it_is_replaced(tmp_path):
         [sys.executable, "-c", textwrap.dedent(f"""
             import sys
             sys.path.insert(0, {str(REPO / "tests")!r})
-            from sequencer.storage import write_runfile
+            from lightloom.sequencer.storage import write_runfile
             from test_storage_records import make_header, make_reading
             header = make_header()
             readings = [make_reading(i) for i in range(400)]

@@ -10,11 +10,11 @@ from itertools import count
 import numpy as np
 import pytest
 
-from sequencer.errors import StorageError
-from sequencer.storage import (
+from lightloom.sequencer.errors import StorageError
+from lightloom.sequencer.storage import (
     Event, RunExistsError, RunStore, journal_path_for, load_run, read_journal, read_runfile,
 )
-from sequencer.storage.journal import Journal
+from lightloom.sequencer.storage.journal import Journal
 from test_storage_records import make_header, make_reading
 
 

@@ -1,1 +1,1 @@
-"""One module per command-line verb; each exposes add_parser(subparsers) and run(args) -> int."""
+"""One module per command-line verb; each exposes add_parser(subparsers) and run(args) -> int; the only layer besides run/ that may import every other."""

@@ -22,9 +22,9 @@ def add_parser(sub) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from sequencer.analysis import AnalysisError, estimate, prepare, result_json, target_of
-    from sequencer.errors import UsageError
-    from sequencer.storage.store import load_run
+    from lightloom.sequencer.analysis.pipeline import AnalysisError, estimate, prepare, result_json, target_of
+    from lightloom.sequencer.errors import UsageError
+    from lightloom.sequencer.storage.store import load_run
 
     if args.bootstrap < 2:
         raise UsageError("--bootstrap needs at least 2 resamples")
@@ -45,7 +45,7 @@ def run(args: argparse.Namespace) -> int:
     if args.json:
         print(json.dumps(doc, indent=1))
     else:
-        from sequencer.report import print_report
+        from lightloom.sequencer.present.report import print_report
 
         console = Console()
         print_report(console, doc)
@@ -55,10 +55,10 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _recomputed_operators(data, bench_spec: str) -> np.ndarray:
-    from sequencer.bench import load_bench
-    from sequencer.errors import UsageError
-    from sequencer.optics.analyzer import port_operators
-    from sequencer.tablemodel import table_model
+    from lightloom.sequencer.lang.bench import load_bench
+    from lightloom.sequencer.errors import UsageError
+    from lightloom.sequencer.optics.analyzer import port_operators
+    from lightloom.sequencer.plan.tablemodel import table_model
 
     bench = load_bench(bench_spec)
     table = table_model(bench)
@@ -73,10 +73,10 @@ def _recomputed_operators(data, bench_spec: str) -> np.ndarray:
 def _plots(data, est, directory: str) -> list:
     from pathlib import Path
 
-    from sequencer.errors import UsageError
+    from lightloom.sequencer.errors import UsageError
 
     try:
-        from sequencer import plots
+        from lightloom.sequencer.present import plots
     except ImportError as exc:  # plots extra missing
         raise UsageError(f"plots need matplotlib: pip install 'lightloom[plots]' ({exc})") from None
     out = Path(directory)

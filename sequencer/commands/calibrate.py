@@ -13,7 +13,7 @@ from typing import Any, Sequence
 from rich.console import Console
 from rich.table import Table
 
-from sequencer.errors import InputError, LightloomError, UsageError
+from lightloom.sequencer.errors import InputError, LightloomError, UsageError
 
 SCAN_PROTOCOLS = "waveplate-calibration-hwp, waveplate-calibration-qwp, calibration-rotator, calibration-converter"
 
@@ -44,9 +44,9 @@ class _Run:
 
 
 def run(args: argparse.Namespace) -> int:
-    from sequencer import calibration
-    from sequencer.bench import parse_bench
-    from sequencer.tablemodel import analyzer_model, port_models
+    from lightloom.sequencer.analysis import calibration
+    from lightloom.sequencer.lang.bench import parse_bench
+    from lightloom.sequencer.plan.tablemodel import analyzer_model, port_models
 
     out = Path(args.out)
     if out.exists():
@@ -89,8 +89,8 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _read_run(path: Path) -> _Run:
-    from sequencer.protocol import parse_protocol
-    from sequencer.storage import load_run
+    from lightloom.sequencer.lang.protocol import parse_protocol
+    from lightloom.sequencer.storage import load_run
 
     if not path.exists():
         raise UsageError(f"{path}: no such run file")
@@ -126,8 +126,8 @@ def _scan(run: _Run, label: str):
     """The run's readings as a calibration scan, columns in ELEMENT_NAMES order."""
     import numpy as np
 
-    from sequencer import calibration
-    from sequencer.optics.analyzer import ELEMENT_NAMES
+    from lightloom.sequencer.analysis import calibration
+    from lightloom.sequencer.optics.analyzer import ELEMENT_NAMES
 
     rd = run.data.readings
     if not (rd.kind == "measure").any():
@@ -143,8 +143,8 @@ def _scan(run: _Run, label: str):
 
 def _base_bench(option: str | None, first: _Run, out: Path):
     """(text for ``extends:``, the loaded bench) of the bench the overlay extends."""
-    from sequencer import builtins
-    from sequencer.bench import load_bench, parse_bench
+    from lightloom.sequencer.lang import builtins
+    from lightloom.sequencer.lang.bench import load_bench, parse_bench
 
     header = first.data.header
     spec = option
@@ -198,7 +198,7 @@ class _Row:
 
 
 def _old_value(key: str, base) -> float:
-    from sequencer import calibration as c
+    from lightloom.sequencer.analysis import calibration as c
 
     cal = base.calibration
     if key.startswith(c.GAIN_PREFIX):
@@ -210,7 +210,7 @@ def _old_value(key: str, base) -> float:
 
 
 def _overlay_values(fit, base) -> list[_Row]:
-    from sequencer import calibration as c
+    from lightloom.sequencer.analysis import calibration as c
 
     first_gain = float(base.calibration.port_gain.get(base.roles.detectors[0].device, 1.0))
     rows = []
@@ -230,8 +230,8 @@ def _rounded(value: float, std: float) -> float:
 
 
 def _overlay_text(rows: Sequence[_Row], fit, runs: Sequence[_Run], spec: str, base, out: Path) -> str:
-    from sequencer import __version__
-    from sequencer.yamlsafe import dump_plain
+    from lightloom.sequencer import __version__
+    from lightloom.sequencer.lang.yamlsafe import dump_plain
 
     body: dict[str, Any] = {}
     for row in rows:

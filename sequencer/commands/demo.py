@@ -20,13 +20,13 @@ def add_parser(sub) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from sequencer.analysis import estimate, prepare, result_json, target_of
-    from sequencer.bench import load_bench
-    from sequencer.errors import UsageError
-    from sequencer.estimate import merit
-    from sequencer.report import print_report
-    from sequencer.session import start_run
-    from sequencer.storage.store import load_run
+    from lightloom.sequencer.analysis.pipeline import estimate, prepare, result_json, target_of
+    from lightloom.sequencer.lang.bench import load_bench
+    from lightloom.sequencer.errors import UsageError
+    from lightloom.sequencer.analysis.estimate import merit
+    from lightloom.sequencer.present.report import print_report
+    from lightloom.sequencer.run.session import start_run
+    from lightloom.sequencer.storage.store import load_run
 
     console = Console()
     bench = load_bench(args.bench)
@@ -58,7 +58,7 @@ def run(args: argparse.Namespace) -> int:
             highlight=False,
         )
     try:
-        from sequencer.commands.analyze import _plots
+        from lightloom.sequencer.commands.analyze import _plots
 
         for p in _plots(data, est, str(folder / "figures")):
             console.print(f"  figure: {p}", highlight=False)

@@ -20,11 +20,11 @@ def add_parser(sub) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from sequencer.bench import load_bench
-    from sequencer.optics.analyzer import CONVERTER
-    from sequencer.protocol import load_protocol
-    from sequencer.tablemodel import compile_protocol, table_model
-    from sequencer.timing import estimate_plan
+    from lightloom.sequencer.lang.bench import load_bench
+    from lightloom.sequencer.optics.analyzer import CONVERTER
+    from lightloom.sequencer.lang.protocol import load_protocol
+    from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
+    from lightloom.sequencer.plan.timing import estimate_plan
 
     protocol = load_protocol(args.protocol)
     bench = load_bench(args.bench)

@@ -16,7 +16,7 @@ def add_parser(sub) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from sequencer.session import resume_run
+    from lightloom.sequencer.run.session import resume_run
 
     live = sys.stdout.isatty() and not args.quiet
     return resume_run(args.file, console=Console(), live=live)

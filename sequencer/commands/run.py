@@ -18,7 +18,7 @@ def add_parser(sub) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from sequencer.session import start_run
+    from lightloom.sequencer.run.session import start_run
 
     console = Console(stderr=False)
     live = sys.stdout.isatty() and not args.quiet

@@ -66,10 +66,10 @@ def served_bench_text(bench, addresses, transport: str) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
-    from sequencer.bench import load_bench
-    from sequencer.errors import UsageError
-    from simulators.scpi_server import LoopbackServer
-    from simulators.table import SimulatedTable
+    from lightloom.sequencer.lang.bench import load_bench
+    from lightloom.sequencer.errors import UsageError
+    from lightloom.simulators.scpi_server import LoopbackServer
+    from lightloom.simulators.table import SimulatedTable
 
     bench = load_bench(args.bench)
     if not bench.is_simulated:

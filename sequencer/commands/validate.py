@@ -7,9 +7,9 @@ import importlib
 import json
 from typing import Any
 
-from sequencer.bench import Bench, load_bench
-from sequencer.errors import BenchError
-from sequencer.protocol import Protocol, load_protocol
+from lightloom.sequencer.lang.bench import Bench, load_bench
+from lightloom.sequencer.errors import BenchError
+from lightloom.sequencer.lang.protocol import Protocol, load_protocol
 
 
 def add_parser(subparsers: Any) -> None:
@@ -77,9 +77,9 @@ def driver_options_check(bench: Bench) -> None:
     The bench language passes ``options`` through untouched; the driver families own their keys.
     """
     try:
-        options_module = importlib.import_module("drivers.options")
+        options_module = importlib.import_module("lightloom.drivers.options")
     except ModuleNotFoundError as exc:
-        if exc.name not in ("drivers", "drivers.options"):
+        if exc.name not in ("lightloom.drivers", "lightloom.drivers.options"):
             raise
         return
     check = getattr(options_module, "check_options", None)
@@ -99,7 +99,7 @@ def driver_options_check(bench: Bench) -> None:
 
 def _find_compiler() -> Any:
     # The compiler may live in either module; a missing one means this version cannot compile yet.
-    for module_name in ("sequencer.tablemodel", "sequencer.compiler"):
+    for module_name in ("lightloom.sequencer.plan.tablemodel", "lightloom.sequencer.plan.compiler"):
         try:
             module = importlib.import_module(module_name)
         except ModuleNotFoundError as exc:

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from sequencer.optics import jones
+from lightloom.sequencer.optics import jones
 
 Complex = NDArray[np.complex128]
 

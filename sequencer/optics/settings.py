@@ -18,15 +18,15 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.optimize import least_squares
 
-from sequencer.errors import OpticsError
-from sequencer.optics.analyzer import (
+from lightloom.sequencer.errors import OpticsError
+from lightloom.sequencer.optics.analyzer import (
     AnalyzerModel,
     ConverterModel,
     PlateModel,
     RotatorModel,
 )
-from sequencer.optics import jones
-from sequencer.optics.states import normalize_ket
+from lightloom.sequencer.optics import jones
+from lightloom.sequencer.optics.states import normalize_ket
 
 Complex = NDArray[np.complex128]
 

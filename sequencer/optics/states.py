@@ -12,7 +12,7 @@ import re
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from sequencer.errors import OpticsError
+from lightloom.sequencer.errors import OpticsError
 
 Complex = NDArray[np.complex128]
 

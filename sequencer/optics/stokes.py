@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from sequencer.optics.states import partial_trace
+from lightloom.sequencer.optics.states import partial_trace
 
 PAULI = np.array(
     [

@@ -1,4 +1,4 @@
-"""Run storage: the append-only journal (record of truth) and the HDF5 run file derived from it.
+"""Run storage: the append-only journal (record of truth) and the HDF5 run file; encodes and decodes model records, nothing else.
 
 Records and the journal need only numpy; the names that need h5py (the run file,
 RunStore, load_run) are imported on first use, so that the pure core may use the
@@ -10,10 +10,10 @@ from __future__ import annotations
 import importlib
 from typing import Any
 
-from .codec import Damage
-from .errors import JournalDamagedError, RunExistsError, RunInUseError, StorageWriteError
-from .journal import Journal, JournalContents, read_journal, writer_active
-from .records import (
+from lightloom.sequencer.storage.codec import Damage
+from lightloom.sequencer.storage.errors import JournalDamagedError, RunExistsError, RunInUseError, StorageWriteError
+from lightloom.sequencer.storage.journal import Journal, JournalContents, read_journal, writer_active
+from lightloom.sequencer.model.records import (
     EVENT_KINDS, FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT, FLAG_RETRIED, FORMAT_VERSION,
     MODE_CONVERTER_IN, MODE_CONVERTER_OUT, READING_KINDS, RUN_STATUSES, Event, Reading,
     ReadingTable, RunData, RunHeader,

@@ -28,7 +28,7 @@ from functools import cached_property
 
 import numpy as np
 
-from .records import (
+from lightloom.sequencer.model.records import (
     EVENT_KINDS, READING_KINDS, RUN_STATUSES, Event, Reading, ReadingTable, RunHeader,
 )
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from sequencer.errors import EXIT_FAULT, StorageError
+from lightloom.sequencer.errors import EXIT_FAULT, StorageError
 
 
 class RunExistsError(StorageError):

@@ -19,16 +19,16 @@ from pathlib import Path
 
 import numpy as np
 
-from sequencer.errors import StorageError
+from lightloom.sequencer.errors import StorageError
 
-from .atomic import publish, sync_fd, temp_path
-from .codec import (
+from lightloom.sequencer.storage.atomic import publish, sync_fd, temp_path
+from lightloom.sequencer.storage.codec import (
     JOURNAL_FORMAT, TYPE_EVENT, TYPE_HEADER, TYPE_READING, TYPE_STATUS, Damage, ReadingLayout,
     decode_event, decode_header, decode_rows, decode_status, encode_event, encode_header,
     encode_reading, encode_status, frame, scan_frames, table_from_rows,
 )
-from .errors import JournalDamagedError, RunExistsError, RunInUseError, StorageWriteError
-from .records import FORMAT_VERSION, Event, Reading, ReadingTable, RunHeader
+from lightloom.sequencer.storage.errors import JournalDamagedError, RunExistsError, RunInUseError, StorageWriteError
+from lightloom.sequencer.model.records import FORMAT_VERSION, Event, Reading, ReadingTable, RunHeader
 
 try:
     import fcntl

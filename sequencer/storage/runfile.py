@@ -42,11 +42,11 @@ from typing import Any
 import h5py
 import numpy as np
 
-from sequencer.errors import StorageError
+from lightloom.sequencer.errors import StorageError
 
-from .atomic import publish, sync_path, temp_path
-from .errors import StorageWriteError
-from .records import (
+from lightloom.sequencer.storage.atomic import publish, sync_path, temp_path
+from lightloom.sequencer.storage.errors import StorageWriteError
+from lightloom.sequencer.model.records import (
     EVENT_KINDS, FLAG_NAMES, FORMAT_VERSION, READING_KINDS, RUN_STATUSES, Event, Reading,
     ReadingTable, RunData, RunHeader, element_unit,
 )

@@ -14,13 +14,13 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-from sequencer.errors import StorageError
+from lightloom.sequencer.errors import StorageError
 
-from .atomic import stale_temp_paths
-from .errors import RunExistsError
-from .journal import Journal, read_journal, writer_active
-from .records import FORMAT_VERSION, Event, Reading, ReadingTable, RunData, RunHeader
-from .runfile import read_runfile, read_runfile_header, utc_now_iso, write_runfile
+from lightloom.sequencer.storage.atomic import stale_temp_paths
+from lightloom.sequencer.storage.errors import RunExistsError
+from lightloom.sequencer.storage.journal import Journal, read_journal, writer_active
+from lightloom.sequencer.model.records import FORMAT_VERSION, Event, Reading, ReadingTable, RunData, RunHeader
+from lightloom.sequencer.storage.runfile import read_runfile, read_runfile_header, utc_now_iso, write_runfile
 
 JOURNAL_SUFFIX = ".journal"
 FINAL_STATUSES = ("complete", "interrupted", "fault")

@@ -15,8 +15,8 @@ import time
 
 import numpy as np
 
-from sequencer.estimate import merit, mle_poisson_batch
-from sequencer.estimate.bootstrap import parametric_bootstrap
+from lightloom.sequencer.analysis.estimate import merit, mle_poisson_batch
+from lightloom.sequencer.analysis.estimate.bootstrap import parametric_bootstrap
 
 R2 = 1 / np.sqrt(2)
 KETS = [np.array(k, dtype=complex) for k in ([1, 0], [0, 1], [R2, R2], [R2, -R2], [R2, 1j * R2], [R2, -1j * R2])]

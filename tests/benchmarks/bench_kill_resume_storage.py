@@ -18,7 +18,7 @@ from pathlib import Path
 TESTS = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(TESTS))
 
-from sequencer.storage import RunStore, load_run, read_journal, read_runfile  # noqa: E402
+from lightloom.sequencer.storage import RunStore, load_run, read_journal, read_runfile  # noqa: E402
 from test_storage_kill import (  # noqa: E402
     check_run, kill_after_lines, reported_indices, start_writer,
 )

@@ -22,7 +22,7 @@ import warnings
 import cvxpy as cp
 import numpy as np
 
-from sequencer.estimate import mle_gaussian, mle_gaussian_batch
+from lightloom.sequencer.analysis.estimate import mle_gaussian, mle_gaussian_batch
 
 R2 = 1 / np.sqrt(2)
 KETS = [np.array(k, dtype=complex) for k in ([1, 0], [0, 1], [R2, R2], [R2, -R2], [R2, 1j * R2], [R2, -1j * R2])]

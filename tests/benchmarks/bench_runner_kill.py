@@ -25,7 +25,7 @@ from pathlib import Path
 
 import yaml
 
-from sequencer.storage import journal_path_for, read_journal, read_runfile
+from lightloom.sequencer.storage import journal_path_for, read_journal, read_runfile
 
 REPO = Path(__file__).resolve().parents[2]
 STEP_LINE = re.compile(r"^\S+ step (\d+) ")
@@ -33,7 +33,7 @@ STEP_LINE = re.compile(r"^\S+ step (\d+) ")
 
 def spawn(*args: str) -> subprocess.Popen:
     return subprocess.Popen(
-        [sys.executable, "-m", "sequencer", *args, "--quiet"], stdout=subprocess.DEVNULL,
+        [sys.executable, "-m", "lightloom.sequencer", *args, "--quiet"], stdout=subprocess.DEVNULL,
         stderr=subprocess.DEVNULL, env={**os.environ, "PYTHONPATH": str(REPO)},
     )
 
@@ -77,11 +77,11 @@ def trial(folder: Path, bench: Path, rng: random.Random) -> dict[str, int]:
                 held.setdefault(row.step_index, row)
     if not journal_path_for(out).exists():
         counts["killed before the journal existed"] += 1
-        status = subprocess.run([sys.executable, "-m", "sequencer", "run", "joint-36", "--bench", str(bench),
+        status = subprocess.run([sys.executable, "-m", "lightloom.sequencer", "run", "joint-36", "--bench", str(bench),
                                  "--out", str(out), "--quiet"], env={**os.environ, "PYTHONPATH": str(REPO)},
                                 stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL).returncode
     else:
-        status = subprocess.run([sys.executable, "-m", "sequencer", "resume", str(out), "--quiet"],
+        status = subprocess.run([sys.executable, "-m", "lightloom.sequencer", "resume", str(out), "--quiet"],
                                 env={**os.environ, "PYTHONPATH": str(REPO)},
                                 stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL).returncode
     final = read_runfile(out)

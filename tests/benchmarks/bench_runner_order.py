@@ -20,14 +20,14 @@ from pathlib import Path
 
 import numpy as np
 
-from sequencer.bench import load_bench
-from sequencer.builtins import find
-from sequencer.ordering import transition_time_s
-from sequencer.protocol import load_protocol
-from sequencer.session import start_run
-from sequencer.storage import read_runfile
-from sequencer.tablemodel import compile_protocol, table_model
-from sequencer.timing import estimate_plan
+from lightloom.sequencer.lang.bench import load_bench
+from lightloom.sequencer.lang.builtins import find
+from lightloom.sequencer.plan.ordering import transition_time_s
+from lightloom.sequencer.lang.protocol import load_protocol
+from lightloom.sequencer.run.session import start_run
+from lightloom.sequencer.storage import read_runfile
+from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
+from lightloom.sequencer.plan.timing import estimate_plan
 
 REQUIRED_SAVING = 0.30
 

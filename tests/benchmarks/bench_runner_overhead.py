@@ -23,16 +23,16 @@ from pathlib import Path
 
 import numpy as np
 
-from sequencer.bench import load_bench
-from sequencer.kinematics import approach_path
-from sequencer.optics.analyzer import CONVERTER, CONVERTER_IN
-from sequencer.protocol import load_protocol
-from sequencer.runner import Runner
-from sequencer.session import RunLog, assemble, make_header, policy_for, port_units
-from sequencer.storage import RunStore
-from sequencer.storage.atomic import sync_fd
-from sequencer.storage.codec import ReadingLayout
-from sequencer.tablemodel import compile_protocol, table_model
+from lightloom.sequencer.lang.bench import load_bench
+from lightloom.sequencer.plan.kinematics import approach_path
+from lightloom.sequencer.optics.analyzer import CONVERTER, CONVERTER_IN
+from lightloom.sequencer.lang.protocol import load_protocol
+from lightloom.sequencer.run.runner import Runner
+from lightloom.sequencer.run.session import RunLog, assemble, make_header, policy_for, port_units
+from lightloom.sequencer.storage import RunStore
+from lightloom.sequencer.storage.atomic import sync_fd
+from lightloom.sequencer.storage.codec import ReadingLayout
+from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
 
 REQUIREMENT_S = 0.005
 ROUNDS = 3

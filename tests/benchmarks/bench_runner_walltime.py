@@ -21,14 +21,14 @@ from pathlib import Path
 import numpy as np
 import yaml
 
-from sequencer.bench import load_bench
-from sequencer.ordering import transition_time_s
-from sequencer.plan import Plan
-from sequencer.session import start_run
-from sequencer.storage import read_runfile
-from sequencer.storage.store import RunStore
-from sequencer.tablemodel import table_model
-from sequencer.timing import estimate_plan
+from lightloom.sequencer.lang.bench import load_bench
+from lightloom.sequencer.plan.ordering import transition_time_s
+from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.run.session import start_run
+from lightloom.sequencer.storage import read_runfile
+from lightloom.sequencer.storage.store import RunStore
+from lightloom.sequencer.plan.tablemodel import table_model
+from lightloom.sequencer.plan.timing import estimate_plan
 
 
 def floor_seconds(plan: Plan, bench) -> tuple[float, float]:

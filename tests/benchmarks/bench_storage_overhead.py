@@ -16,13 +16,13 @@ from pathlib import Path
 
 import numpy as np
 
-import sequencer.storage.journal as journal_module
-from sequencer.storage import Reading, RunHeader, RunStore
-from sequencer.storage.atomic import sync_fd
-from sequencer.storage.codec import (
+import lightloom.sequencer.storage.journal as journal_module
+from lightloom.sequencer.storage import Reading, RunHeader, RunStore
+from lightloom.sequencer.storage.atomic import sync_fd
+from lightloom.sequencer.storage.codec import (
     TYPE_HEADER, TYPE_READING, ReadingLayout, encode_header, encode_reading, frame,
 )
-from sequencer.storage.journal import read_journal
+from lightloom.sequencer.storage.journal import read_journal
 
 ELEMENTS = ("quarter_wave_plate", "half_wave_plate", "mode_converter", "converter_angle",
             "image_rotator")

@@ -22,10 +22,10 @@ sys.path.insert(0, str(TESTS))
 import pyvisa  # noqa: E402
 import serial  # noqa: E402
 
-from drivers.options import parse_config  # noqa: E402
-from drivers.registry import create_device  # noqa: E402
-from drivers.serial_transport import SerialTransport  # noqa: E402
-from drivers.visa_transport import VisaTransport  # noqa: E402
+from lightloom.drivers.options import parse_config  # noqa: E402
+from lightloom.drivers.registry import create_device  # noqa: E402
+from lightloom.drivers.serial_transport import SerialTransport  # noqa: E402
+from lightloom.drivers.visa_transport import VisaTransport  # noqa: E402
 from drivers_fake_server import FakeInstrument, FakeLineServer, address_for  # noqa: E402
 
 

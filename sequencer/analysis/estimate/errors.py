@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from sequencer.errors import EXIT_BAD_INPUT, LightloomError
+from lightloom.sequencer.errors import EXIT_BAD_INPUT, LightloomError
 
 
 class EstimationError(LightloomError):

@@ -7,9 +7,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from sequencer.estimate.errors import EstimationError
-from sequencer.estimate.hermitian import check_operators
-from sequencer.estimate.mle import (
+from lightloom.sequencer.analysis.estimate.errors import EstimationError
+from lightloom.sequencer.analysis.estimate.hermitian import check_operators
+from lightloom.sequencer.analysis.estimate.mle import (
     DEFAULT_MAX_ITERATIONS,
     DEFAULT_TOLERANCE,
     MleResult,

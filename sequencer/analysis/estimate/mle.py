@@ -6,18 +6,18 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from sequencer.estimate.apg import (
+from lightloom.sequencer.analysis.estimate.apg import (
     GaussianProblem,
     project_density_coordinates,
     project_positive_coordinates,
     solve_gaussian,
     solve_poisson,
 )
-from sequencer.estimate.barrier import solve_gaussian_barrier
-from sequencer.estimate.blas import matmul_rows
-from sequencer.estimate.errors import EstimationError
-from sequencer.estimate.hermitian import check_operators, check_values, to_matrix, to_vector
-from sequencer.estimate.linear import least_squares_operator
+from lightloom.sequencer.analysis.estimate.barrier import solve_gaussian_barrier
+from lightloom.sequencer.analysis.estimate.blas import matmul_rows
+from lightloom.sequencer.analysis.estimate.errors import EstimationError
+from lightloom.sequencer.analysis.estimate.hermitian import check_operators, check_values, to_matrix, to_vector
+from lightloom.sequencer.analysis.estimate.linear import least_squares_operator
 
 DEFAULT_TOLERANCE = 1e-6
 DEFAULT_MAX_ITERATIONS = 20000

@@ -19,7 +19,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from sequencer.errors import EXIT_BAD_INPUT, LightloomError
+from lightloom.sequencer.errors import EXIT_BAD_INPUT, LightloomError
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure

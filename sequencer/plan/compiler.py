@@ -18,18 +18,18 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
-from sequencer.errors import BenchError, OpticsError, ProtocolError
-from sequencer.kinematics import StageKinematics, nearest_equivalent_deg
-from sequencer.optics.analyzer import (
+from lightloom.sequencer.errors import BenchError, OpticsError, ProtocolError
+from lightloom.sequencer.plan.kinematics import StageKinematics, nearest_equivalent_deg
+from lightloom.sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_ANGLE, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, HWP, QWP, ROTATOR,
     AnalyzerModel, PortModel, complete_port_set,
 )
-from sequencer.optics.settings import polarization_setting_variants, spatial_setting
-from sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, ORTHOGONAL_NAME
-from sequencer.optics.stokes import stokes_from_density
-from sequencer.optics.states import density
-from sequencer.ordering import PERIOD_DEG, order_settings
-from sequencer.plan import Plan, Step
+from lightloom.sequencer.optics.settings import polarization_setting_variants, spatial_setting
+from lightloom.sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, ORTHOGONAL_NAME
+from lightloom.sequencer.optics.stokes import stokes_from_density
+from lightloom.sequencer.optics.states import density
+from lightloom.sequencer.plan.ordering import PERIOD_DEG, order_settings
+from lightloom.sequencer.model.steps import Plan, Step
 
 STAGE_ELEMENTS = (QWP, HWP, CONVERTER_ANGLE, ROTATOR)
 # A run file holds its whole plan; beyond this a series belongs in several runs.

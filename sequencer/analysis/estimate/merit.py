@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from sequencer.estimate.errors import EstimationError
-from sequencer.optics.states import FACTORS, JOINT_KETS, partial_trace
-from sequencer.optics.stokes import degree_of_polarization, stokes_from_density
+from lightloom.sequencer.analysis.estimate.errors import EstimationError
+from lightloom.sequencer.optics.states import FACTORS, JOINT_KETS, partial_trace
+from lightloom.sequencer.optics.stokes import degree_of_polarization, stokes_from_density
 
 _SIGMA_Y_SIGMA_Y = np.kron(np.array([[0, -1j], [1j, 0]]), np.array([[0, -1j], [1j, 0]]))
 

@@ -12,11 +12,11 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from sequencer.kinematics import leg_times_s, nearest_equivalent_deg
-from sequencer.optics.analyzer import CONVERTER, CONVERTER_ANGLE, HWP, QWP, ROTATOR
+from lightloom.sequencer.plan.kinematics import leg_times_s, nearest_equivalent_deg
+from lightloom.sequencer.optics.analyzer import CONVERTER, CONVERTER_ANGLE, HWP, QWP, ROTATOR
 
 if TYPE_CHECKING:
-    from sequencer.compiler import TableModel
+    from lightloom.sequencer.plan.compiler import TableModel
 
 ORDERS = ("as-written", "shuffled", "least-motion")
 # Angles that give the same operator: plates and the converter stage repeat every 180 deg whatever

@@ -6,9 +6,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from sequencer.estimate.blas import matmul_rows
-from sequencer.estimate.hermitian import to_matrix, to_vector
-from sequencer.estimate.projection import from_eigen, simplex_from_ascending
+from lightloom.sequencer.analysis.estimate.blas import matmul_rows
+from lightloom.sequencer.analysis.estimate.hermitian import to_matrix, to_vector
+from lightloom.sequencer.analysis.estimate.projection import from_eigen, simplex_from_ascending
 
 _STEP_SHRINK = 0.5
 _STEP_GROWTH = 1.1

@@ -46,8 +46,8 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.optimize import least_squares, minimize
 
-from sequencer.errors import InputError
-from sequencer.optics.analyzer import (
+from lightloom.sequencer.errors import InputError
+from lightloom.sequencer.optics.analyzer import (
     CONVERTER, ELEMENT_NAMES, AnalyzerModel, PlateModel, PortModel,
     RotatorModel, port_operators, probabilities,
 )

@@ -8,15 +8,15 @@ benches, the truth of the simulated table (``simulation.table``), used only by t
 from __future__ import annotations
 
 
-from sequencer.bench import Bench
-from sequencer.compiler import Request, TableModel, compile_requests
-from sequencer.errors import InputError
-from sequencer.kinematics import StageKinematics
-from sequencer.optics.analyzer import (
+from lightloom.sequencer.lang.bench import Bench
+from lightloom.sequencer.plan.compiler import Request, TableModel, compile_requests
+from lightloom.sequencer.errors import InputError
+from lightloom.sequencer.plan.kinematics import StageKinematics
+from lightloom.sequencer.optics.analyzer import (
     ELEMENT_NAMES, AnalyzerModel, ConverterModel, PlateModel, PortModel, RotatorModel,
 )
-from sequencer.plan import Plan
-from sequencer.protocol import Protocol
+from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.lang.protocol import Protocol
 
 
 def analyzer_model(bench: Bench, truth: bool = False) -> AnalyzerModel:

@@ -7,11 +7,11 @@ from dataclasses import dataclass
 from importlib.abc import Traversable
 from pathlib import Path
 
-from sequencer.errors import InputError
-from sequencer.yamlsafe import MAX_BYTES
+from lightloom.sequencer.errors import InputError
+from lightloom.sequencer.lang.yamlsafe import MAX_BYTES
 
-PROTOCOL_PACKAGE = "lightloom_protocols"
-BENCH_PACKAGE = "simulators"
+PROTOCOL_PACKAGE = "lightloom.protocols"
+BENCH_PACKAGE = "lightloom.simulators"
 SUFFIX = ".yaml"
 
 
@@ -34,7 +34,7 @@ def protocol_directory() -> Traversable:
     try:
         return importlib.resources.files(PROTOCOL_PACKAGE)
     except ModuleNotFoundError:
-        return Path(__file__).resolve().parent.parent / "protocols"
+        return Path(__file__).resolve().parents[2] / "protocols"
 
 
 def bench_directory() -> Traversable:

@@ -15,9 +15,9 @@ from typing import Mapping
 import numpy as np
 from numpy.typing import NDArray
 
-from sequencer import builtins
-from sequencer.errors import OpticsError, ProtocolError
-from sequencer.fields import (
+from lightloom.sequencer.lang import builtins
+from lightloom.sequencer.errors import OpticsError, ProtocolError
+from lightloom.sequencer.lang.fields import (
     Section,
     aside,
     choice,
@@ -31,15 +31,15 @@ from sequencer.fields import (
     number,
     retyped,
 )
-from sequencer.fields import text as read_text
-from sequencer.optics.states import (
+from lightloom.sequencer.lang.fields import text as read_text
+from lightloom.sequencer.optics.states import (
     JOINT_KETS,
     POLARIZATION_KETS,
     SPATIAL_KETS,
     ket_from_stokes,
 )
-from sequencer.optics.stokes import density_from_stokes
-from sequencer.yamlsafe import YMap, YNode, YScalar, parse_bytes, parse_text
+from lightloom.sequencer.optics.stokes import density_from_stokes
+from lightloom.sequencer.lang.yamlsafe import YMap, YNode, YScalar, parse_bytes, parse_text
 
 FACTORS: tuple[str, str] = ("polarization", "spatial")
 """The analysed factors, in basis order (polarization (x) spatial)."""

@@ -19,18 +19,18 @@ from typing import Callable, Iterator
 import numpy as np
 from rich.console import Console
 
-from sequencer import __version__
-from sequencer.bench import Bench, load_bench, parse_bench
-from sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, UsageError
-from sequencer.optics.states import BASIS_LABELS
-from sequencer.plan import Plan
-from sequencer.protocol import Protocol, load_protocol, parse_protocol
-from sequencer.runner import Rig, Runner, RunPolicy, StopRequested, _complete_product as _complete_ports
-from sequencer.safety import LASER_SAFETY_CAUTION
-from sequencer.storage.records import FORMAT_VERSION, Event, RunHeader
-from sequencer.storage.store import RunStore
-from sequencer.tablemodel import STAGE_ROLES, compile_protocol, table_model
-from sequencer.timing import estimate_plan
+from lightloom.sequencer import __version__
+from lightloom.sequencer.lang.bench import Bench, load_bench, parse_bench
+from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, UsageError
+from lightloom.sequencer.optics.states import BASIS_LABELS
+from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
+from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, _complete_product as _complete_ports
+from lightloom.sequencer.run.safety import LASER_SAFETY_CAUTION
+from lightloom.sequencer.model.records import FORMAT_VERSION, Event, RunHeader
+from lightloom.sequencer.storage.store import RunStore
+from lightloom.sequencer.plan.tablemodel import STAGE_ROLES, compile_protocol, table_model
+from lightloom.sequencer.plan.timing import estimate_plan
 
 STATUS_EXIT = {"complete": EXIT_OK, "interrupted": EXIT_INTERRUPTED, "fault": EXIT_FAULT}
 
@@ -48,7 +48,7 @@ class Assembled:
 def assemble(bench: Bench) -> Assembled:
     """Build the devices of ``bench``: simulated in process, or real drivers (not yet connected)."""
     if bench.is_simulated:
-        from simulators.table import SimulatedTable
+        from lightloom.simulators.table import SimulatedTable
 
         table = SimulatedTable(bench)
         devices = table.devices
@@ -56,8 +56,8 @@ def assemble(bench: Bench) -> Assembled:
         now = lambda: wall0 + table.clock.now()  # noqa: E731
         sleep = table.clock.sleep
     else:
-        from drivers.registry import create_device
-        from drivers.options import DriverConfigError
+        from lightloom.drivers.registry import create_device
+        from lightloom.drivers.options import DriverConfigError
 
         devices = {}
         for name, spec in bench.devices.items():
@@ -333,7 +333,7 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
                       f"{len(plan.steps) - len(done)} steps, about {left:.0f} s -> {out_path}")
         runner_kwargs = {}
         if live and console is not None:
-            from sequencer.display import TerminalMonitor
+            from lightloom.sequencer.run.display import TerminalMonitor
 
             monitor = TerminalMonitor(console, f"lightloom {protocol.name} on {bench.name}", plan.port_names,
                                       store.header.port_units, left)

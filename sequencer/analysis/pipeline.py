@@ -26,14 +26,14 @@ from typing import Any
 
 import numpy as np
 
-from sequencer.estimate import (
+from lightloom.sequencer.analysis.estimate import (
     MleResult, linear_inversion, mle_gaussian, mle_poisson, parametric_bootstrap,
 )
-from sequencer.estimate import merit
-from sequencer.optics.analyzer import complete_port_set
-from sequencer.optics.states import BASIS_LABELS, JOINT_KETS, partial_trace
-from sequencer.plan import Plan
-from sequencer.storage.records import RunData
+from lightloom.sequencer.analysis.estimate import merit
+from lightloom.sequencer.optics.analyzer import complete_port_set
+from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS, partial_trace
+from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.records import RunData
 
 FACTOR_BASIS = {"polarization": ("H", "V"), "spatial": ("h", "v")}
 BOOTSTRAP_TOLERANCE = 1e-3

@@ -6,10 +6,10 @@ from functools import lru_cache
 
 import numpy as np
 
-from sequencer.estimate.apg import GaussianProblem, Solution, WorkingBatch, rowdot
-from sequencer.estimate.blas import matmul_rows
-from sequencer.estimate.hermitian import to_matrix, to_vector
-from sequencer.estimate.projection import from_eigen
+from lightloom.sequencer.analysis.estimate.apg import GaussianProblem, Solution, WorkingBatch, rowdot
+from lightloom.sequencer.analysis.estimate.blas import matmul_rows
+from lightloom.sequencer.analysis.estimate.hermitian import to_matrix, to_vector
+from lightloom.sequencer.analysis.estimate.projection import from_eigen
 
 # interior start: the positive part of the linear inversion plus this fraction of its mean eigenvalue
 # (or of the best fitting multiple of the identity, when that is larger) times the identity

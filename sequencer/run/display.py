@@ -16,8 +16,8 @@ from rich.panel import Panel
 from rich.table import Table
 from rich.text import Text
 
-from sequencer.plan import Step
-from sequencer.storage.records import Reading
+from lightloom.sequencer.model.steps import Step
+from lightloom.sequencer.model.records import Reading
 
 
 def _clock(seconds: float) -> str:

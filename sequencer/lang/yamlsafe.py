@@ -10,7 +10,7 @@ from typing import Any, Iterator, Union
 
 import yaml
 
-from sequencer.errors import InputError
+from lightloom.sequencer.errors import InputError
 
 MAX_BYTES = 1 << 20
 """Largest file read, in bytes (1 MiB): our files are a few kB; anything bigger is a mistake."""

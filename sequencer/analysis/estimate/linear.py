@@ -6,10 +6,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from sequencer.estimate.blas import matmul_rows
-from sequencer.estimate.errors import EstimationError
-from sequencer.estimate.hermitian import check_operators, check_values, to_matrix, to_vector
-from sequencer.estimate.projection import closest_density_matrix, closest_positive
+from lightloom.sequencer.analysis.estimate.blas import matmul_rows
+from lightloom.sequencer.analysis.estimate.errors import EstimationError
+from lightloom.sequencer.analysis.estimate.hermitian import check_operators, check_values, to_matrix, to_vector
+from lightloom.sequencer.analysis.estimate.projection import closest_density_matrix, closest_positive
 
 __all__ = [
     "LinearBatchResult",

@@ -6,8 +6,8 @@ from functools import lru_cache
 
 import numpy as np
 
-from sequencer.estimate.blas import matmul_rows
-from sequencer.estimate.errors import EstimationError
+from lightloom.sequencer.analysis.estimate.blas import matmul_rows
+from lightloom.sequencer.analysis.estimate.errors import EstimationError
 
 _SQRT2 = np.sqrt(2.0)
 

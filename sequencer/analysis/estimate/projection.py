@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from sequencer.estimate.hermitian import hermitian_part
+from lightloom.sequencer.analysis.estimate.hermitian import hermitian_part
 
 
 def simplex_from_ascending(w: np.ndarray) -> np.ndarray:

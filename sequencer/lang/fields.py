@@ -14,9 +14,9 @@ from typing import Iterable, Iterator, NoReturn, Sequence
 
 import numpy as np
 
-from sequencer.errors import InputError, OpticsError
-from sequencer.optics.states import normalize_density, parse_complex
-from sequencer.yamlsafe import YMap, YNode, YScalar, YSeq, clip
+from lightloom.sequencer.errors import InputError, OpticsError
+from lightloom.sequencer.optics.states import normalize_density, parse_complex
+from lightloom.sequencer.lang.yamlsafe import YMap, YNode, YScalar, YSeq, clip
 
 MISSING: object = object()
 """Default marker: the key is required."""

@@ -7,11 +7,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from sequencer.compiler import TableModel
-from sequencer.kinematics import nearest_equivalent_deg, path_time_s, path_travel_deg
-from sequencer.optics.analyzer import CONVERTER, ELEMENT_NAMES
-from sequencer.ordering import PERIOD_DEG, transition_time_s
-from sequencer.plan import Plan
+from lightloom.sequencer.plan.compiler import TableModel
+from lightloom.sequencer.plan.kinematics import nearest_equivalent_deg, path_time_s, path_travel_deg
+from lightloom.sequencer.optics.analyzer import CONVERTER, ELEMENT_NAMES
+from lightloom.sequencer.plan.ordering import PERIOD_DEG, transition_time_s
+from lightloom.sequencer.model.steps import Plan
 
 
 @dataclass(frozen=True)

@@ -16,9 +16,9 @@ from typing import Any, Mapping
 import numpy as np
 from numpy.typing import NDArray
 
-from sequencer import builtins
-from sequencer.errors import BenchError, InputError
-from sequencer.fields import (
+from lightloom.sequencer.lang import builtins
+from lightloom.sequencer.errors import BenchError, InputError
+from lightloom.sequencer.lang.fields import (
     Section,
     aside,
     choice,
@@ -28,8 +28,8 @@ from sequencer.fields import (
     normalized_ket,
     retyped,
 )
-from sequencer.fields import text as read_text
-from sequencer.yamlsafe import YMap, YNode, YScalar, YSeq, dump_plain, merge, parse_bytes, parse_text, to_plain
+from lightloom.sequencer.lang.fields import text as read_text
+from lightloom.sequencer.lang.yamlsafe import YMap, YNode, YScalar, YSeq, dump_plain, merge, parse_bytes, parse_text, to_plain
 
 KINDS: tuple[str, ...] = ("rotation_stage", "actuator", "shutter", "power_meter", "photon_counter")
 TRANSPORTS: tuple[str, ...] = ("sim", "visa", "serial")

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from sequencer.estimate.bootstrap import BootstrapResult, Uncertain, parametric_bootstrap, predicted_readings
-from sequencer.estimate.errors import EstimationError
-from sequencer.estimate.linear import (
+from lightloom.sequencer.analysis.estimate.bootstrap import BootstrapResult, Uncertain, parametric_bootstrap, predicted_readings
+from lightloom.sequencer.analysis.estimate.errors import EstimationError
+from lightloom.sequencer.analysis.estimate.linear import (
     LinearBatchResult,
     LinearResult,
     closest_density_matrix,
@@ -14,7 +14,7 @@ from sequencer.estimate.linear import (
     linear_inversion,
     linear_inversion_batch,
 )
-from sequencer.estimate.mle import (
+from lightloom.sequencer.analysis.estimate.mle import (
     DEFAULT_MAX_ITERATIONS,
     DEFAULT_TOLERANCE,
     MleBatchResult,

@@ -16,17 +16,17 @@ from typing import Callable, Protocol, Sequence, TypeVar
 
 import numpy as np
 
-from drivers.errors import InstrumentError
-from drivers.retry import call_with_retry
-from drivers.interfaces import Device, DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
-from sequencer.compiler import TableModel
-from sequencer.errors import RunFault
-from sequencer.kinematics import approach_path
-from sequencer.optics.analyzer import (
+from lightloom.drivers.errors import InstrumentError
+from lightloom.drivers.retry import call_with_retry
+from lightloom.drivers.interfaces import Device, DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
+from lightloom.sequencer.plan.compiler import TableModel
+from lightloom.sequencer.errors import RunFault
+from lightloom.sequencer.plan.kinematics import approach_path
+from lightloom.sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, complete_port_set, port_operators,
 )
-from sequencer.plan import Plan, Step
-from sequencer.storage.records import (
+from lightloom.sequencer.model.steps import Plan, Step
+from lightloom.sequencer.model.records import (
     FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT, FLAG_RETRIED, Event, Reading,
 )
 

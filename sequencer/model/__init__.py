@@ -1,0 +1,1 @@
+"""Plain data shared by every layer: vocabulary, the compiled step list, run records; imports numpy only."""
