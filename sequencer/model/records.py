@@ -83,6 +83,8 @@ class RunHeader:
     ``dimension`` is the joint polarization (x) spatial dimension (4) on which the
     measurement operators of every reading act, in the order of ``basis_labels``.
     ``target_state`` is an optional d x d density matrix, ``extra`` any JSON-able dict.
+    ``run_id`` identifies the run (a random UUID, shared by its journal and run file;
+    empty in files written before it existed).
     """
 
     format_version: int
@@ -105,6 +107,7 @@ class RunHeader:
     plan_json: str
     target_state: np.ndarray | None = None
     extra: dict[str, Any] = field(default_factory=dict)
+    run_id: str = ""
 
     def __post_init__(self) -> None:
         for name in ("analyzes", "element_names", "port_names", "basis_labels"):

@@ -20,7 +20,7 @@ from lightloom.drivers.errors import InstrumentError
 from lightloom.drivers.retry import call_with_retry
 from lightloom.drivers.interfaces import Device, DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
 from lightloom.sequencer.plan.compiler import TableModel
-from lightloom.sequencer.errors import RunFault
+from lightloom.sequencer.errors import RunFault, StorageError
 from lightloom.sequencer.plan.kinematics import approach_path
 from lightloom.sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, complete_port_set, port_operators,
@@ -446,19 +446,22 @@ class Runner:
         self._set_shutter(False)
         self._shutter_open = False
 
-    def execute(self, done: set[int]) -> tuple[str, str]:
-        """Run every step of the plan not in ``done``; return (status, message).
+    def execute(self, done: set[int] | np.ndarray) -> tuple[str, str]:
+        """Run every step of the plan not done; return (status, message).
 
-        Ctrl-C and SIGTERM (StopRequested) end with "interrupted"; RunFault with "fault". The
-        shutter is closed before this returns or raises, whatever happened.
+        ``done`` holds the indices of the steps recorded before, or is a boolean mask over
+        the steps. Ctrl-C and SIGTERM (StopRequested) end with "interrupted"; RunFault and a
+        disk that refuses to store (StorageError) with "fault". The shutter is closed before
+        this returns or raises, whatever happened.
         """
         status, message = "fault", "the run stopped before it started"
         total = len(self.plan.steps)
-        n_done = len(done)
+        mask = _done_mask(done, total)
+        n_done = int(np.count_nonzero(mask))
         try:
             self.connect()
             for step in self.plan.steps:
-                if step.index in done:
+                if mask[step.index]:
                     continue
                 self._wait_for_pass(step)
                 reading = self.measure_step(step)
@@ -467,11 +470,7 @@ class Runner:
                 self.log(_reading_line(step, reading, self.units))
                 self._tell(self.monitor.step_done, step, reading, n_done, total)
                 if self.wall() - self._last_refresh >= self._refresh_every_s:
-                    t0 = self.wall()
-                    self.store.refresh("running")
-                    self._last_refresh = self.wall()
-                    # Rebuilding the .h5 grows with the run: keep it under ~5% of the time.
-                    self._refresh_every_s = max(self.policy.refresh_s, 20.0 * (self._last_refresh - t0))
+                    self._refresh()
             status, message = "complete", f"all {total} steps recorded"
         except (KeyboardInterrupt, StopRequested) as exc:
             status = "interrupted"
@@ -479,6 +478,11 @@ class Runner:
             message += f" after {n_done} of {total} steps; `lightloom resume` continues it"
         except RunFault as exc:
             status, message = "fault", exc.one_line()
+        except StorageError as exc:
+            # The disk refused (full, read-only, failing): stop safely, then let the caller
+            # report the one line that says what to do.
+            self._finish("fault", exc.one_line())
+            raise
         except InstrumentError as exc:
             status, message = "fault", f"{exc}; check the instrument, then `lightloom resume`"
         except BaseException as exc:
@@ -487,6 +491,14 @@ class Runner:
             raise
         message = self._finish(status, message)
         return status, message
+
+    def _refresh(self) -> None:
+        """Bring the run file up to the journal; its cost is O(new readings)."""
+        t0 = self.wall()
+        self.store.refresh("running")
+        self._last_refresh = self.wall()
+        # A guard, not the rule: should a refresh ever be slow, keep it under ~5% of the time.
+        self._refresh_every_s = max(self.policy.refresh_s, 20.0 * (self._last_refresh - t0))
 
     def _finish(self, status: str, message: str) -> str:
         """Close the shutter, record the final event, close the devices; return the final message."""
@@ -516,6 +528,8 @@ class Runner:
         due = self.run_start + step.pass_index * self.plan.pass_interval_s
         wait = due - self.now()
         if wait > 0:
+            # Readers see every reading of the pass before the wait, not after it.
+            self._refresh()
             if wait > SHUTTER_CLOSED_WAIT_S:
                 # Nobody needs the beam until the next pass: keep it blocked meanwhile.
                 self._set_shutter(False)
@@ -523,6 +537,17 @@ class Runner:
             self.log(f"pass {step.pass_index + 1}: waiting {wait:.0f} s for its start time")
             self._tell(self.monitor.info, f"waiting {wait:.0f} s for pass {step.pass_index + 1}")
             self.sleep(wait)
+
+
+def _done_mask(done: set[int] | np.ndarray, total: int) -> np.ndarray:
+    if isinstance(done, np.ndarray) and done.dtype == bool:
+        mask = np.zeros(total, dtype=bool)
+        mask[: min(total, len(done))] = done[:total]
+        return mask
+    mask = np.zeros(total, dtype=bool)
+    index = np.fromiter(done, dtype=np.int64, count=len(done))
+    mask[index[(index >= 0) & (index < total)]] = True
+    return mask
 
 
 def _complete_product(table: TableModel) -> bool:

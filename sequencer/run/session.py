@@ -11,6 +11,7 @@ import math
 import signal
 import sys
 import time
+import uuid
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from pathlib import Path
@@ -21,7 +22,7 @@ from rich.console import Console
 
 from lightloom.sequencer import __version__
 from lightloom.sequencer.lang.bench import Bench, load_bench, parse_bench
-from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, UsageError
+from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, StorageError, UsageError
 from lightloom.sequencer.optics.states import BASIS_LABELS
 from lightloom.sequencer.model.steps import Plan
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
@@ -144,6 +145,7 @@ def make_header(protocol: Protocol, bench: Bench, plan: Plan, units: str, protoc
         plan_json=plan.to_json(),
         target_state=target,
         extra=extra,
+        run_id=str(uuid.uuid4()),
     )
 
 
@@ -192,14 +194,28 @@ class RunLog:
 
     def __init__(self, path: Path) -> None:
         self.path = path
-        self._f = open(path, "a", encoding="utf-8", buffering=1)
+        try:
+            self._f = open(path, "a", encoding="utf-8", buffering=1)
+        except OSError:
+            self._f = None  # a log that cannot be written must not stop the run (the journal is truth)
 
     def __call__(self, line: str) -> None:
+        if self._f is None:
+            return
         stamp = dt.datetime.now(dt.timezone.utc).isoformat(timespec="milliseconds")
-        self._f.write(f"{stamp} {line}\n")
+        try:
+            self._f.write(f"{stamp} {line}\n")
+        except OSError:
+            self._close_quietly()
 
     def close(self) -> None:
-        self._f.close()
+        self._close_quietly()
+
+    def _close_quietly(self) -> None:
+        f, self._f = self._f, None
+        if f is not None:
+            with suppress(OSError):
+                f.close()
 
 
 def log_path_for(out: Path) -> Path:
@@ -254,7 +270,7 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
                 f"(stored by lightloom {header.tool_version}, this is {__version__}); resume it with the "
                 "version that started it, or start a new run"
             )
-        done = {int(i) for i in store.readings.step_index}
+        done = store.summary.done.copy()
         assembled = assemble(bench)
     except BaseException:
         # A refused resume changes nothing: the run keeps its status and message (e.g. the fault).
@@ -292,31 +308,29 @@ def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
 
 
 def _initial_beam_level(store: RunStore, table) -> float | None:
-    r = store.readings
-    if len(r) == 0:
+    row = store.summary.first_beam_row
+    if row is None:
         return None
-    usable = ~r.of_kind("background")
-    if not usable.any():
-        return None
-    i = int(np.flatnonzero(usable)[0])
-    ref = float(r.reference_w[i])
+    ref = float(row["reference_w"])
     if not math.isnan(ref):
         return ref
     gains = np.array([p.gain for p in table.ports])
-    return float(np.sum(r.values[i] / gains)) if len(table.ports) > 1 else None
+    return float(np.sum(row["values"] / gains)) if len(table.ports) > 1 else None
 
 
 def _execute(protocol, bench, plan, assembled, store, out_path, done, console, live, *, resumed) -> int:
     table = table_model(bench)
     log = RunLog(log_path_for(out_path))
     est = estimate_plan(plan, table)
-    left = sum(t for s, t in zip(plan.steps, est.step_seconds) if s.index not in done)
+    done = _as_mask(done, len(plan.steps))
+    left = float(np.sum(np.asarray(est.step_seconds)[~done]))
+    n_done = int(np.count_nonzero(done))
     monitor = None
     try:
         verb = "resume" if resumed else "start"
         log(f"{verb}: protocol {protocol.name} on bench {bench.name} -> {out_path} "
-            f"({len(plan.steps) - len(done)} of {len(plan.steps)} steps to go, about {left:.0f} s)")
-        store.event(Event(assembled.now(), verb, f"lightloom {__version__}; {len(done)} of {len(plan.steps)} steps recorded before"))
+            f"({len(plan.steps) - n_done} of {len(plan.steps)} steps to go, about {left:.0f} s)")
+        store.event(Event(assembled.now(), verb, f"lightloom {__version__}; {n_done} of {len(plan.steps)} steps recorded before"))
         if not bench.is_simulated:
             sys.stderr.write(LASER_SAFETY_CAUTION)
             sys.stderr.flush()
@@ -330,7 +344,7 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             log(blind)
             _say(console, blind)
         _say(console, f"{'resuming' if resumed else 'running'} {protocol.name} on {bench.name}: "
-                      f"{len(plan.steps) - len(done)} steps, about {left:.0f} s -> {out_path}")
+                      f"{len(plan.steps) - n_done} steps, about {left:.0f} s -> {out_path}")
         runner_kwargs = {}
         if live and console is not None:
             from lightloom.sequencer.run.display import TerminalMonitor
@@ -353,6 +367,8 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
         resume = f"`lightloom resume {out_path}` continues the run"
         if isinstance(exc, (KeyboardInterrupt, StopRequested)):
             status, message = "interrupted", f"stopped by Ctrl-C or SIGTERM; {resume}"
+        elif isinstance(exc, StorageError):
+            status, message = "fault", f"{exc.one_line()}"
         else:
             status, message = "fault", f"internal error {exc!r}; please report this; {resume}"
         with suppress(Exception):
@@ -368,8 +384,14 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
     return STATUS_EXIT[status]
 
 
+def _as_mask(done, total: int) -> np.ndarray:
+    if isinstance(done, np.ndarray) and done.dtype == bool:
+        return done[:total]
+    mask = np.zeros(total, dtype=bool)
+    mask[[i for i in done if 0 <= i < total]] = True
+    return mask
+
+
 def _run_start(store: RunStore, now: Callable[[], float]) -> float:
-    r = store.readings
-    if len(r):
-        return float(np.min(r.t_start))
-    return now()
+    t_first = store.summary.t_first
+    return t_first if t_first is not None else now()
