@@ -12,7 +12,7 @@ from lightloom.sequencer.commands.dry_run import determination_json, determinati
 from lightloom.sequencer.lang.bench import Bench, load_bench
 from lightloom.sequencer.errors import BenchError
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.plan.purpose import plan_determination, protocol_determination
 from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
 
@@ -105,7 +105,7 @@ def driver_options_check(bench: Bench) -> None:
             raise BenchError(f"{path}: {exc.message}", file, line) from None
 
 
-def compile_check(protocol: Protocol, bench: Bench, plan: Plan) -> dict[str, Any]:
+def compile_check(protocol: Protocol, bench: Bench, plan: StepList) -> dict[str, Any]:
     """The compiled plan's size; moves outside the travel limits are a BenchError (exit status 2)."""
     violations = list(plan.violations)
     if violations:

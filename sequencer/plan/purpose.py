@@ -7,7 +7,7 @@ from numpy.typing import NDArray
 
 from lightloom.sequencer.errors import ProtocolError
 from lightloom.sequencer.lang.protocol import Protocol
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, AnalyzerModel, ConverterModel, PlateModel,
     PortModel, RotatorModel, port_operators,
@@ -19,7 +19,7 @@ from lightloom.sequencer.plan.compiler import TableModel
 FACTORS: tuple[str, str] = ("polarization", "spatial")
 
 
-def plan_operators(plan: Plan, table: TableModel) -> NDArray[np.complex128]:
+def plan_operators(plan: StepList, table: TableModel) -> NDArray[np.complex128]:
     """The per-port measurement operators (n, 4, 4) of the distinct settings of the plan's measure steps."""
     rows = [step.settings for step in plan.steps if step.kind == "measure"]
     if not rows:
@@ -28,7 +28,7 @@ def plan_operators(plan: Plan, table: TableModel) -> NDArray[np.complex128]:
     return port_operators(table.analyzer, table.ports, settings).reshape(-1, 4, 4)
 
 
-def plan_determination(protocol: Protocol, plan: Plan, table: TableModel) -> Determination:
+def plan_determination(protocol: Protocol, plan: StepList, table: TableModel) -> Determination:
     """What ``plan`` (``protocol`` compiled for ``table``) determines, from its per-port operators."""
     return determination(plan_operators(plan, table), FACTORS, protocol.analyzes, scan=_is_scan(protocol))
 
