@@ -31,9 +31,9 @@ from lightloom.sequencer.lang.fields import (
 from lightloom.sequencer.lang.fields import text as read_text
 from lightloom.sequencer.lang.yamlsafe import YMap, YNode, YScalar, YSeq, dump_plain, merge, parse_bytes, parse_text, to_plain
 
-KINDS: tuple[str, ...] = ("rotation_stage", "actuator", "shutter", "power_meter", "photon_counter")
-TRANSPORTS: tuple[str, ...] = ("sim", "visa", "serial")
-DETECTOR_KINDS: tuple[str, str] = ("power_meter", "photon_counter")
+KINDS: tuple[str, ...] = ("rotation_stage", "actuator", "shutter", "power_meter", "photon_counter", "camera")
+TRANSPORTS: tuple[str, ...] = ("sim", "visa", "serial", "opencv")
+DETECTOR_KINDS: tuple[str, ...] = ("power_meter", "photon_counter", "camera")
 STAGE_ROLES: tuple[str, ...] = ("quarter_wave_plate", "half_wave_plate", "converter_angle", "image_rotator")
 ROLE_NAMES: tuple[str, ...] = (
     "quarter_wave_plate",
@@ -59,6 +59,7 @@ _KIND_KEYS: Mapping[str, tuple[str, ...]] = MappingProxyType(
         "shutter": ("switch_s", "settle_s"),
         "power_meter": (),
         "photon_counter": (),
+        "camera": (),
     }
 )
 _TOP_KEYS = (
@@ -414,6 +415,9 @@ def _device(name: str, key_line: int, node: YNode, plugins: frozenset[str]) -> D
              f" visa.{kind}, serial.{kind} or an installed plugin driver"
              f" ({', '.join(sorted(plugins)) or 'none installed'})",
              driver_node)
+    if driver not in plugins and (family == "opencv") != (kind == "camera" and family != "sim"):
+        fail(f"{sec.name('driver')}: '{driver}' is not a driver; cameras use sim.camera, opencv.camera or"
+             " a plugin driver, and the opencv family has cameras only", driver_node)
     sec.check_keys(_COMMON_DEVICE_KEYS + _KIND_KEYS[kind])
 
     address = None
