@@ -88,11 +88,11 @@ def _hostile(path: Path, how: str) -> None:
             value = how.split()[1]
             a["format_version"] = float(value) if "." in value else int(value)
         elif how == "garbage steps":
-            del f["plan"]
-            f.create_dataset("plan", data="\x13garbage, not steps", dtype=h5py.string_dtype())
+            del f["steps"]
+            f.create_dataset("steps", data="\x13garbage, not steps", dtype=h5py.string_dtype())
         elif how == "steps as numbers":
-            del f["plan"]
-            f["plan"] = np.arange(7)
+            del f["steps"]
+            f["steps"] = np.arange(7)
         elif how.startswith("step index "):
             f["readings/step_index"][1] = int(how.split()[2])
         elif how == "status exploded":

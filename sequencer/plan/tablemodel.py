@@ -15,8 +15,9 @@ from lightloom.sequencer.plan.kinematics import StageKinematics
 from lightloom.sequencer.optics.analyzer import (
     ELEMENT_NAMES, AnalyzerModel, ConverterModel, PlateModel, PortModel, RotatorModel,
 )
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol
+from lightloom.sequencer.plan.purpose import plan_determination, require_purpose
 
 
 def analyzer_model(bench: Bench, truth: bool = False) -> AnalyzerModel:
@@ -112,17 +113,19 @@ def protocol_requests(protocol: Protocol) -> list[Request]:
     return out
 
 
-def compile_protocol(protocol: Protocol, bench: Bench) -> Plan:
+def compile_protocol(protocol: Protocol, bench: Bench) -> StepList:
     """Compile ``protocol`` for ``bench`` (pure). Errors point at the protocol line that asked.
 
     Raises
     ------
     BenchError
         ``PROTOCOL:LINE: ...`` when the bench cannot measure what a point asks for.
+    ProtocolError
+        At the ``determines:`` line when the bench cannot deliver what the protocol says it is for.
     """
     table = table_model(bench)
     try:
-        return compile_requests(
+        plan = compile_requests(
             table,
             protocol_requests(protocol),
             protocol_name=protocol.name,
@@ -148,3 +151,6 @@ def compile_protocol(protocol: Protocol, bench: Bench) -> Plan:
                 exc.line if exc.line is not None else 1,
             ) from None
         raise
+    if protocol.determines not in (None, "scan"):
+        require_purpose(protocol, plan_determination(protocol, plan, table), bench.name)
+    return plan

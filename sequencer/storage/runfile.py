@@ -14,7 +14,8 @@ journal_bytes (the journal offset up to which the file holds every record), writ
 
 - ``/protocol``, ``/bench``: scalar UTF-8 text (the protocol YAML, the resolved bench
   YAML), attributes name, sha256 (hex of the UTF-8 text), media_type.
-- ``/plan``: scalar UTF-8 JSON of the compiled steps, attributes steps_total, media_type.
+- ``/steps``: scalar UTF-8 JSON of the compiled step list, attributes steps_total, media_type
+  (older files name it ``/plan``; both are read).
 - ``/readings/``: step_index, pass_index, point_index, repeat_index, flags (n,) int64;
   kind (n,) HDF5 enum over uint8 {measure 0, background 1, reference 2};
   commanded, readback (n, E) float64 with element_names and per-element units;
@@ -154,7 +155,7 @@ def _write_header(f: h5py.File, header: RunHeader) -> None:
           name=header.protocol_name, sha256=header.protocol_sha256, media_type="application/yaml")
     _text(f, "bench", header.bench_text, "bench YAML, resolved (extends applied)",
           name=header.bench_name, sha256=header.bench_sha256, media_type="application/yaml")
-    _text(f, "plan", header.plan_json, "compiled steps of the run as JSON",
+    _text(f, "steps", header.steps_json, "compiled steps of the run as JSON",
           steps_total=header.steps_total, media_type="application/json")
     if header.target_state is not None:
         _dataset(f, "target_state", header.target_state,
@@ -183,7 +184,7 @@ def _write_readings(f: h5py.File, header: RunHeader, columns: dict[str, np.ndarr
     g.attrs["n_readings"] = len(columns["kind"])
     units = _strings([element_unit(name) for name in header.element_names])
     for name, description in (
-        ("step_index", "index of the compiled step (see /plan) this reading belongs to"),
+        ("step_index", "index of the compiled step (see /steps) this reading belongs to"),
         ("pass_index", "index of the outer pass (sweep) of the protocol"),
         ("point_index", "index of the analyzer setting within the pass"),
         ("repeat_index", "index of the repeat at this setting"),
@@ -308,7 +309,7 @@ def write_runfile(
     if updated_utc is None:
         updated_utc = utc_now_iso(time.time())
     columns = reading_columns(readings)
-    check_free_space(h5_path, _bytes_of(columns) + len(header.plan_json) + len(header.protocol_text)
+    check_free_space(h5_path, _bytes_of(columns) + len(header.steps_json) + len(header.protocol_text)
                      + len(header.bench_text))
     tmp = temp_path(h5_path)
     try:
@@ -469,12 +470,13 @@ def _read_header(f: h5py.File) -> RunHeader:
     if status not in RUN_STATUSES:
         raise _Malformed(f"attribute status is {_shown(status)}; expected one of {', '.join(RUN_STATUSES)}")
     target = f["target_state"][()] if "target_state" in f else None
-    plan = f["plan"]
-    if plan.shape != () or h5py.check_string_dtype(plan.dtype) is None:
-        raise _Malformed("/plan is not a text; expected the compiled steps as JSON")
-    plan_json = plan.asstr()[()]
-    if not plan_json.lstrip().startswith(("{", "[")):
-        raise _Malformed(f"/plan holds {_shown(plan_json)}; expected the compiled steps as JSON")
+    key = "steps" if "steps" in f else "plan"
+    steps = f[key]
+    if not isinstance(steps, h5py.Dataset) or steps.shape != () or h5py.check_string_dtype(steps.dtype) is None:
+        raise _Malformed(f"/{key} is not a text; expected the compiled steps as JSON")
+    steps_json = steps.asstr()[()]
+    if not steps_json.lstrip().startswith(("{", "[")):
+        raise _Malformed(f"/{key} holds {_shown(steps_json)}; expected the compiled steps as JSON")
     try:
         extra = json.loads(_str(a["extra_json"]))
     except json.JSONDecodeError as exc:
@@ -498,7 +500,7 @@ def _read_header(f: h5py.File) -> RunHeader:
             dimension=_whole(a, "dimension", 1, 64),
             basis_labels=_str_list(a["basis_labels"]),
             steps_total=_whole(a, "steps_total", 0),
-            plan_json=plan_json,
+            steps_json=steps_json,
             target_state=target,
             extra=extra,
             **({"run_id": _str(a["run_id"])} if "run_id" in a else {}),
