@@ -26,6 +26,8 @@ class StepsEstimate:
     travel_deg: dict[str, float]
     stage_seconds: dict[str, float]
     converter_switches: int
+    step_wait_seconds: tuple[float, ...] = ()
+    """Of each step's duration, the wait for its pass's start time (0 for most steps)."""
 
     @property
     def total_seconds(self) -> float:
@@ -41,6 +43,7 @@ def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
     apart.
     """
     times: list[float] = []
+    waits: list[float] = []
     motion = dwell = overhead = wait = 0.0
     travel = {ELEMENT_NAMES[i]: 0.0 for i in table.kinematics}
     stage_t = {ELEMENT_NAMES[i]: 0.0 for i in table.kinematics}
@@ -52,6 +55,7 @@ def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
     current_pass = -1
     for step in plan.steps:
         t = 0.0
+        w = 0.0
         if step.pass_index != current_pass:
             current_pass = step.pass_index
             pass_start_due = current_pass * plan.pass_interval_s
@@ -80,5 +84,6 @@ def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
         overhead += table.read_overhead_s
         prev = cur
         times.append(t)
+        waits.append(w)
         elapsed += t
-    return StepsEstimate(tuple(times), motion, dwell, wait, overhead, travel, stage_t, switches)
+    return StepsEstimate(tuple(times), motion, dwell, wait, overhead, travel, stage_t, switches, tuple(waits))

@@ -89,6 +89,8 @@ class RunMonitor(Protocol):
 
     def info(self, message: str) -> None: ...
 
+    def waiting(self, seconds: float, pass_number: int, passes: int) -> None: ...
+
 
 class SilentMonitor:
     """A monitor that shows nothing (tests, no terminal)."""
@@ -100,6 +102,9 @@ class SilentMonitor:
         pass
 
     def info(self, message: str) -> None:
+        pass
+
+    def waiting(self, seconds: float, pass_number: int, passes: int) -> None:
         pass
 
 
@@ -534,9 +539,20 @@ class Runner:
                 # Nobody needs the beam until the next pass: keep it blocked meanwhile.
                 self._set_shutter(False)
                 self.log("shutter closed while waiting for the next pass")
-            self.log(f"pass {step.pass_index + 1}: waiting {wait:.0f} s for its start time")
-            self._tell(self.monitor.info, f"waiting {wait:.0f} s for pass {step.pass_index + 1}")
+            number, passes = step.pass_index + 1, self.plan.passes
+            self.log(f"pass {number} of {passes}: waiting {hms(wait)} (h:mm:ss) for its start time")
+            waiting = getattr(self.monitor, "waiting", None)
+            if waiting is not None:
+                self._tell(waiting, wait, number, passes)
             self.sleep(wait)
+
+
+def hms(seconds: float) -> str:
+    """A duration as h:mm:ss (``0:00:22``, ``11:30:21``), rounded to the second; ``-:--:--`` if unknown."""
+    if not math.isfinite(seconds) or seconds < 0:
+        return "-:--:--"
+    s = int(round(seconds))
+    return f"{s // 3600}:{(s % 3600) // 60:02d}:{s % 60:02d}"
 
 
 def _done_mask(done: set[int] | np.ndarray, total: int) -> np.ndarray:

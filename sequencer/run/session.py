@@ -26,7 +26,7 @@ from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, Be
 from lightloom.sequencer.optics.states import BASIS_LABELS
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
-from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, _complete_product as _complete_ports
+from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, hms, _complete_product as _complete_ports
 from lightloom.sequencer.run.safety import LASER_SAFETY_CAUTION
 from lightloom.sequencer.model.records import FORMAT_VERSION, Event, RunHeader
 from lightloom.sequencer.storage.store import RunStore
@@ -323,13 +323,19 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
     log = RunLog(log_path_for(out_path))
     est = estimate_steps(plan, table)
     done = _as_mask(done, len(plan.steps))
-    left = float(np.sum(np.asarray(est.step_seconds)[~done]))
     n_done = int(np.count_nonzero(done))
+    from lightloom.sequencer.run.display import Schedule
+
+    work_s = np.asarray(est.step_seconds, float) - np.asarray(est.step_wait_seconds, float)
+    pass_index = np.fromiter((s.pass_index for s in plan.steps), dtype=np.int64, count=len(plan.steps))
+    run_start = _run_start(store, assembled.now)
+    schedule = Schedule.of(work_s, pass_index, done, plan.passes, run_start, plan.pass_interval_s)
+    left = schedule.seconds_left(assembled.now())
     monitor = None
     try:
         verb = "resume" if resumed else "start"
         log(f"{verb}: protocol {protocol.name} on bench {bench.name} -> {out_path} "
-            f"({len(plan.steps) - n_done} of {len(plan.steps)} steps to go, about {left:.0f} s)")
+            f"({len(plan.steps) - n_done} of {len(plan.steps)} steps to go, about {hms(left)} h:mm:ss)")
         store.event(Event(assembled.now(), verb, f"lightloom {__version__}; {n_done} of {len(plan.steps)} steps recorded before"))
         if not bench.is_simulated:
             sys.stderr.write(LASER_SAFETY_CAUTION)
@@ -344,18 +350,21 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             log(blind)
             _say(console, blind)
         _say(console, f"{'resuming' if resumed else 'running'} {protocol.name} on {bench.name}: "
-                      f"{len(plan.steps) - n_done} steps, about {left:.0f} s -> {out_path}")
+                      f"{len(plan.steps) - n_done} steps, about {hms(left)} (h:mm:ss) -> {out_path}")
         runner_kwargs = {}
         if live and console is not None:
             from lightloom.sequencer.run.display import TerminalMonitor
 
-            monitor = TerminalMonitor(console, f"lightloom {protocol.name} on {bench.name}", plan.port_names,
-                                      store.header.port_units, left)
+            monitor = TerminalMonitor(
+                console, f"lightloom {protocol.name} on {bench.name}", plan.port_names,
+                store.header.port_units, schedule, steps_done=n_done, steps_total=len(plan.steps),
+                passes=plan.passes, work_s=work_s, now=assembled.now,
+            )
             monitor.__enter__()
             runner_kwargs["monitor"] = monitor
         runner = Runner(plan, table, assembled.rig, store, policy_for(bench), now=assembled.now,
                         sleep=assembled.sleep, wall=time.monotonic, log=log, units=store.header.port_units,
-                        run_start=_run_start(store, assembled.now),
+                        run_start=run_start,
                         parallel_reads=not (bench.is_simulated and bench.simulation.time_scale == 0),
                         **runner_kwargs)
         runner._beam.baseline = _initial_beam_level(store, table)
