@@ -143,6 +143,7 @@ def compile_requests(
     keys: list[tuple] = []
     entries: list[tuple] = []  # ("elements", settings, label) or ("targets", pol part, spatial part, point)
     logical: list[int] = []
+    points: list[int] = []  # per entry: the protocol points it is the first setting of (for background.every_points)
 
     def factor_parts(req_part, reg: _FactorRegistry, expand: bool, kets: Mapping[str, np.ndarray], names: tuple[str, str]):
         if req_part is not None:
@@ -160,10 +161,13 @@ def compile_requests(
                 keys.append(key)
                 entries.append(("elements", s, _explicit_label(req.elements)))
                 logical.append((max(logical) + 1) if logical else 0)
+                points.append(0)
+            points[keys.index(key)] += 1
             continue
         pol_parts = factor_parts(req.polarization, pol_reg, expand_pol, POLARIZATION_KETS, ("H", "V"))
         sp_parts = factor_parts(req.spatial, sp_reg, expand_sp, SPATIAL_KETS, ("h", "v"))
         logical_index = None
+        credited = False
         for pp in pol_parts:
             for spp in sp_parts:
                 key = (
@@ -172,12 +176,17 @@ def compile_requests(
                     spp[0] if (spp is not None and merge_sp) else spp,
                 )
                 if key in keys:
+                    if not credited:
+                        points[keys.index(key)] += 1
+                        credited = True
                     continue
                 if logical_index is None:
                     logical_index = (max(logical) + 1) if logical else 0
                 keys.append(key)
                 entries.append(("targets", pp, spp, r_index, req.line))
                 logical.append(logical_index)
+                points.append(0 if credited else 1)
+                credited = True
     if not entries:
         raise ProtocolError(f"protocol '{protocol_name}' asks for no measurement")
     # Every setting with the alternatives that measure the same projectors (a merged basis may be
@@ -215,7 +224,7 @@ def compile_requests(
         dwell_s, repeats, background_every, background_at_start, background_at_end,
         background_dwell_s if background_dwell_s is not None else dwell_s,
         reference_every, reference_dwell_s if reference_dwell_s is not None else dwell_s,
-        passes, pass_interval_s, order, ref_settings, ref_labels, logical[ref_index],
+        passes, pass_interval_s, order, ref_settings, ref_labels, logical[ref_index], points,
     )
 
 
@@ -315,13 +324,13 @@ def _setting_label(port_labels: tuple[str, ...]) -> str:
 def _expand_steps(
     table, protocol_name, settings, key_labels, logical, order_idx, analyzes, dwell_s, repeats,
     bg_every, bg_start, bg_end, bg_dwell, ref_every, ref_dwell, passes, pass_interval_s, order,
-    ref_settings, ref_labels, ref_point,
+    ref_settings, ref_labels, ref_point, points,
 ) -> StepList:
     per_pass = len(order_idx) * repeats
     if ref_every > 0:
         per_pass += 2 + len(order_idx) // ref_every
     if bg_every > 0:
-        per_pass += len(order_idx) // bg_every
+        per_pass += sum(points) // bg_every + 1
     if passes * per_pass > MAX_STEPS:
         raise ProtocolError(
             f"the plan would have about {passes * per_pass} steps, more than {MAX_STEPS}; lower repeats "
@@ -351,6 +360,7 @@ def _expand_steps(
                           tuple(float(x) for x in s), float(dwell), label, tuple(port_labels)))
 
     n_ports = len(table.ports)
+    points_seen, next_background = 0, bg_every
     for p in range(passes):
         sequence = list(order_idx) if p % 2 == 0 else list(reversed(order_idx))
         if bg_start and p == 0:
@@ -364,8 +374,15 @@ def _expand_steps(
                 add("measure", p, logical[k], r, s, dwell_s, label, key_labels[k])
             if ref_every > 0 and count % ref_every == 0 and count < len(sequence):
                 add("reference", p, ref_point, 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
-            if bg_every > 0 and count % bg_every == 0 and count < len(sequence):
-                add("background", p, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
+            # background.every_points counts protocol points through the whole run: a setting
+            # that measures several points advances the count by all of them, and a background
+            # due at the end of a pass is taken there (unless the run's last one follows anyway).
+            points_seen += points[k]
+            if bg_every > 0 and points_seen >= next_background:
+                next_background = (points_seen // bg_every + 1) * bg_every
+                last = p == passes - 1 and count == len(sequence)
+                if not (last and bg_end):
+                    add("background", p, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
         if ref_every > 0:
             add("reference", p, ref_point, 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
     if bg_end:
