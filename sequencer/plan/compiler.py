@@ -329,11 +329,12 @@ def _expand_steps(
     per_pass = len(order_idx) * repeats
     if ref_every > 0:
         per_pass += 2 + len(order_idx) // ref_every
+    total = passes * per_pass + 2
     if bg_every > 0:
-        per_pass += sum(points) // bg_every + 1
-    if passes * per_pass > MAX_STEPS:
+        total += passes * sum(points) // bg_every
+    if total > MAX_STEPS:
         raise ProtocolError(
-            f"the plan would have about {passes * per_pass} steps, more than {MAX_STEPS}; lower repeats "
+            f"the plan would have about {total} steps, more than {MAX_STEPS}; lower repeats "
             "or sweep.passes, or split the series into several runs"
         )
     steps: list[Step] = []
