@@ -264,7 +264,7 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
         header = store.header
         protocol, bench = _recover_inputs(header)
         plan = compile_protocol(protocol, bench)
-        if plan.to_json() != header.steps_json:
+        if not _same_steps(plan, header.steps_json):
             raise UsageError(
                 f"{out_path}: the protocol and bench compile to a different plan than the one stored "
                 f"(stored by lightloom {header.tool_version}, this is {__version__}); resume it with the "
@@ -279,6 +279,17 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
     if store.bytes_cut:
         _say(console, f"cut a torn journal tail of {store.bytes_cut} bytes (a reading that was never reported)")
     return _execute(protocol, bench, plan, assembled, store, out_path, done, console, live, resumed=True)
+
+
+def _same_steps(plan: StepList, stored_json: str) -> bool:
+    """True if ``plan`` is the step list stored (compact form, or the verbose one of older runs)."""
+    text = plan.to_json()
+    if text == stored_json:
+        return True
+    try:
+        return StepList.from_json(stored_json).to_json() == text
+    except (ValueError, KeyError, TypeError):
+        return False
 
 
 def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
@@ -327,7 +338,7 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
     from lightloom.sequencer.run.display import Schedule
 
     work_s = np.asarray(est.step_seconds, float) - np.asarray(est.step_wait_seconds, float)
-    pass_index = np.fromiter((s.pass_index for s in plan.steps), dtype=np.int64, count=len(plan.steps))
+    pass_index = plan.columns.pass_index.astype(np.int64)
     run_start = _run_start(store, assembled.now)
     schedule = Schedule.of(work_s, pass_index, done, plan.passes, run_start, plan.pass_interval_s)
     left = schedule.seconds_left(assembled.now())

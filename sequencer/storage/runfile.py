@@ -56,6 +56,7 @@ from lightloom.sequencer.errors import StorageError
 
 from lightloom.sequencer.storage.atomic import publish, sync_path, temp_path
 from lightloom.sequencer.storage.errors import RunFileBusyError, StorageWriteError
+from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.model.records import (
     EVENT_KINDS, FLAG_NAMES, FORMAT_VERSION, READING_KINDS, RUN_STATUSES, Event, Reading,
     ReadingTable, RunData, RunHeader, element_unit,
@@ -129,6 +130,31 @@ def _extend(ds: h5py.Dataset, start: int, data: np.ndarray) -> None:
         ds[start:end] = data
 
 
+def _write_step_columns(f: h5py.File, steps_json: str) -> None:
+    """The compiled steps as typed columns, for any HDF5 tool (written once, at creation)."""
+    try:
+        steps = StepList.from_json(steps_json)
+    except (ValueError, KeyError, TypeError):
+        return  # not a step list this version can read: the text in /steps is kept as it is
+    c = steps.columns
+    g = f.create_group("step_columns")
+    g.attrs["description"] = "the compiled steps as columns: row i is step i (readings/step_index)"
+    g.attrs["labels"] = _strings(c.labels)
+    g.attrs["port_label_sets"] = json.dumps([list(p) for p in c.port_label_sets], ensure_ascii=False)
+    kind = g.create_dataset("kind", data=c.kind, dtype=_READING_KIND_TYPE)
+    kind.attrs["description"] = "measure, background (shutter closed) or reference"
+    for name, description in (
+        ("pass_index", "outer pass (sweep)"), ("point_index", "analyzer setting within the pass"),
+        ("repeat_index", "repeat at this setting"),
+        ("label", "index into the attribute labels: the setting's short name"),
+        ("port_labels", "index into the attribute port_label_sets: what each port measures"),
+    ):
+        _dataset(g, name, getattr(c, name), description)
+    _dataset(g, "settings", c.settings, "commanded element settings (NaN where unused)",
+             element_names=_strings(steps.element_names))
+    _dataset(g, "dwell_s", c.dwell_s, "integration time", units="s")
+
+
 def _write_header(f: h5py.File, header: RunHeader) -> None:
     a = f.attrs
     a["description"] = (
@@ -157,6 +183,7 @@ def _write_header(f: h5py.File, header: RunHeader) -> None:
           name=header.bench_name, sha256=header.bench_sha256, media_type="application/yaml")
     _text(f, "steps", header.steps_json, "compiled steps of the run as JSON",
           steps_total=header.steps_total, media_type="application/json")
+    _write_step_columns(f, header.steps_json)
     if header.target_state is not None:
         _dataset(f, "target_state", header.target_state,
                  "target density matrix given by the protocol (for fidelity)",
