@@ -51,18 +51,37 @@ def served_bench_text(bench, addresses, transport: str) -> str:
         f"The simulated instruments of bench '{bench.name}' served on 127.0.0.1 by `lightloom sim serve`; "
         f"the real {transport} drivers talk to them"
     )
-    for name, dev in data["devices"].items():
-        kind = dev["driver"].split(".", 1)[1]
-        dev["driver"] = f"{transport}.{kind}"
+    for name, dev in list(data["devices"].items()):
+        kind = dev.pop("driver").split(".", 1)[1]
         a = addresses[name]
-        dev["address"] = a.visa_address if transport == "visa" else a.serial_url
-        options = {"read_termination": "\n", "write_termination": "\n", "timeout_s": 2.0}
-        dev["options"] = options
+        dev.pop("address", None)
+        dev.pop("options", None)
+        # Driver, address and options first, as a person reads a device entry.
+        data["devices"][name] = {
+            "driver": f"{transport}.{kind}",
+            "address": a.visa_address if transport == "visa" else a.serial_url,
+            "options": {"read_termination": "\n", "write_termination": "\n", "timeout_s": 2.0},
+            **dev,
+        }
     header = (
         f"{SERVED_HEADER}: the instruments below are simulated and listen on 127.0.0.1\n"
         "# only while the server runs. Running a protocol on this bench goes through the real drivers.\n"
     )
-    return header + yaml.safe_dump(data, sort_keys=False)
+    return header + yaml.dump(data, Dumper=TemplateDumper, sort_keys=False, width=120)
+
+
+class TemplateDumper(yaml.SafeDumper):
+    """A safe YAML writer that spells strings holding control characters ("\\n", "\\r\\n") as
+    double-quoted escapes on one line, as a person writes them in a bench."""
+
+
+def _represent_text(dumper: yaml.SafeDumper, text: str) -> yaml.ScalarNode:
+    if any(ch in text for ch in "\r\n\t"):
+        return dumper.represent_scalar("tag:yaml.org,2002:str", text, style='"')
+    return dumper.represent_str(text)
+
+
+TemplateDumper.add_representer(str, _represent_text)
 
 
 def run(args: argparse.Namespace) -> int:

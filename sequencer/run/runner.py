@@ -72,6 +72,7 @@ class RunPolicy:
     retry_attempts: int = 4
     backoff_s: float = 0.1
     max_backoff_s: float = 5.0
+    shutter_close_s: float = 60.0
     beam_loss_fraction: float = 0.3
     beam_wait_s: float = 900.0
     beam_poll_s: float = 5.0
@@ -172,25 +173,46 @@ class Runner:
 
     # ------------------------------------------------------------------ safety
     def close_shutter_safely(self) -> bool:
-        """Close the shutter, retrying and reconnecting; True if the shutter reports closed."""
-        for attempt in range(max(3, self.policy.retry_attempts)):
+        """Close the shutter, retrying with back-off and a reconnect; True once it reads back closed.
+
+        Attempts go on for ``policy.shutter_close_s`` (bench ``retry.shutter_close_s``, 60 s by
+        default) on the run's clock, pausing ``backoff_s``, doubling up to ``max_backoff_s``,
+        between attempts, so a controller that restarts or a rack that comes back within that time
+        still receives the close. Only then does the caller warn to block the beam by hand.
+        """
+        deadline = self.now() + self.policy.shutter_close_s
+        delay = self.policy.backoff_s
+        attempt = 0
+        reconnect = False
+        while True:
+            attempt += 1
             try:
+                if reconnect:
+                    self.rig.shutter.reconnect()
                 self.rig.shutter.close_beam()
                 self._shutter_open = False
                 if not self.rig.shutter.is_open():
+                    if attempt > 1:
+                        self.log(f"shutter closed at attempt {attempt}")
                     return True
-            except InstrumentError as exc:
-                self.log(f"closing the shutter failed ({exc}); retrying")
-                try:
-                    self.rig.shutter.reconnect()
-                except InstrumentError:
-                    pass
+                self.log("the shutter still reads back open after the close command; retrying")
             except Exception as exc:  # the shutter must be tried again whatever went wrong
-                self.log(f"closing the shutter failed ({exc!r}); retrying")
+                self.log(f"closing the shutter failed at attempt {attempt} ({exc}); retrying")
             except (KeyboardInterrupt, StopRequested):
                 # A second Ctrl-C or SIGTERM while stopping: the run stops anyway, the shutter first.
                 self.log("stop requested again while closing the shutter; closing it first")
-        return False
+            reconnect = True
+            left = deadline - self.now()
+            if left <= 0:
+                self.log(f"gave up closing the shutter after {attempt} attempts over "
+                         f"{self.policy.shutter_close_s:g} s")
+                return False
+            pause = min(max(delay, 1e-3), left)
+            delay = min(max(2.0 * delay, 1e-3), self.policy.max_backoff_s)
+            try:
+                self.sleep(pause)
+            except (KeyboardInterrupt, StopRequested):
+                self.log("stop requested again while closing the shutter; closing it first")
 
     # ------------------------------------------------------------------ retries
     def _call(self, device: Device, what: str, fn: Callable[[], T]) -> T:

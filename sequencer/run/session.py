@@ -157,6 +157,7 @@ def policy_for(bench: Bench) -> RunPolicy:
     th, rt = bench.thresholds, bench.retry
     return RunPolicy(
         retry_attempts=rt.attempts, backoff_s=rt.backoff_s, max_backoff_s=rt.max_backoff_s,
+        shutter_close_s=rt.shutter_close_s,
         beam_loss_fraction=th.beam_loss_fraction, beam_wait_s=th.beam_wait_s,
         beam_poll_s=min(5.0, max(0.05, th.beam_wait_s / 20.0)), drift_fraction=th.drift_fraction,
     )
