@@ -136,6 +136,7 @@ class Runner:
         units: str = "W",
         run_start: float | None = None,
         parallel_reads: bool = True,
+        begin_reading: Callable[[int], None] | None = None,
     ) -> None:
         self.plan = plan
         self.table = table
@@ -152,6 +153,9 @@ class Runner:
         # Detectors integrate at once on real (or scaled-time) tables; on an instant simulated
         # table they are read one after the other so that the same seed gives the same readings.
         self.parallel_reads = parallel_reads
+        # Told the index of each step just before its detectors are read (a simulated table
+        # derives that reading's noise from it, so a resumed run reads what an uninterrupted one would).
+        self.begin_reading = begin_reading
         self._beam = _BeamWatch()
         self._positions: dict[int, float] = {}
         self._converter_state: str | None = None
@@ -416,6 +420,8 @@ class Runner:
             self._set_shutter(step.shutter_open)
             self._move(step.settings)
             readback = self._readback(step.settings)
+            if self.begin_reading is not None:
+                self.begin_reading(step.index)
             t_start = self.now()
             values, ref = self._read_all(step.dwell_s) if readback is not None else (None, math.nan)
             t_end = self.now()
