@@ -19,6 +19,7 @@ VERBS: dict[str, str] = {
     "analyze": "analyze",
     "calibrate": "calibrate",
     "sim": "sim",
+    "probe": "probe",
     "demo": "demo",
 }
 

@@ -17,7 +17,7 @@ from typing import Callable, Protocol, Sequence, TypeVar
 import numpy as np
 
 from lightloom.drivers.errors import InstrumentError
-from lightloom.drivers.retry import call_with_retry
+from lightloom.drivers.retry import call_with_retry, close_shutter_within
 from lightloom.drivers.interfaces import Device, DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
 from lightloom.sequencer.plan.compiler import TableModel
 from lightloom.sequencer.errors import RunFault
@@ -181,42 +181,16 @@ class Runner:
 
         Attempts go on for ``policy.shutter_close_s`` (bench ``retry.shutter_close_s``, 60 s by
         default) on the run's clock, pausing ``backoff_s``, doubling up to ``max_backoff_s``,
-        between attempts, so a controller that restarts or a rack that comes back within that time
-        still receives the close. Only then does the caller warn to block the beam by hand.
+        between attempts (drivers.retry.close_shutter_within), so a controller that restarts or a
+        rack that comes back within that time still receives the close. Only then does the caller
+        warn to block the beam by hand.
         """
-        deadline = self.now() + self.policy.shutter_close_s
-        delay = self.policy.backoff_s
-        attempt = 0
-        reconnect = False
-        while True:
-            attempt += 1
-            try:
-                if reconnect:
-                    self.rig.shutter.reconnect()
-                self.rig.shutter.close_beam()
-                self._shutter_open = False
-                if not self.rig.shutter.is_open():
-                    if attempt > 1:
-                        self.log(f"shutter closed at attempt {attempt}")
-                    return True
-                self.log("the shutter still reads back open after the close command; retrying")
-            except Exception as exc:  # the shutter must be tried again whatever went wrong
-                self.log(f"closing the shutter failed at attempt {attempt} ({exc}); retrying")
-            except (KeyboardInterrupt, StopRequested):
-                # A second Ctrl-C or SIGTERM while stopping: the run stops anyway, the shutter first.
-                self.log("stop requested again while closing the shutter; closing it first")
-            reconnect = True
-            left = deadline - self.now()
-            if left <= 0:
-                self.log(f"gave up closing the shutter after {attempt} attempts over "
-                         f"{self.policy.shutter_close_s:g} s")
-                return False
-            pause = min(max(delay, 1e-3), left)
-            delay = min(max(2.0 * delay, 1e-3), self.policy.max_backoff_s)
-            try:
-                self.sleep(pause)
-            except (KeyboardInterrupt, StopRequested):
-                self.log("stop requested again while closing the shutter; closing it first")
+        closed = close_shutter_within(
+            self.rig.shutter, self.policy.shutter_close_s, backoff_s=self.policy.backoff_s,
+            max_backoff_s=self.policy.max_backoff_s, now=self.now, sleep=self.sleep, log=self.log,
+        )
+        self._shutter_open = False if closed else None
+        return closed
 
     # ------------------------------------------------------------------ retries
     def _call(self, device: Device, what: str, fn: Callable[[], T]) -> T:
