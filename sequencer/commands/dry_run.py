@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 
 from rich.console import Console
 from rich.table import Table
@@ -21,7 +20,6 @@ def add_parser(sub) -> None:
 
 def run(args: argparse.Namespace) -> int:
     from lightloom.sequencer.lang.bench import load_bench
-    from lightloom.sequencer.optics.analyzer import CONVERTER
     from lightloom.sequencer.lang.protocol import load_protocol
     from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
     from lightloom.sequencer.plan.timing import estimate_steps
@@ -50,7 +48,7 @@ def run(args: argparse.Namespace) -> int:
                 {
                     "index": s.index, "kind": s.kind, "pass": s.pass_index, "point": s.point_index,
                     "repeat": s.repeat_index, "label": s.label, "port_labels": list(s.port_labels),
-                    "settings": {n: (None if math.isnan(v) else v) for n, v in zip(plan.element_names, s.settings)},
+                    "settings": dict(zip(plan.element_names, s.settings.as_list())),
                     "dwell_s": s.dwell_s, "seconds": round(t, 4),
                 }
                 for s, t in zip(plan.steps, est.step_seconds)
@@ -66,14 +64,12 @@ def run(args: argparse.Namespace) -> int:
         t.add_column(col, justify="right" if col not in ("kind", "setting") else "left", no_wrap=True)
     shown = plan.steps if args.all else plan.steps[:60]
     for s, dt in zip(shown, est.step_seconds):
-        vals = []
-        for i, v in enumerate(s.settings):
-            if math.isnan(v):
-                vals.append("-")
-            elif i == CONVERTER:
-                vals.append("in" if v == 1.0 else "out")
-            else:
-                vals.append(f"{v:.2f}")
+        angles = s.settings.stage_angles()
+        vals = [
+            (s.settings.mode_converter or "-") if n == "mode_converter"
+            else (f"{angles[n]:.2f}" if n in angles else "-")
+            for n in plan.element_names
+        ]
         t.add_row(str(s.index), s.kind, s.label, *vals, f"{dt:.2f}")
     console.print(t)
     if len(shown) < len(plan.steps):
