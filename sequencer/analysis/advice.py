@@ -113,24 +113,12 @@ def procrustes(n: ArrayLike) -> tuple[Real, Real]:
 
 
 def procrustes_value(n: ArrayLike) -> Real:
-    """max of tr(O N) over proper rotations, without the argmax: s1 + s2 + sign(det N) s3 with the
-    singular values from the eigenvalues of N^T N in closed form (trigonometric solution of the
-    cubic; Smith, Commun. ACM 4, 168 (1961), from memory). Accurate to ~1e-8, for searches."""
+    """max of tr(O N) over proper rotations, without the argmax: s1 + s2 + sign(det N) s3 (singular
+    values s1 >= s2 >= s3), for searches that need only the value."""
     a = np.asarray(n, dtype=float)
-    m = np.swapaxes(a, -1, -2) @ a
-    q = np.trace(m, axis1=-2, axis2=-1) / 3.0
-    off = m[..., 0, 1] ** 2 + m[..., 0, 2] ** 2 + m[..., 1, 2] ** 2
-    p2 = (m[..., 0, 0] - q) ** 2 + (m[..., 1, 1] - q) ** 2 + (m[..., 2, 2] - q) ** 2 + 2.0 * off
-    p = np.sqrt(p2 / 6.0)
-    safe = np.where(p > 1e-300, p, 1.0)
-    b = (m - q[..., None, None] * np.eye(3)) / safe[..., None, None]
-    r = np.clip(np.linalg.det(b) / 2.0, -1.0, 1.0)
-    phi = np.arccos(r) / 3.0
-    l1 = q + 2.0 * p * np.cos(phi)
-    l3 = q + 2.0 * p * np.cos(phi + 2.0 * np.pi / 3.0)
-    l2 = 3.0 * q - l1 - l3
-    sv = np.sqrt(np.clip(np.stack([l1, l2, l3], -1), 0.0, None))
-    return sv[..., 0] + sv[..., 1] + np.sign(np.linalg.det(a)) * sv[..., 2]
+    sv = np.linalg.svd(a, compute_uv=False)
+    sign = np.where(np.linalg.det(a) < 0, -1.0, 1.0)
+    return sv[..., 0] + sv[..., 1] + sign * sv[..., 2]
 
 
 def _hat(o: Real) -> Real:
@@ -272,9 +260,10 @@ def best_local(rho: ArrayLike, target: ArrayLike, rng: np.random.Generator | Non
             how = (f"alternating Procrustes from {STARTS + 1} starts; upper bound: branch and bound over the "
                    f"spatial rotation modulo the target's symmetry ({evals} evaluations)")
         if bb_value > value + 1e-12:  # the starts missed the optimum: take the searched one
-            value = bb_value
-            best_os = _coset_rotations(base, bb_x[None])[0]
-            best_op = _best_polarization(r, t, best_os[None])[0][0]
+            os_bb = _coset_rotations(base, bb_x[None])[0]
+            op_bb, v_bb = _best_polarization(r, t, os_bb[None])
+            if float(v_bb[0]) > value:
+                value, best_os, best_op = float(v_bb[0]), os_bb, op_bb[0]
     return LocalOptimum(value, unitary_of(best_op), unitary_of(best_os), max(bound, value), how)
 
 
@@ -425,8 +414,14 @@ def advise(rho: ArrayLike, target: ArrayLike, *, converter_axis_deg: float | Non
             found.append((choice, v, np.zeros(0), v, 1))
             break
         floor = max((f[1] for f in found), default=-np.inf)
-        found.append((choice, *branch_and_bound(g, periods, LIPSCHITZ_PER_RAD, tol, MAX_EVALUATIONS, floor,
-                                                 enough=local.value - SIMPLER_WITHIN)))
+        value, x, ub, evals = branch_and_bound(g, periods, LIPSCHITZ_PER_RAD, tol, MAX_EVALUATIONS, floor,
+                                               enough=local.value - SIMPLER_WITHIN)
+        if len(x):  # polish the best cell's centre to the exact local maximum
+            res = minimize(lambda a, g=g: -float(g(a[None, :])[0]), x, method="Nelder-Mead",
+                           options={"xatol": 1e-10, "fatol": 1e-15, "maxiter": 2000})
+            if -res.fun > value:
+                value, x = float(-res.fun), np.mod(res.x, np.asarray(periods))
+        found.append((choice, value, x, max(ub, value), evals))
     best_value = max(f[1] for f in found)
     choice, value, angles, _, _ = next(f for f in found if f[1] >= best_value - SIMPLER_WITHIN)
     if best_value >= local.value - SIMPLER_WITHIN:
@@ -435,7 +430,8 @@ def advise(rho: ArrayLike, target: ArrayLike, *, converter_axis_deg: float | Non
         bound = min(max(f[3] for f in found), local.upper_bound)
     evaluations = sum(f[4] for f in found)
     us = _spatial_unitaries(choice, angles[None, :], converter_axis_deg)[0]
-    op, _ = _best_polarization(r, t, rotation_of(us)[None])
+    op, exact = _best_polarization(r, t, rotation_of(us)[None])
+    value = float(exact[0])
     q1, h, q2 = polarization_angles(unitary_of(op[0]))
     col = 0
     conv_deg = None
@@ -453,8 +449,9 @@ def advise(rho: ArrayLike, target: ArrayLike, *, converter_axis_deg: float | Non
         raise AssertionError(f"advised settings reach {reached:.9f}, the optimisation said {value:.9f}")
     if c >= MAXIMALLY_ENTANGLED:
         search = "closed form: the polarization stack alone reaches the best local fidelity"
-    elif reached >= local.upper_bound - 1e-9:
-        search = "reaches the certified bound on any local unitary"
+    elif reached >= local.value - SIMPLER_WITHIN:
+        search = (f"the elements reach the best local fidelity, certified within "
+                  f"{max(local.upper_bound - local.value, 0.0):.1e} ({local.method})")
     else:
         search = (f"branch and bound over the spatial elements' angles (Lipschitz {LIPSCHITZ_PER_RAD:g} per rad, "
                   f"{evaluations} evaluations); the converter and rotator do not reach every SU(2)")
