@@ -32,7 +32,7 @@ from lightloom.sequencer.analysis.estimate import (
 from lightloom.sequencer.analysis.estimate import merit
 from lightloom.sequencer.optics.analyzer import complete_port_set
 from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS, partial_trace
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.model.records import RunData
 
 FACTOR_BASIS = {"polarization": ("H", "V"), "spatial": ("h", "v")}
@@ -178,7 +178,7 @@ def prepare(run: RunData, *, normalize: bool = False, operators: np.ndarray | No
     ops = ops_all[meas]
     f = drift[meas]
     steps = r.step_index[meas]
-    plan = Plan.from_json(h.plan_json)
+    plan = StepList.from_json(h.steps_json)
     labels_by_step = {s.index: s.port_labels for s in plan.steps}
     n, n_ports = values.shape
     corrections: dict[str, Any] = {"background": bg_info, "drift": drift_info}
