@@ -70,8 +70,9 @@ def test_advised_stack_brings_the_simulated_source_to_the_predicted_fidelity(mea
     assert abs(f2 - f) <= 3 * np.hypot(std, std2) + 1e-4
 
 
-def test_field_maps_of_the_measured_beam_match_the_field_of_the_true_source(measured: Path, capsys, tmp_path) -> None:
+def test_field_maps_and_portrait_of_the_measured_beam_match_the_true_source(measured: Path, capsys, tmp_path) -> None:
     doc = _json(capsys, ["analyze", str(measured), "--json", "--field-maps", "--plots", str(tmp_path / "figs")])
+    assert (tmp_path / "figs" / "portrait.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     maps = doc["field_maps"]
     x, y = np.meshgrid(maps["grid"]["x"], maps["grid"]["y"])
     truth = transverse.local_stokes(SOURCE, x, y)
@@ -81,7 +82,6 @@ def test_field_maps_of_the_measured_beam_match_the_field_of_the_true_source(meas
     got = np.array(maps["orientation_deg"], dtype=float)
     diff = np.mod(got - transverse.orientation_deg(truth) + 90.0, 180.0) - 90.0
     assert np.abs(diff[bright]).max() < 3.0
-    assert (tmp_path / "figs" / "portrait.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     for a in ("0", "45", "90", "135"):
         assert np.shape(maps["polarizer"][a]) == s0.shape
 
