@@ -418,9 +418,10 @@ def _measure_scan(sec: Section, analyzes: tuple[str, ...]) -> tuple[list[Measure
     start = sec.number("from_deg", "deg", ge=-MAX_ANGLE_DEG, le=MAX_ANGLE_DEG)
     stop = sec.number("to_deg", "deg", ge=-MAX_ANGLE_DEG, le=MAX_ANGLE_DEG)
     step = sec.number("step_deg", "deg", gt=0.0, le=2 * MAX_ANGLE_DEG)
-    count = int(math.floor(abs(stop - start) / step + 1e-9)) + 1
+    span_steps = abs(stop - start) / step  # inf for a step below the smallest float ratio
+    count = int(math.floor(span_steps + 1e-9)) + 1 if span_steps < MAX_POINTS else MAX_POINTS + 1
     if count > MAX_POINTS:
-        fail(f"{sec.name('step_deg')}: the scan has {count} points, more than {MAX_POINTS}; use a larger step",
+        fail(f"{sec.name('step_deg')}: the scan has more than {MAX_POINTS} points; use a larger step",
              sec.node.entry("step_deg").value)  # type: ignore[union-attr]
     fixed: dict[str, float | str] = {}
     if sec.has("fixed"):
