@@ -285,11 +285,12 @@ def factor_target(node: YNode, factor: str, what: str) -> FactorTarget:
                 s_node,
             )
         ket = ket_from_stokes(s / length)
-        label = "stokes(" + ",".join(_written(item) for item in expect_seq(s_node, "stokes").items) + ")"
+        # Labels join factors with "," and bases with "/", so the components are separated by spaces.
+        label = "s(" + " ".join(_written(item) for item in expect_seq(s_node, "stokes").items) + ")"
     else:
         k_node = sec.require("ket", "[a, b]")
         ket = np.array(normalized_ket(k_node, sec.name("ket"), 2))
-        label = "ket(" + ",".join(_written(item) for item in expect_seq(k_node, "ket").items) + ")"
+        label = "ket(" + " ".join(_written(item) for item in expect_seq(k_node, "ket").items) + ")"
     if sec.has("label"):
         label = sec.text("label")
     return FactorTarget(factor, label, (complex(ket[0]), complex(ket[1])))
