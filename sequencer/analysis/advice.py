@@ -34,7 +34,7 @@ spread(G)/2 for a projector P), which certifies the optimum to a stated toleranc
 from __future__ import annotations
 
 import itertools
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -43,7 +43,9 @@ from scipy.spatial.transform import Rotation
 
 from lightloom.sequencer.analysis.estimate.merit import fully_entangled_fraction
 from lightloom.sequencer.errors import OpticsError
-from lightloom.sequencer.optics.correction import StackSettings, polarization_angles, spatial_stack, stack_unitary
+from lightloom.sequencer.optics.correction import (
+    StackSettings, polarization_angles, polarization_stack, spatial_stack, stack_unitary,
+)
 from lightloom.sequencer.optics.states import as_density, normalize_ket
 from lightloom.sequencer.optics.stokes import PAULI
 
@@ -372,7 +374,8 @@ class Advice:
     spatial_universal: bool = False
 
 
-def _choices(converter_axis_deg: float | None) -> list[SpatialChoice]:
+def _choices() -> list[SpatialChoice]:
+    """Ways of using the spatial elements, simplest first (fewest elements in the beam)."""
     return [
         SpatialChoice("none", False, False),
         SpatialChoice("rotator", False, True),
@@ -401,7 +404,7 @@ def advise(rho: ArrayLike, target: ArrayLike, *, converter_axis_deg: float | Non
     local = best_local(rho4, tket, rng, tol)
     c = concurrence_of_ket(tket)
     found: list[tuple[SpatialChoice, float, Real, float, int]] = []
-    for choice in _choices(converter_axis_deg):
+    for choice in _choices():
         if found and max(f[1] for f in found) >= local.value - SIMPLER_WITHIN:
             break  # a simpler use of the elements already reaches the best local fidelity
         def g(angles: Real, choice: SpatialChoice = choice) -> Real:
@@ -455,6 +458,10 @@ def advise(rho: ArrayLike, target: ArrayLike, *, converter_axis_deg: float | Non
     else:
         search = (f"branch and bound over the spatial elements' angles (Lipschitz {LIPSCHITZ_PER_RAD:g} per rad, "
                   f"{evaluations} evaluations); the converter and rotator do not reach every SU(2)")
+    if reached > local.value:
+        # the stack's transformation is itself local: the search over any local unitary fell short
+        local = replace(local, value=reached, polarization=polarization_stack(q1, h, q2),
+                        spatial=spatial_stack(conv_deg, rot_deg), upper_bound=max(local.upper_bound, reached))
     best_u = np.kron(local.polarization, local.spatial)
     return Advice(
         settings=settings, fidelity=reached, fidelity_upper_bound=max(bound, reached), search=search,

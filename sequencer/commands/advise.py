@@ -8,8 +8,6 @@ import argparse
 import json
 from pathlib import Path
 
-import numpy as np
-
 # Within this of the best local fidelity, the remaining error is the source's, not the settings'.
 SETTINGS_MATCH = 1e-6
 
@@ -39,7 +37,7 @@ def add_parser(sub) -> None:
     p.set_defaults(handler=run)
 
 
-def parse_state(text: str, what: str) -> tuple[np.ndarray, str]:
+def parse_state(text: str, what: str):
     """A 4-ket from a name (joint mode or product ``P,s``) or four comma-separated amplitudes.
 
     Raises
@@ -47,6 +45,8 @@ def parse_state(text: str, what: str) -> tuple[np.ndarray, str]:
     UsageError
         With the names and the format expected.
     """
+    import numpy as np
+
     from lightloom.sequencer.errors import UsageError
     from lightloom.sequencer.optics.states import (
         JOINT_KETS, POLARIZATION_KETS, SPATIAL_KETS, normalize_ket, parse_complex,
@@ -74,6 +74,8 @@ def _fmt_vs(value: float, std: float | None) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
+    import numpy as np
+
     from lightloom.sequencer.analysis.advice import advise, pulled_back_target
     from lightloom.sequencer.errors import UsageError
 
@@ -134,6 +136,8 @@ def run(args: argparse.Namespace) -> int:
 def _measured(args: argparse.Namespace):
     """The maximum-likelihood 4x4 state of the run, and a function giving the bootstrap std of the
     fidelity to any (pulled-back) target density matrix."""
+    import numpy as np
+
     from lightloom.sequencer.analysis.pipeline import AnalysisError, estimate, prepare
     from lightloom.sequencer.errors import UsageError
     from lightloom.sequencer.storage.store import load_run
@@ -150,7 +154,7 @@ def _measured(args: argparse.Namespace):
     except AnalysisError as exc:
         raise UsageError(f"{args.source}: {exc}") from None
 
-    def std_of_fidelity_to(target_rho: np.ndarray) -> float:
+    def std_of_fidelity_to(target_rho) -> float:
         # Same seed for every call: the same replicates, so the stds are comparable.
         est = estimate(prep, target=target_rho, rng=np.random.default_rng(args.seed), n_bootstrap=args.bootstrap)
         return float(est.figures["fidelity"][1])
