@@ -32,6 +32,8 @@ def add_parser(sub) -> None:
     p.add_argument("--json", action="store_true", help="print the result as JSON")
     p.add_argument("--converter-axis", type=float, metavar="DEG", default=None,
                    help="the mode converter is mounted at this fixed axis angle (default: a stage turns it)")
+    p.add_argument("--tolerance", type=float, default=1e-3, metavar="F",
+                   help="certify the optimum to within this fidelity where no closed form exists (default 1e-3)")
     p.add_argument("--bootstrap", type=int, default=200, metavar="N", help="bootstrap resamples (default 200)")
     p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
     p.set_defaults(handler=run)
@@ -83,6 +85,8 @@ def run(args: argparse.Namespace) -> int:
         raise UsageError("--bootstrap needs at least 2 resamples")
     if args.converter_axis is not None and not np.isfinite(args.converter_axis):
         raise UsageError("--converter-axis: expected a finite angle in degrees")
+    if not (np.isfinite(args.tolerance) and 1e-6 <= args.tolerance <= 0.1):
+        raise UsageError("--tolerance: expected a fidelity between 1e-6 and 0.1 (smaller takes longer)")
     target, target_label = parse_state(args.target, "--target")
     estimates = None
     if Path(args.source).suffix in (".h5", ".journal") or Path(args.source).exists():
@@ -92,7 +96,8 @@ def run(args: argparse.Namespace) -> int:
         ket, label = parse_state(args.source, "FILE_OR_STATE (not an existing run file)")
         rho = np.outer(ket, ket.conj())
         source = {"kind": "state", "state": label}
-    adv = advise(rho, target, converter_axis_deg=args.converter_axis, rng=np.random.default_rng(args.seed))
+    adv = advise(rho, target, converter_axis_deg=args.converter_axis, tol=args.tolerance,
+                 rng=np.random.default_rng(args.seed))
 
     std_fidelity = std_best = std_now = None
     if estimates is not None:
