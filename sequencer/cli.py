@@ -17,8 +17,10 @@ VERBS: dict[str, str] = {
     "run": "run",
     "resume": "resume",
     "analyze": "analyze",
+    "advise": "advise",
     "calibrate": "calibrate",
     "sim": "sim",
+    "probe": "probe",
     "demo": "demo",
 }
 

@@ -60,7 +60,7 @@ def test_the_verbose_step_list_of_earlier_versions_is_still_read():
         "order": plan.order, "violations": [],
         "steps": [{"index": s.index, "kind": s.kind, "pass_index": s.pass_index,
                    "point_index": s.point_index, "repeat_index": s.repeat_index,
-                   "settings": [None if math.isnan(x) else x for x in s.settings],
+                   "settings": s.settings.as_list(),
                    "dwell_s": s.dwell_s, "label": s.label, "port_labels": list(s.port_labels)}
                   for s in plan.steps],
     }

@@ -12,7 +12,6 @@ from __future__ import annotations
 import base64
 import hashlib
 import json
-import math
 import zlib
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
@@ -20,6 +19,7 @@ from typing import Any, overload
 
 import numpy as np
 
+from lightloom.sequencer.model.elements import ElementSettings
 from lightloom.sequencer.model.vocabulary import READING_KINDS
 
 STEP_KINDS: tuple[str, ...] = READING_KINDS
@@ -31,9 +31,9 @@ _COMPACT_FORMAT = "lightloom-steps-columns-1"
 class Step:
     """One reading of every detector at one analyzer setting.
 
-    ``settings`` are the commanded element positions in ELEMENT_NAMES order (deg; the mode
-    converter 1.0 = in, 0.0 = out; NaN = element not on this bench). ``port_labels`` says which
-    projector each detector port nominally measures (the file stores the exact operators).
+    ``settings`` are the commanded element positions (unset where the bench has no such
+    element). ``port_labels`` says which projector each detector port nominally measures (the
+    file stores the exact operators).
     """
 
     index: int
@@ -41,7 +41,7 @@ class Step:
     pass_index: int
     point_index: int
     repeat_index: int
-    settings: tuple[float, ...]
+    settings: ElementSettings
     dwell_s: float
     label: str
     port_labels: tuple[str, ...]
@@ -102,7 +102,7 @@ class StepColumns:
         """Step i as a :class:`Step` record."""
         return Step(
             i, STEP_KINDS[self.kind[i]], int(self.pass_index[i]), int(self.point_index[i]),
-            int(self.repeat_index[i]), tuple(float(x) for x in self.settings[i]),
+            int(self.repeat_index[i]), ElementSettings.from_vector(self.settings[i]),
             float(self.dwell_s[i]), self.labels[self.label[i]], self.port_label_sets[self.port_labels[i]],
         )
 
@@ -117,7 +117,7 @@ class StepColumns:
             pass_index=np.array([s.pass_index for s in steps], dtype="<i4"),
             point_index=np.array([s.point_index for s in steps], dtype="<i4"),
             repeat_index=np.array([s.repeat_index for s in steps], dtype="<i4"),
-            settings=np.array([s.settings for s in steps], dtype="<f8").reshape(len(steps), n_elements),
+            settings=np.array([s.settings.as_vector() for s in steps], dtype="<f8").reshape(len(steps), n_elements),
             dwell_s=np.array([s.dwell_s for s in steps], dtype="<f8"),
             label=np.array([labels.setdefault(s.label, len(labels)) for s in steps], dtype="<i4"),
             port_labels=np.array([port_sets.setdefault(tuple(s.port_labels), len(port_sets)) for s in steps],
@@ -169,10 +169,17 @@ class StepView(Sequence[Step]):
         c = self._columns
         kinds = [STEP_KINDS[k] for k in c.kind.tolist()]
         passes, points, repeats = c.pass_index.tolist(), c.point_index.tolist(), c.repeat_index.tolist()
-        settings, dwell = c.settings.tolist(), c.dwell_s.tolist()
+        dwell = c.dwell_s.tolist()
+        # Settings rows repeat through a night: build each distinct one once.
+        cache: dict[bytes, ElementSettings] = {}
+        rows = c.settings
         labels, port_labels = c.label.tolist(), c.port_labels.tolist()
         for i in range(len(kinds)):
-            yield Step(i, kinds[i], passes[i], points[i], repeats[i], tuple(settings[i]), dwell[i],
+            key = rows[i].tobytes()
+            settings = cache.get(key)
+            if settings is None:
+                settings = cache[key] = ElementSettings.from_vector(rows[i])
+            yield Step(i, kinds[i], passes[i], points[i], repeats[i], settings, dwell[i],
                        c.labels[labels[i]], c.port_label_sets[port_labels[i]])
 
     def __eq__(self, other: object) -> bool:
@@ -283,7 +290,7 @@ class StepList:
                                   port_label_sets=tuple(tuple(p) for p in d["port_label_sets"]))
             return StepList(columns=columns, **common)
         steps = [
-            Step(**{**s, "settings": tuple(math.nan if x is None else float(x) for x in s["settings"]),
+            Step(**{**s, "settings": ElementSettings.from_vector(s["settings"]),
                     "port_labels": tuple(s["port_labels"])})
             for s in d["steps"]
         ]

@@ -8,6 +8,7 @@ from numpy.typing import NDArray
 from lightloom.sequencer.errors import ProtocolError
 from lightloom.sequencer.lang.protocol import Protocol
 from lightloom.sequencer.model.steps import STEP_KINDS, StepList
+from lightloom.sequencer.model.vocabulary import ANALYZERS
 from lightloom.sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, AnalyzerModel, ConverterModel, PlateModel,
     PortModel, RotatorModel, port_operators,
@@ -16,7 +17,7 @@ from lightloom.sequencer.optics.determination import Determination, determinatio
 from lightloom.sequencer.optics.states import density
 from lightloom.sequencer.plan.compiler import TableModel
 
-FACTORS: tuple[str, str] = ("polarization", "spatial")
+FACTORS = ANALYZERS
 
 
 def plan_operators(plan: StepList, table: TableModel) -> NDArray[np.complex128]:

@@ -10,6 +10,7 @@ import numpy as np
 from lightloom.sequencer.plan.compiler import TableModel
 from lightloom.sequencer.plan.kinematics import nearest_equivalent_deg, path_time_s, path_travel_deg
 from lightloom.sequencer.optics.analyzer import CONVERTER, ELEMENT_NAMES
+from lightloom.sequencer.model.elements import COLUMN
 from lightloom.sequencer.plan.ordering import PERIOD_DEG, transition_time_s
 from lightloom.sequencer.model.steps import STEP_KINDS, StepList
 
@@ -45,8 +46,8 @@ def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
     """
     c = plan.columns
     n = len(c)
-    travel = {ELEMENT_NAMES[i]: 0.0 for i in table.kinematics}
-    stage_t = {ELEMENT_NAMES[i]: 0.0 for i in table.kinematics}
+    travel = {name: 0.0 for name in ELEMENT_NAMES if name in table.kinematics}
+    stage_t = dict(travel)
     if n == 0:
         return StepsEstimate((), 0.0, 0.0, 0.0, 0.0, travel, stage_t, 0, ())
     # Code each distinct settings row (NaN made comparable), then each distinct (from, to) move.
@@ -66,18 +67,19 @@ def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
     for j, key in enumerate(pairs.tolist()):
         prev, cur = settings[first[key // len(first)]], settings[first[key % len(first)]]
         move_s[j] = transition_time_s(prev, cur, table)
-        for col, (i, k) in enumerate(stage_items):
+        for col, (name, k) in enumerate(stage_items):
+            i = COLUMN[name]
             if math.isnan(prev[i]) or math.isnan(cur[i]):
                 continue
-            tgt = nearest_equivalent_deg(cur[i], prev[i], PERIOD_DEG[i], k)
+            tgt = nearest_equivalent_deg(cur[i], prev[i], PERIOD_DEG[name], k)
             travel_of[j, col] = path_travel_deg(prev[i], tgt, k.backlash_deg)
             time_of[j, col] = path_time_s(prev[i], tgt, k)
         switch_of[j] = not (math.isnan(prev[CONVERTER]) or math.isnan(cur[CONVERTER])) and prev[CONVERTER] != cur[CONVERTER]
     pair_of_step = pair_of_step.ravel()
     motion = move_s[pair_of_step]
-    for col, (i, _) in enumerate(stage_items):
-        travel[ELEMENT_NAMES[i]] = float(np.sum(travel_of[pair_of_step, col]))
-        stage_t[ELEMENT_NAMES[i]] = float(np.sum(time_of[pair_of_step, col]))
+    for col, (name, _) in enumerate(stage_items):
+        travel[name] = float(np.sum(travel_of[pair_of_step, col]))
+        stage_t[name] = float(np.sum(time_of[pair_of_step, col]))
     shutter_open = c.kind != STEP_KINDS.index("background")
     shutter_changes = shutter_open != np.concatenate([[False], shutter_open[:-1]])
     work = motion + shutter_changes * table.shutter_s + c.dwell_s + table.read_overhead_s

@@ -12,19 +12,18 @@ from __future__ import annotations
 import math
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from typing import Callable, Protocol, Sequence, TypeVar
+from typing import Callable, Protocol, TypeVar
 
 import numpy as np
 
 from lightloom.drivers.errors import InstrumentError
-from lightloom.drivers.retry import call_with_retry
+from lightloom.drivers.retry import call_with_retry, close_shutter_within
 from lightloom.drivers.interfaces import Device, DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
 from lightloom.sequencer.plan.compiler import TableModel
 from lightloom.sequencer.errors import RunFault, StorageError
 from lightloom.sequencer.plan.kinematics import approach_path
-from lightloom.sequencer.optics.analyzer import (
-    CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, complete_port_set, port_operators,
-)
+from lightloom.sequencer.optics.analyzer import complete_port_set, port_operators
+from lightloom.sequencer.model.elements import ElementSettings
 from lightloom.sequencer.model.steps import StepList, Step
 from lightloom.sequencer.model.records import (
     FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT, FLAG_RETRIED, Event, Reading,
@@ -49,7 +48,7 @@ class StopRequested(BaseException):
 class Rig:
     """The devices of a bench, by the part they play."""
 
-    stages: dict[int, RotationStage]
+    stages: dict[str, RotationStage]  # by the element each stage sets (STAGE_ELEMENTS)
     converter: DiscreteActuator | None
     shutter: Shutter
     detectors: tuple[PowerMeter | PhotonCounter, ...]
@@ -72,6 +71,7 @@ class RunPolicy:
     retry_attempts: int = 4
     backoff_s: float = 0.1
     max_backoff_s: float = 5.0
+    shutter_close_s: float = 60.0
     beam_loss_fraction: float = 0.3
     beam_wait_s: float = 900.0
     beam_poll_s: float = 5.0
@@ -140,6 +140,7 @@ class Runner:
         units: str = "W",
         run_start: float | None = None,
         parallel_reads: bool = True,
+        begin_reading: Callable[[int], None] | None = None,
     ) -> None:
         self.plan = plan
         self.table = table
@@ -156,8 +157,11 @@ class Runner:
         # Detectors integrate at once on real (or scaled-time) tables; on an instant simulated
         # table they are read one after the other so that the same seed gives the same readings.
         self.parallel_reads = parallel_reads
+        # Told the index of each step just before its detectors are read (a simulated table
+        # derives that reading's noise from it, so a resumed run reads what an uninterrupted one would).
+        self.begin_reading = begin_reading
         self._beam = _BeamWatch()
-        self._positions: dict[int, float] = {}
+        self._positions: dict[str, float] = {}
         self._converter_state: str | None = None
         self._shutter_open: bool | None = None
         self._retried = False
@@ -177,25 +181,20 @@ class Runner:
 
     # ------------------------------------------------------------------ safety
     def close_shutter_safely(self) -> bool:
-        """Close the shutter, retrying and reconnecting; True if the shutter reports closed."""
-        for attempt in range(max(3, self.policy.retry_attempts)):
-            try:
-                self.rig.shutter.close_beam()
-                self._shutter_open = False
-                if not self.rig.shutter.is_open():
-                    return True
-            except InstrumentError as exc:
-                self.log(f"closing the shutter failed ({exc}); retrying")
-                try:
-                    self.rig.shutter.reconnect()
-                except InstrumentError:
-                    pass
-            except Exception as exc:  # the shutter must be tried again whatever went wrong
-                self.log(f"closing the shutter failed ({exc!r}); retrying")
-            except (KeyboardInterrupt, StopRequested):
-                # A second Ctrl-C or SIGTERM while stopping: the run stops anyway, the shutter first.
-                self.log("stop requested again while closing the shutter; closing it first")
-        return False
+        """Close the shutter, retrying with back-off and a reconnect; True once it reads back closed.
+
+        Attempts go on for ``policy.shutter_close_s`` (bench ``retry.shutter_close_s``, 60 s by
+        default) on the run's clock, pausing ``backoff_s``, doubling up to ``max_backoff_s``,
+        between attempts (drivers.retry.close_shutter_within), so a controller that restarts or a
+        rack that comes back within that time still receives the close. Only then does the caller
+        warn to block the beam by hand.
+        """
+        closed = close_shutter_within(
+            self.rig.shutter, self.policy.shutter_close_s, backoff_s=self.policy.backoff_s,
+            max_backoff_s=self.policy.max_backoff_s, now=self.now, sleep=self.sleep, log=self.log,
+        )
+        self._shutter_open = False if closed else None
+        return closed
 
     # ------------------------------------------------------------------ retries
     def _call(self, device: Device, what: str, fn: Callable[[], T]) -> T:
@@ -254,8 +253,8 @@ class Runner:
             self._call(sh, "closing the shutter", sh.close_beam)
         self._shutter_open = open_
 
-    def _move(self, settings: Sequence[float]) -> None:
-        targets = {i: float(settings[i]) for i in self.rig.stages if not math.isnan(settings[i])}
+    def _move(self, settings: ElementSettings) -> None:
+        targets = {name: angle for name, angle in settings.stage_angles().items() if name in self.rig.stages}
         paths = {}
         for i, target in targets.items():
             here = self._positions.get(i)
@@ -266,8 +265,8 @@ class Runner:
             start = here if here is not None else math.inf
             paths[i] = approach_path(start, target, backlash)
         conv_target = None
-        if self.rig.converter is not None and not math.isnan(settings[CONVERTER]):
-            conv_target = "in" if settings[CONVERTER] == CONVERTER_IN else "out"
+        if self.rig.converter is not None and settings.mode_converter is not None:
+            conv_target = settings.mode_converter
             if conv_target == self._converter_state:
                 conv_target = None
         if conv_target is not None:
@@ -299,29 +298,32 @@ class Runner:
                 raise RunFault(f"device '{c.name}' reports state {state!r} after being set {conv_target!r}; check the actuator")
             self._converter_state = conv_target
 
-    def _readback(self, commanded: Sequence[float]) -> np.ndarray | None:
-        rb = np.full(len(ELEMENT_NAMES), math.nan)
-        for i, stage in self.rig.stages.items():
-            if math.isnan(commanded[i]):
+    def _readback(self, settings: ElementSettings) -> np.ndarray | None:
+        """Where the elements are, as a settings vector (None: a device restarted, move again)."""
+        angles: dict[str, float] = {}
+        for name, commanded in settings.stage_angles().items():
+            stage = self.rig.stages.get(name)
+            if stage is None:
                 continue
             pos = self._call(stage, f"reading the position of {stage.name}", stage.position_deg)
-            if abs(pos - commanded[i]) > POSITION_TOLERANCE_DEG and (self._state_lost or self._may_remove):
+            if abs(pos - commanded) > POSITION_TOLERANCE_DEG and (self._state_lost or self._may_remove):
                 # The instrument may have restarted under us (a restarted controller forgets its
                 # position): command everything again once before calling the axis stuck.
-                self.log(f"{stage.name} reads {pos:.3f} deg instead of {commanded[i]:.3f} deg; moving again")
+                self.log(f"{stage.name} reads {pos:.3f} deg instead of {commanded:.3f} deg; moving again")
                 self._forget_all()
                 return None
-            if abs(pos - commanded[i]) > POSITION_TOLERANCE_DEG:
+            if abs(pos - commanded) > POSITION_TOLERANCE_DEG:
                 raise RunFault(
-                    f"device '{stage.name}' is at {pos:.3f} deg, not at the commanded {commanded[i]:.3f} deg: "
+                    f"device '{stage.name}' is at {pos:.3f} deg, not at the commanded {commanded:.3f} deg: "
                     "the axis may be stuck or blocked; check it, then `lightloom resume`"
                 )
-            rb[i] = pos
-        if self.rig.converter is not None and not math.isnan(commanded[CONVERTER]):
+            angles[f"{name}_deg"] = pos
+        converter = None
+        if self.rig.converter is not None and settings.mode_converter is not None:
             c = self.rig.converter
             state = self._call(c, f"reading the state of {c.name}", c.state)
-            rb[CONVERTER] = CONVERTER_IN if state == "in" else CONVERTER_OUT
-        return rb
+            converter = "in" if state == "in" else "out"
+        return ElementSettings(mode_converter=converter, **angles).as_vector()
 
     # ------------------------------------------------------------------ reading
     def _read_one(self, device: PowerMeter | PhotonCounter, dwell_s: float) -> float:
@@ -399,6 +401,8 @@ class Runner:
             self._set_shutter(step.shutter_open)
             self._move(step.settings)
             readback = self._readback(step.settings)
+            if self.begin_reading is not None:
+                self.begin_reading(step.index)
             t_start = self.now()
             values, ref = self._read_all(step.dwell_s) if readback is not None else (None, math.nan)
             t_end = self.now()
@@ -439,7 +443,7 @@ class Runner:
             return Reading(
                 step_index=step.index, kind=step.kind, pass_index=step.pass_index,
                 point_index=step.point_index, repeat_index=step.repeat_index,
-                commanded=np.array(step.settings), readback=readback, values=values,
+                commanded=step.settings.as_vector(), readback=readback, values=values,
                 reference_w=ref, operators=operators, dwell_s=step.dwell_s,
                 t_start=t_start, t_end=t_end, flags=flags,
             )

@@ -8,8 +8,10 @@ number of readings, m of events, E of elements, P of ports, d the dimension (4).
 (ISO 8601 UTC), status ("running" | "complete" | "interrupted" | "fault"),
 status_message, steps_total, steps_done (distinct step indices read), n_readings,
 n_events, protocol_name, bench_name, simulated (1 simulated bench, 0 real), analyzes,
-element_names, port_names, port_units, dimension, basis_labels, extra_json, run_id,
-journal_bytes (the journal offset up to which the file holds every record), writing
+element_names, port_names, port_units, dimension, basis_labels, setup_json (JSON: the port
+layout with gains, where protocol and bench came from, target label, a single-factor target,
+the reference device and the wavelength; older files hold ``extra_json`` instead, still read).
+run_id, journal_bytes (the journal offset up to which the file holds every record), writing
 (1 while an append is under way).
 
 - ``/protocol``, ``/bench``: scalar UTF-8 text (the protocol YAML, the resolved bench
@@ -59,7 +61,7 @@ from lightloom.sequencer.storage.errors import RunFileBusyError, StorageWriteErr
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.model.records import (
     EVENT_KINDS, FLAG_NAMES, FORMAT_VERSION, READING_KINDS, RUN_STATUSES, Event, Reading,
-    ReadingTable, RunData, RunHeader, element_unit,
+    ReadingTable, RunData, RunHeader, element_unit, setup_from_legacy_extra,
 )
 
 _STR = h5py.string_dtype()
@@ -174,7 +176,7 @@ def _write_header(f: h5py.File, header: RunHeader) -> None:
     a["port_units"] = header.port_units
     a["dimension"] = header.dimension
     a["basis_labels"] = _strings(header.basis_labels)
-    a["extra_json"] = json.dumps(header.extra, sort_keys=True)
+    a["setup_json"] = json.dumps(header.setup_json_dict(), sort_keys=True)
     if header.run_id:
         a["run_id"] = header.run_id
     _text(f, "protocol", header.protocol_text, "protocol YAML as given",
@@ -504,10 +506,14 @@ def _read_header(f: h5py.File) -> RunHeader:
     steps_json = steps.asstr()[()]
     if not steps_json.lstrip().startswith(("{", "[")):
         raise _Malformed(f"/{key} holds {_shown(steps_json)}; expected the compiled steps as JSON")
+    port_names = _str_list(a["port_names"])
     try:
-        extra = json.loads(_str(a["extra_json"]))
-    except json.JSONDecodeError as exc:
-        raise _Malformed(f"attribute extra_json is not JSON ({exc.msg})") from None
+        if "setup_json" in a:
+            setup = RunHeader.setup_from_json_dict(json.loads(_str(a["setup_json"])))
+        else:
+            setup = setup_from_legacy_extra(json.loads(_str(a["extra_json"])), port_names)
+    except (json.JSONDecodeError, KeyError, TypeError, ValueError, AttributeError) as exc:
+        raise _Malformed(f"the run's set-up attribute is not what lightloom writes ({exc})") from None
     try:
         return RunHeader(
             format_version=version,
@@ -522,14 +528,14 @@ def _read_header(f: h5py.File) -> RunHeader:
             simulated=bool(a["simulated"]),
             analyzes=_str_list(a["analyzes"]),
             element_names=_str_list(a["element_names"]),
-            port_names=_str_list(a["port_names"]),
+            port_names=port_names,
             port_units=_str(a["port_units"]),
             dimension=_whole(a, "dimension", 1, 64),
             basis_labels=_str_list(a["basis_labels"]),
             steps_total=_whole(a, "steps_total", 0),
             steps_json=steps_json,
             target_state=target,
-            extra=extra,
+            **setup,
             **({"run_id": _str(a["run_id"])} if "run_id" in a else {}),
         )
     except (TypeError, ValueError) as exc:

@@ -96,12 +96,14 @@ class ResumeSummary:
 
     ``done`` marks the steps with a reading (one flag per step of the plan);
     ``first_beam_row`` is the first reading taken with the shutter open (a structured row
-    of the journal layout), ``t_first`` the earliest reading start (UNIX s).
+    of the journal layout), ``t_first`` the earliest reading start and ``t_last`` the latest
+    reading end (UNIX s).
     """
 
     done: np.ndarray
     first_beam_row: np.ndarray | None = None
     t_first: float | None = None
+    t_last: float | None = None
     n_readings: int = 0
 
     def observe(self, rows: np.ndarray) -> None:
@@ -115,6 +117,8 @@ class ResumeSummary:
                 self.first_beam_row = rows[open_[0]].copy()
         t = float(np.min(rows["t_start"]))
         self.t_first = t if self.t_first is None else min(self.t_first, t)
+        t = float(np.max(rows["t_end"]))
+        self.t_last = t if self.t_last is None else max(self.t_last, t)
 
     @property
     def steps_done(self) -> int:
