@@ -183,3 +183,22 @@ def test_a_refresh_while_a_reader_holds_the_file_is_skipped_and_caught_up(tmp_pa
     assert store.refresh() is True
     assert len(read_runfile(tmp_path / "run.h5").readings) == 5
     store.close("complete")
+
+
+def test_a_run_file_from_before_journal_offsets_is_read_and_rebuilt_on_resume(tmp_path):
+    store = RunStore.create(tmp_path / "run.h5", make_header(), clock=_clock())
+    for i in range(12):
+        store.record(make_reading(i))
+    store.refresh()
+    for i in range(12, 15):
+        store.record(make_reading(i))
+    store.release()
+    with h5py.File(tmp_path / "run.h5", "r+") as f:  # what earlier versions wrote: no offset
+        del f.attrs["journal_bytes"]
+        del f.attrs["writing"]
+    assert len(read_runfile(tmp_path / "run.h5").readings) == 12
+    assert len(load_run(tmp_path / "run.h5").readings) == 15  # the journal holds more: it is read
+    RunStore.reopen(tmp_path / "run.h5", clock=_clock()).close("complete")
+    with h5py.File(tmp_path / "run.h5", "r") as f:
+        assert f.attrs["journal_bytes"] == journal_path_for(tmp_path / "run.h5").stat().st_size
+    np.testing.assert_array_equal(read_runfile(tmp_path / "run.h5").readings.step_index, np.arange(15))
