@@ -1,6 +1,6 @@
 """95% intervals of figures of merit from bootstrap replicates, kept inside each figure's physical range.
 
-Two published constructions, chosen per figure from the replicates themselves:
+Two published constructions, combined:
 
 - the bias-corrected percentile interval (BC; Efron and Tibshirani, An Introduction to the
   Bootstrap, 1993, ch. 14.3, the BCa interval with acceleration a = 0): percentiles
@@ -13,10 +13,14 @@ Two published constructions, chosen per figure from the replicates themselves:
   out low, and their replicates lower still; a product state's concurrence piles up at 0), where
   the BC interval fails because almost every replicate lies on one side of the estimate.
 
-Rule (measured in tests/benchmarks/bench_interval_coverage.py): BC when between 10% and 90% of
-the replicates fall below the estimate, the basic interval otherwise; both are then clipped to
-the physical range of the figure (purity [1/d, 1], concurrence [0, 1], ...), so an interval may
-be asymmetric and may touch a bound (a separable state's concurrence interval starts at 0).
+Rule (measured in tests/benchmarks/bench_interval_coverage.py and README): the reported interval
+is the union (hull) of the two, clipped to the physical range of the figure (purity [1/d, 1],
+concurrence [0, 1], ...), so it may be asymmetric and may touch a bound (a separable state's
+concurrence interval starts at 0). Where the replicates are well behaved the two agree and the
+union is either; near a boundary, or where the estimate is biased, at least one of them follows
+the truth and the union keeps it: in our trials at 100 counts a setting the BC interval alone
+covered a pure state's concurrence in 0 of 150 runs, the basic one alone an interior value's in
+85%, their union 92-100% throughout.
 """
 
 from __future__ import annotations
@@ -27,9 +31,6 @@ import numpy as np
 from scipy.stats import norm
 
 LEVEL = 0.95
-# Outside this share of replicates below the estimate, the estimate is at the edge of its own
-# bootstrap distribution (a boundary of the state space) and the BC interval is not used.
-BC_SHARE_RANGE = (0.1, 0.9)
 
 Bounds = tuple[float, float]
 
@@ -60,7 +61,7 @@ def basic_interval(value: float, samples: np.ndarray, level: float = LEVEL) -> t
 
 def physical_interval(value: float, samples: np.ndarray, bounds: Bounds = (-math.inf, math.inf),
                       level: float = LEVEL) -> tuple[float, float]:
-    """The reported interval: BC or basic by the rule in the module docstring, clipped to ``bounds``.
+    """The reported interval: the union of the BC and basic intervals, clipped to ``bounds`` (module docstring).
 
     Parameters
     ----------
@@ -79,12 +80,9 @@ def physical_interval(value: float, samples: np.ndarray, bounds: Bounds = (-math
     if s.size < 2:
         v = min(max(value, lo_b), hi_b)
         return float(v), float(v)
-    share = (np.sum(s < value) + 0.5 * np.sum(s == value)) / s.size
-    if BC_SHARE_RANGE[0] < share < BC_SHARE_RANGE[1]:
-        lo, hi = bias_corrected_percentile(value, s, level)
-    else:
-        lo, hi = basic_interval(value, s, level)
-    lo, hi = min(lo, value), max(hi, value)
+    bc_lo, bc_hi = bias_corrected_percentile(value, s, level)
+    b_lo, b_hi = basic_interval(value, s, level)
+    lo, hi = min(bc_lo, b_lo, value), max(bc_hi, b_hi, value)
     return float(min(max(lo, lo_b), hi_b)), float(max(min(hi, hi_b), lo_b))
 
 

@@ -180,3 +180,13 @@ def stability_json(series: dict[str, SeriesStability]) -> dict[str, Any]:
         "reference": series["reference"].as_json() if "reference" in series else None,
         "ports": {k: v.as_json() for k, v in series.items() if k != "reference"},
     }
+
+
+def stability_of_run(run: Any) -> dict[str, SeriesStability]:
+    """:func:`run_stability` of a run (RunData)."""
+    r = run.readings
+    return run_stability(
+        kind=r.kind, t_start=r.t_start, t_end=r.t_end, values=r.values, reference_w=r.reference_w,
+        point_index=r.point_index, port_names=tuple(run.header.port_names),
+        port_unit="counts" if run.header.port_units == "counts" else "W",
+    )
