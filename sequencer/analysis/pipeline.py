@@ -41,7 +41,7 @@ from lightloom.sequencer.analysis.intervals import figure_bounds
 from lightloom.sequencer.analysis.propagation import CorrectionNoise, correction_noise
 from lightloom.sequencer.optics.analyzer import complete_port_set
 from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS, partial_trace
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.model.records import RunData
 
 FACTOR_BASIS = {"polarization": ("H", "V"), "spatial": ("h", "v")}
@@ -114,8 +114,7 @@ def _drift_model(run: RunData, ref_bg: np.ndarray, use_complete_sum: bool, gains
 
 
 def _complete_ports(run: RunData) -> bool:
-    extra = run.header.extra
-    return complete_port_set(list(zip(extra.get("port_sorter", []), extra.get("port_splitter", []))))
+    return complete_port_set([(p.sorter_port, p.splitter_port) for p in run.header.ports])
 
 
 def _spread_model(values: np.ndarray, groups: np.ndarray, bg_std: float) -> tuple[float, float, str]:
@@ -165,7 +164,7 @@ def prepare(run: RunData, *, normalize: bool = False, operators: np.ndarray | No
     if not meas.any():
         raise AnalysisError("the run has no measure readings yet; wait for the first setting to be measured")
     counts = h.port_units == "counts"
-    gains = np.asarray(h.extra.get("port_gain") or [1.0] * len(h.port_names), dtype=float)
+    gains = h.port_gains
     complete = _complete_ports(run)
     bg_model, ref_bg = _background(run)
     bg_info = background_info(bg_model)
@@ -178,7 +177,7 @@ def prepare(run: RunData, *, normalize: bool = False, operators: np.ndarray | No
     ops = ops_all[meas]
     f = drift_model.factor(t_all)[meas]
     steps = r.step_index[meas]
-    plan = Plan.from_json(h.plan_json)
+    plan = StepList.from_json(h.steps_json)
     labels_by_step = {s.index: s.port_labels for s in plan.steps}
     n, n_ports = values.shape
     corrections: dict[str, Any] = {"background": bg_info, "drift": drift_info}
@@ -370,10 +369,7 @@ def target_of(run: RunData) -> np.ndarray | None:
     h = run.header
     if len(h.analyzes) == 2:
         return None if h.target_state is None else np.asarray(h.target_state)
-    t2 = h.extra.get("target_state_2x2")
-    if t2:
-        return np.asarray(t2["real"]) + 1j * np.asarray(t2["imag"])
-    return None
+    return None if h.factor_target_state is None else np.asarray(h.factor_target_state)
 
 
 def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
@@ -408,7 +404,7 @@ def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
         out["fully_entangled_fraction"] = vs(est.figures["fully_entangled_fraction"])
     if "fidelity" in est.figures:
         out["fidelity"] = vs(est.figures["fidelity"])
-        out["target"] = run.header.extra.get("target_label")
+        out["target"] = run.header.target_label
     if est.closest_mode is not None:
         name, *fig = est.closest_mode
         out["closest_vector_mode"] = {"name": name, "fidelity": vs(tuple(fig))}

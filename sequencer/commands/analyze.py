@@ -18,6 +18,8 @@ def add_parser(sub) -> None:
     p.add_argument("--normalize", action="store_true", help="normalise each setting over its complementary ports (cancels drift without a reference meter)")
     p.add_argument("--bootstrap", type=int, default=200, metavar="N", help="bootstrap resamples for the error bars (default 200)")
     p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
+    p.add_argument("--field-maps", action="store_true",
+                   help="add the transverse polarization maps of a joint state to the JSON (key field_maps)")
     p.add_argument("--stability", action="store_true",
                    help="also report the stability of the reference and every port: mean, drift per hour, "
                         "Allan deviation (automatic for runs of the stability protocol)")
@@ -58,6 +60,12 @@ def run(args: argparse.Namespace) -> int:
         doc = result_json(data, est)
         if args.bench:
             doc["corrections"]["operators"] = f"recomputed from read-back positions with the calibration of {args.bench}"
+        if args.field_maps:
+            if est.rho.shape != (4, 4):
+                raise UsageError(f"{args.file}: --field-maps needs a joint (polarization and spatial) run")
+            from lightloom.sequencer.analysis.portrait import portrait, portrait_json
+
+            doc["field_maps"] = portrait_json(portrait(est.rho))
     if stability is not None:
         from lightloom.sequencer.analysis.stability import stability_json
 
@@ -118,6 +126,12 @@ def _plots(data, est, directory: str) -> list:
         points = {f: np.array([v for v, _ in s]) for f, s in est.stokes.items()}
         unc = {f: float(np.sqrt(sum(sd**2 for _, sd in s[1:]))) for f, s in est.stokes.items()}
         written.append(plots.plot_poincare(points, out / "poincare.png", title="reduced states", uncertainties=unc))
+        if est.rho.shape == (4, 4):
+            from lightloom.sequencer.analysis.portrait import portrait
+            from lightloom.sequencer.present.portrait import plot_portrait
+
+            written.append(plot_portrait(portrait(est.rho), out / "portrait.png",
+                                         title=f"{data.header.protocol_name}: polarization portrait"))
         r = data.readings
         lit = ~r.of_kind("background")
         ref = r.reference_w[lit]

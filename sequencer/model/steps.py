@@ -1,21 +1,21 @@
-"""The compiled plan: a list of steps as plain data, and its JSON form (stored in every run file)."""
+"""The compiled step list: what to do, step by step, as plain data, and its JSON form (stored in every run file)."""
 
 from __future__ import annotations
 
 import json
-import math
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field, fields
 
-KINDS: tuple[str, ...] = ("measure", "background", "reference")
+from lightloom.sequencer.model.elements import ElementSettings
+
 
 
 @dataclass(frozen=True)
 class Step:
     """One reading of every detector at one analyzer setting.
 
-    ``settings`` are the commanded element positions in ELEMENT_NAMES order (deg; the mode
-    converter 1.0 = in, 0.0 = out; NaN = element not on this bench). ``port_labels`` says which
-    projector each detector port nominally measures (the file stores the exact operators).
+    ``settings`` are the commanded element positions (unset where the bench has no such
+    element). ``port_labels`` says which projector each detector port nominally measures (the
+    file stores the exact operators).
     """
 
     index: int
@@ -23,7 +23,7 @@ class Step:
     pass_index: int
     point_index: int
     repeat_index: int
-    settings: tuple[float, ...]
+    settings: ElementSettings
     dwell_s: float
     label: str
     port_labels: tuple[str, ...]
@@ -34,7 +34,7 @@ class Step:
 
 
 @dataclass(frozen=True)
-class Plan:
+class StepList:
     """Everything the runner needs to execute a protocol on a bench, and nothing it must look up."""
 
     protocol_name: str
@@ -49,27 +49,25 @@ class Plan:
     violations: tuple[str, ...] = field(default=())
 
     def to_json(self) -> str:
-        """A canonical JSON text (NaN written as null), identical for identical plans."""
-        d = asdict(self)
-        d["steps"] = [
-            {**s, "settings": [None if math.isnan(x) else x for x in s["settings"]]} for s in d["steps"]
-        ]
+        """A canonical JSON text (NaN written as null), identical for identical step lists."""
+        d = {f.name: getattr(self, f.name) for f in fields(self)}
+        d["steps"] = [{**_shallow(s), "settings": s.settings.as_list()} for s in self.steps]
         return json.dumps(d, sort_keys=True, separators=(",", ":"))
 
     @staticmethod
-    def from_json(text: str) -> "Plan":
+    def from_json(text: str) -> "StepList":
         d = json.loads(text)
         steps = tuple(
             Step(
                 **{
                     **s,
-                    "settings": tuple(math.nan if x is None else float(x) for x in s["settings"]),
+                    "settings": ElementSettings.from_vector(s["settings"]),
                     "port_labels": tuple(s["port_labels"]),
                 }
             )
             for s in d.pop("steps")
         )
-        return Plan(
+        return StepList(
             **{
                 **d,
                 "steps": steps,
@@ -78,3 +76,7 @@ class Plan:
                 "violations": tuple(d.get("violations", ())),
             }
         )
+
+
+def _shallow(step: Step) -> dict:
+    return {f.name: getattr(step, f.name) for f in fields(step)}

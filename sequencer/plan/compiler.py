@@ -1,4 +1,4 @@
-"""The compiler, a pure function (protocol, bench) -> Plan.
+"""The compiler, a pure function (protocol, bench) -> StepList.
 
 Target states become element settings through the optics model and the bench's calibration.
 Every port of a setting measures a projector, so targets that share a basis share a setting when
@@ -29,9 +29,9 @@ from lightloom.sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, O
 from lightloom.sequencer.optics.stokes import stokes_from_density
 from lightloom.sequencer.optics.states import density
 from lightloom.sequencer.plan.ordering import PERIOD_DEG, order_settings
-from lightloom.sequencer.model.steps import Plan, Step
+from lightloom.sequencer.model.elements import COLUMN, ElementSettings
+from lightloom.sequencer.model.steps import StepList, Step
 
-STAGE_ELEMENTS = (QWP, HWP, CONVERTER_ANGLE, ROTATOR)
 # A run file holds its whole plan; beyond this a series belongs in several runs.
 MAX_STEPS = 200_000
 
@@ -43,8 +43,8 @@ class TableModel:
     name: str
     analyzer: AnalyzerModel
     ports: tuple[PortModel, ...]
-    present: tuple[bool, ...]  # per element of ELEMENT_NAMES: a device plays that role
-    kinematics: Mapping[int, StageKinematics]  # per stage element index
+    present: frozenset[str]  # the elements (ELEMENT_NAMES) a device plays on this bench
+    kinematics: Mapping[str, StageKinematics]  # per stage element present
     converter_switch_s: float = 0.0
     shutter_s: float = 0.0
     read_overhead_s: float = 0.0
@@ -117,8 +117,8 @@ def compile_requests(
     reference_dwell_s: float | None = None,
     passes: int = 1,
     pass_interval_s: float = 0.0,
-) -> Plan:
-    """Compile projector requests into an ordered Plan for ``table``.
+) -> StepList:
+    """Compile projector requests into an ordered StepList for ``table``.
 
     Raises
     ------
@@ -227,7 +227,7 @@ def _explicit_settings(table: TableModel, req: Request) -> np.ndarray:
         if name not in ELEMENT_NAMES:
             raise ProtocolError(f"unknown element '{key}'; expected one of {', '.join(ELEMENT_NAMES)}", None, req.line)
         i = ELEMENT_NAMES.index(name)
-        if not table.present[i]:
+        if name not in table.present:
             raise BenchError(f"the protocol sets {key} but bench '{table.name}' has no {name} role", None, req.line)
         if i == CONVERTER:
             s[i] = CONVERTER_IN if str(value) == "in" else CONVERTER_OUT
@@ -248,9 +248,8 @@ def _explicit_label(elements: Mapping[str, float | str]) -> str:
 
 def _park(table: TableModel) -> np.ndarray:
     s = np.full(len(ELEMENT_NAMES), math.nan)
-    for i in range(len(ELEMENT_NAMES)):
-        if table.present[i]:
-            s[i] = CONVERTER_OUT if i == CONVERTER else 0.0
+    for name in table.present:
+        s[COLUMN[name]] = CONVERTER_OUT if name == "mode_converter" else 0.0
     return s
 
 
@@ -261,7 +260,7 @@ def _target_settings(table, pp, spp, pol_reg, sp_reg, pol_port, sp_port) -> list
     if spp is not None:
         b = sp_reg.bases[spp[0]]
         ss = spatial_setting(b.ket, sp_port, model)
-        if model.mode_converter is not None and table.present[CONVERTER]:
+        if model.mode_converter is not None and "mode_converter" in table.present:
             base[CONVERTER] = CONVERTER_IN if ss.converter_in else CONVERTER_OUT
         elif ss.converter_in:
             raise OpticsError("this target needs the mode converter in the beam, but the bench has no mode_converter role")
@@ -316,7 +315,7 @@ def _expand_steps(
     table, protocol_name, settings, key_labels, logical, order_idx, analyzes, dwell_s, repeats,
     bg_every, bg_start, bg_end, bg_dwell, ref_every, ref_dwell, passes, pass_interval_s, order,
     ref_settings, ref_labels, ref_point,
-) -> Plan:
+) -> StepList:
     per_pass = len(order_idx) * repeats
     if ref_every > 0:
         per_pass += 2 + len(order_idx) // ref_every
@@ -334,21 +333,21 @@ def _expand_steps(
     def resolve(target: np.ndarray) -> np.ndarray:
         nonlocal position
         out = target.copy()
-        for i in STAGE_ELEMENTS:
-            if math.isnan(target[i]) or i not in table.kinematics:
+        for name, k in table.kinematics.items():
+            i = COLUMN[name]
+            if math.isnan(target[i]):
                 continue
-            k = table.kinematics[i]
-            out[i] = nearest_equivalent_deg(target[i], position[i], PERIOD_DEG[i], k)
+            out[i] = nearest_equivalent_deg(target[i], position[i], PERIOD_DEG[name], k)
             if not (k.min_deg - 1e-9 <= out[i] <= k.max_deg + 1e-9):
                 violations.append(
-                    f"{ELEMENT_NAMES[i]} at {out[i]:.3f} deg is outside its travel {k.min_deg:g}..{k.max_deg:g} deg"
+                    f"{name} at {out[i]:.3f} deg is outside its travel {k.min_deg:g}..{k.max_deg:g} deg"
                 )
         position = out
         return out
 
     def add(kind, pass_index, point_index, repeat_index, s, dwell, label, port_labels):
         steps.append(Step(len(steps), kind, pass_index, point_index, repeat_index,
-                          tuple(float(x) for x in s), float(dwell), label, tuple(port_labels)))
+                          ElementSettings.from_vector(s), float(dwell), label, tuple(port_labels)))
 
     n_ports = len(table.ports)
     for p in range(passes):
@@ -370,7 +369,7 @@ def _expand_steps(
             add("reference", p, ref_point, 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
     if bg_end:
         add("background", passes - 1, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
-    return Plan(
+    return StepList(
         protocol_name=protocol_name,
         bench_name=table.name,
         element_names=ELEMENT_NAMES,

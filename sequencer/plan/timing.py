@@ -10,12 +10,13 @@ import numpy as np
 from lightloom.sequencer.plan.compiler import TableModel
 from lightloom.sequencer.plan.kinematics import nearest_equivalent_deg, path_time_s, path_travel_deg
 from lightloom.sequencer.optics.analyzer import CONVERTER, ELEMENT_NAMES
+from lightloom.sequencer.model.elements import COLUMN
 from lightloom.sequencer.plan.ordering import PERIOD_DEG, transition_time_s
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.steps import StepList
 
 
 @dataclass(frozen=True)
-class PlanEstimate:
+class StepsEstimate:
     """Per-step durations (s) and totals of a plan on a table."""
 
     step_seconds: tuple[float, ...]
@@ -32,7 +33,7 @@ class PlanEstimate:
         return float(sum(self.step_seconds))
 
 
-def estimate_plan(plan: Plan, table: TableModel) -> PlanEstimate:
+def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
     """Estimate the wall time of ``plan`` from the table's kinematics, dwell and command overheads.
 
     Each step: the shutter change if any, the slowest stage's backlash-aware move (all stages move
@@ -42,10 +43,10 @@ def estimate_plan(plan: Plan, table: TableModel) -> PlanEstimate:
     """
     times: list[float] = []
     motion = dwell = overhead = wait = 0.0
-    travel = {ELEMENT_NAMES[i]: 0.0 for i in table.kinematics}
-    stage_t = {ELEMENT_NAMES[i]: 0.0 for i in table.kinematics}
+    travel = {name: 0.0 for name in ELEMENT_NAMES if name in table.kinematics}
+    stage_t = dict(travel)
     switches = 0
-    prev = np.array(plan.steps[0].settings) if plan.steps else np.array([])
+    prev = plan.steps[0].settings.as_vector() if plan.steps else np.array([])
     shutter_open = False
     elapsed = 0.0
     pass_start_due = 0.0
@@ -59,7 +60,7 @@ def estimate_plan(plan: Plan, table: TableModel) -> PlanEstimate:
                 w = pass_start_due - elapsed
                 t += w
                 wait += w
-        cur = np.array(step.settings)
+        cur = step.settings.as_vector()
         if step.shutter_open != shutter_open:
             t += table.shutter_s
             overhead += table.shutter_s
@@ -67,12 +68,13 @@ def estimate_plan(plan: Plan, table: TableModel) -> PlanEstimate:
         m = transition_time_s(prev, cur, table)
         t += m
         motion += m
-        for i, k in table.kinematics.items():
+        for name, k in table.kinematics.items():
+            i = COLUMN[name]
             if math.isnan(prev[i]) or math.isnan(cur[i]):
                 continue
-            tgt = nearest_equivalent_deg(cur[i], prev[i], PERIOD_DEG[i], k)
-            travel[ELEMENT_NAMES[i]] += path_travel_deg(prev[i], tgt, k.backlash_deg)
-            stage_t[ELEMENT_NAMES[i]] += path_time_s(prev[i], tgt, k)
+            tgt = nearest_equivalent_deg(cur[i], prev[i], PERIOD_DEG[name], k)
+            travel[name] += path_travel_deg(prev[i], tgt, k.backlash_deg)
+            stage_t[name] += path_time_s(prev[i], tgt, k)
         if not (math.isnan(prev[CONVERTER]) or math.isnan(cur[CONVERTER])) and prev[CONVERTER] != cur[CONVERTER]:
             switches += 1
         t += step.dwell_s + table.read_overhead_s
@@ -81,4 +83,4 @@ def estimate_plan(plan: Plan, table: TableModel) -> PlanEstimate:
         prev = cur
         times.append(t)
         elapsed += t
-    return PlanEstimate(tuple(times), motion, dwell, wait, overhead, travel, stage_t, switches)
+    return StepsEstimate(tuple(times), motion, dwell, wait, overhead, travel, stage_t, switches)

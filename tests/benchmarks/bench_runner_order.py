@@ -27,7 +27,7 @@ from lightloom.sequencer.lang.protocol import load_protocol
 from lightloom.sequencer.run.session import start_run
 from lightloom.sequencer.storage import read_runfile
 from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
-from lightloom.sequencer.plan.timing import estimate_plan
+from lightloom.sequencer.plan.timing import estimate_steps
 
 REQUIRED_SAVING = 0.30
 
@@ -50,7 +50,7 @@ def motion_between_settings_s(plan, table) -> float:
     settings = []
     for step in plan.steps:
         if step.kind == "measure" and (not settings or settings[-1][0] != step.point_index):
-            settings.append((step.point_index, np.array(step.settings)))
+            settings.append((step.point_index, step.settings.as_vector()))
     return sum(transition_time_s(a, b, table) for (_, a), (_, b) in zip(settings[:-1], settings[1:]))
 
 
@@ -70,7 +70,7 @@ def main(argv: list[str]) -> int:
             for order, path in paths.items():
                 plan = compile_protocol(load_protocol(path), bench)
                 assert plan.order == order
-                est[order] = estimate_plan(plan, table).motion_seconds
+                est[order] = estimate_steps(plan, table).motion_seconds
                 between[order] = motion_between_settings_s(plan, table)
                 sim[order] = simulated_motion_s(path, bench_name, Path(tmp) / f"{bench_name}-{order}.h5")
             e_ratio = est["least-motion"] / est["as-written"]

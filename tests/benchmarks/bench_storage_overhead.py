@@ -18,6 +18,7 @@ import numpy as np
 
 import lightloom.sequencer.storage.journal as journal_module
 from lightloom.sequencer.storage import Reading, RunHeader, RunStore
+from lightloom.sequencer.model.records import PortLayout, RunSources
 from lightloom.sequencer.storage.atomic import sync_fd
 from lightloom.sequencer.storage.codec import (
     TYPE_HEADER, TYPE_READING, ReadingLayout, encode_header, encode_reading, frame,
@@ -38,7 +39,8 @@ def make_header(steps: int) -> RunHeader:
         bench_name="sim", bench_text=text, bench_sha256=hashlib.sha256(text.encode()).hexdigest(),
         simulated=True, analyzes=("polarization", "spatial"), element_names=ELEMENTS,
         port_names=PORTS, port_units="W", dimension=4,
-        basis_labels=("H,h", "H,v", "V,h", "V,v"), steps_total=steps, plan_json="[]",
+        basis_labels=("H,h", "H,v", "V,h", "V,v"), steps_total=steps, steps_json="[]",
+        ports=tuple(PortLayout(p, None, None) for p in PORTS), sources=RunSources("bench", "", "sim", ""),
     )
 
 
