@@ -59,6 +59,14 @@ def basic_interval(value: float, samples: np.ndarray, level: float = LEVEL) -> t
     return float(2.0 * value - q_hi), float(2.0 * value - q_lo)
 
 
+def pivot_interval(value: float, centre_value: float, samples: np.ndarray, level: float = LEVEL) -> tuple[float, float]:
+    """Basic (pivot) interval from replicates drawn around another centre: the spread of
+    samples - centre_value taken as that of estimate - truth (Davison and Hinkley 1997, sec. 5.2)."""
+    alpha = 1.0 - level
+    q_lo, q_hi = np.quantile(np.asarray(samples, dtype=float), [alpha / 2.0, 1.0 - alpha / 2.0])
+    return float(value - (q_hi - centre_value)), float(value - (q_lo - centre_value))
+
+
 def physical_interval(value: float, samples: np.ndarray, bounds: Bounds = (-math.inf, math.inf),
                       level: float = LEVEL) -> tuple[float, float]:
     """The reported interval: the union of the BC and basic intervals, clipped to ``bounds`` (module docstring).

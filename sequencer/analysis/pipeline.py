@@ -35,7 +35,7 @@ from lightloom.sequencer.analysis.estimate import (
     MleResult, linear_inversion, mle_gaussian, mle_poisson, parametric_bootstrap,
 )
 from lightloom.sequencer.analysis.estimate import merit
-from lightloom.sequencer.analysis.background import BackgroundModel, background_info, background_model
+from lightloom.sequencer.analysis.background import BackgroundModel, background_info, background_model, pooled_reading_noise
 from lightloom.sequencer.analysis.drift import DriftModel, fit_drift, no_drift
 from lightloom.sequencer.analysis.intervals import figure_bounds
 from lightloom.sequencer.analysis.propagation import CorrectionNoise, correction_noise
@@ -248,8 +248,18 @@ def prepare(run: RunData, *, normalize: bool = False, operators: np.ndarray | No
         floor = 1e-6 * float(np.max(np.abs(vals_out))) if len(vals_out) else 0.0
         sig_out = np.sqrt(a * a + (b * np.abs(vals_out)) ** 2 + floor**2)
         corrections["noise_model"] = {"model": "gaussian", "absolute_w": a, "relative": b, "how": how}
-        if bg_model.applied and bg_model.times_s.size < 2 and a > 0:
-            bg_model = background_model(bg_model.times_s, bg_model.values, fallback_sigma=a * gains)
+        if bg_model.applied and a > 0:
+            # a is the absolute noise of a fitted row; a row sums `members` port readings.
+            members = max(len(flat_rows) / max(len(vals_out), 1), 1.0)
+            _, group_sizes = np.unique(np.array(rep_keys), return_counts=True)
+            repeat_dof = int(np.sum(group_sizes[group_sizes >= 2] - 1)) if "repeated" in how else 0
+            a_port = a / math.sqrt(members) * gains
+            if bg_model.times_s.size < 2:
+                bg_model = background_model(bg_model.times_s, bg_model.values, fallback_sigma=a_port)
+            else:
+                bg_model = pooled_reading_noise(bg_model, a_port, repeat_dof)
+            corrections["background"] = {**background_info(bg_model), "reading_noise_how":
+                                         "background spread pooled with the absolute noise of repeated readings"}
     else:
         corrections["noise_model"] = {"model": "poisson"}
         if bg_model.applied and bg_model.times_s.size < 2:

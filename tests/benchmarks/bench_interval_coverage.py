@@ -99,7 +99,7 @@ def reported(doc: dict) -> dict[str, dict]:
     return out
 
 
-def run_condition(name: str, seeds: int, resamples: int, workdir: Path) -> dict[str, dict[str, float]]:
+def run_condition(name: str, seeds: int, resamples: int, workdir: Path, cache: Path | None = None) -> dict[str, dict[str, float]]:
     power, rho, extra = CONDITIONS[name]
     rho_true = rho if rho is not None else load_bench("sim").simulation.source.density()
     true = truth(rho_true)
@@ -107,11 +107,15 @@ def run_condition(name: str, seeds: int, resamples: int, workdir: Path) -> dict[
     drift_applied = 0
     for seed in range(seeds):
         bench = overlay(workdir, name, power, rho, extra, seed + 1)
-        out = workdir / f"run_{seed}_{time.monotonic_ns()}.h5"
-        with contextlib.redirect_stdout(io.StringIO()):
-            status = main(["run", "joint-36", "--bench", str(bench), "--out", str(out), "--quiet"])
-        if status != 0:
-            raise SystemExit(f"run failed for {name}, seed {seed + 1}")
+        if cache is not None:
+            out = cache / f"{bench.stem}.h5"
+        else:
+            out = workdir / f"run_{seed}_{time.monotonic_ns()}.h5"
+        if not out.exists():
+            with contextlib.redirect_stdout(io.StringIO()):
+                status = main(["run", "joint-36", "--bench", str(bench), "--out", str(out), "--quiet"])
+            if status != 0:
+                raise SystemExit(f"run failed for {name}, seed {seed + 1}")
         data = load_run(out)
         prep = prepare(data)
         est = estimate(prep, target=target_of(data), rng=np.random.default_rng(seed), n_bootstrap=resamples)
@@ -140,11 +144,15 @@ def main_() -> None:
     parser.add_argument("--seeds", type=int, default=40)
     parser.add_argument("--resamples", type=int, default=200)
     parser.add_argument("--conditions", default=",".join(CONDITIONS), help="comma-separated names (default all)")
+    parser.add_argument("--cache", metavar="DIR", help="keep the run files in DIR and reuse them (analysis only on a rerun)")
     args = parser.parse_args()
     start = time.perf_counter()
     with tempfile.TemporaryDirectory() as tmp:
         for name in args.conditions.split(","):
-            run_condition(name.strip(), args.seeds, args.resamples, Path(tmp))
+            cache = Path(args.cache) if args.cache else None
+            if cache is not None:
+                cache.mkdir(parents=True, exist_ok=True)
+            run_condition(name.strip(), args.seeds, args.resamples, Path(tmp), cache)
     print(f"elapsed {time.perf_counter() - start:.0f} s")
 
 
