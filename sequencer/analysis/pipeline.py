@@ -25,6 +25,7 @@ which is exact when the summed operator is A (x) I.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 from typing import Any
@@ -324,6 +325,17 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
         if not np.any(prep.values > 0):
             raise AnalysisError("no power above background in the measure readings: was the beam on?")
         fit = mle_gaussian(prep.operators, prep.values, prep.sigma)
+        nm = prep.corrections.get("noise_model", {})
+        if nm.get("relative", 0.0) > 0:
+            # The relative part of the spread from the fitted readings rather than the measured
+            # ones: weights that follow each reading's own noise bias the fit (a reading that
+            # fluctuates up is down-weighted), and the bootstrap, whose sigma is fixed, would not
+            # show that bias (iteratively reweighted least squares, common practice, no source).
+            pred = np.clip(np.einsum("ij,nji->n", fit.intensity * fit.rho, prep.operators).real, 0.0, None)
+            floor = 1e-6 * float(np.max(np.abs(prep.values)))
+            refined = np.sqrt(nm["absolute_w"] ** 2 + (nm["relative"] * pred) ** 2 + floor**2)
+            prep = dataclasses.replace(prep, sigma=refined)
+            fit = mle_gaussian(prep.operators, prep.values, prep.sigma)
         sigma, scale = _rescale_sigma(prep, fit)
         if scale > 1.0:
             fit = mle_gaussian(prep.operators, prep.values, sigma)
