@@ -130,8 +130,8 @@ def _plots(data, est, directory: str) -> list:
     try:
         written.append(plots.plot_density_matrix(est.rho, list(est.basis), out / "density_matrix.png",
                                                  title=f"{data.header.protocol_name}: reconstructed state"))
-        points = {f: np.array([v for v, _ in s]) for f, s in est.stokes.items()}
-        unc = {f: float(np.sqrt(sum(sd**2 for _, sd in s[1:]))) for f, s in est.stokes.items()}
+        points = {f: np.array([v for v, *_ in s]) for f, s in est.stokes.items()}
+        unc = {f: float(np.sqrt(sum(sd**2 for _, sd, *_ in s[1:]))) for f, s in est.stokes.items()}
         written.append(plots.plot_poincare(points, out / "poincare.png", title="reduced states", uncertainties=unc))
         if est.rho.shape == (4, 4):
             from lightloom.sequencer.analysis.portrait import portrait
