@@ -36,6 +36,7 @@ VERBS: dict[str, Verb] = {
         "calibrate", "fit element offsets, retardances, port gains and sorter visibility from calibration runs"
     ),
     "sim": Verb("sim", "simulated instruments (sim serve)"),
+    "probe": Verb("probe", "list instruments (--list) or check every device of a bench before a night"),
     "demo": Verb("demo", "simulate a joint spin-orbit tomography of a vector beam and analyse it (under a minute)"),
 }
 

@@ -90,6 +90,11 @@ class _FactorRegistry:
 
 
 def _partner(label: str) -> str | None:
+    """The orthogonal state's label: a named one (H -> V), or a Stokes target's negated vector."""
+    if label.startswith("s(") and label.endswith(")"):
+        parts = label[2:-1].split()
+        flipped = [p[1:] if p.startswith("-") else p if p.strip("0.+") == "" else "-" + p.lstrip("+") for p in parts]
+        return "s(" + " ".join(flipped) + ")"
     return ORTHOGONAL_NAME.get(label)
 
 
