@@ -17,7 +17,7 @@ import pytest
 from lightloom.sequencer import cli
 from lightloom.sequencer.errors import StorageError
 from lightloom.sequencer.storage import RunStore, journal_path_for, load_run, read_journal, read_runfile
-from test_storage_records import make_header, make_reading
+from helpers.records import make_header, make_reading
 
 REPO = Path(__file__).resolve().parents[1]
 

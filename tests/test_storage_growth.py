@@ -16,7 +16,7 @@ import numpy as np
 import lightloom.sequencer.storage.store as store_module
 from lightloom.sequencer.storage import Event, RunStore, journal_path_for, load_run, read_runfile
 from lightloom.sequencer.storage.journal import CHUNK_BYTES
-from test_storage_records import make_header, make_reading
+from helpers.records import make_header, make_reading
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -141,7 +141,7 @@ def test_a_reader_opening_the_file_during_refreshes_always_sees_a_whole_run(tmp_
             import sys
             sys.path.insert(0, {str(REPO / "tests")!r})
             from lightloom.sequencer.storage import RunStore
-            from test_storage_records import make_header, make_reading
+            from helpers.records import make_header, make_reading
             store = RunStore.create({str(path)!r}, make_header(3000))
             print("ready", flush=True)
             for i in range(600):

@@ -7,7 +7,6 @@ This is the imperative shell around the compiler and the runner; the command-lin
 from __future__ import annotations
 
 import datetime as dt
-import math
 import signal
 import sys
 import time
@@ -26,8 +25,8 @@ from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, Be
 from lightloom.sequencer.optics.states import BASIS_LABELS
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
-from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, hms, _complete_product as _complete_ports
 from lightloom.sequencer.run.safety import LASER_SAFETY_CAUTION
+from lightloom.sequencer.outputs import check_new_output
 from lightloom.sequencer.model.records import FORMAT_VERSION, Event, PortLayout, RunHeader, RunSources
 from lightloom.sequencer.storage.store import RunStore
 from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
@@ -252,10 +251,8 @@ def start_run(protocol_spec: str, bench_spec: str, out: str, *, console: Console
         )
     units = port_units(bench)
     out_path = Path(out)
-    if out_path.exists():
-        raise UsageError(f"{out_path} exists already; lightloom never overwrites a run file (use `lightloom resume {out_path}` or another --out)")
-    if not out_path.parent.exists():
-        raise UsageError(f"the folder {out_path.parent} does not exist; create it or choose another --out")
+    check_new_output(out_path, "--out", f"{out_path} exists already; lightloom never overwrites a run file "
+                     f"(use `lightloom resume {out_path}` or another --out)")
     assembled = assemble(bench)
     header = make_header(protocol, bench, plan, units, protocol_spec, bench_spec)
     store = RunStore.create(out_path, header)
@@ -337,17 +334,6 @@ def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
     return protocol, bench
 
 
-def _initial_beam_level(store: RunStore, table) -> float | None:
-    row = store.summary.first_beam_row
-    if row is None:
-        return None
-    ref = float(row["reference_w"])
-    if not math.isnan(ref):
-        return ref
-    gains = np.array([p.gain for p in table.ports])
-    return float(np.sum(row["values"] / gains)) if len(table.ports) > 1 else None
-
-
 def _execute(protocol, bench, plan, assembled, store, out_path, done, console, live, *, resumed) -> int:
     table = table_model(bench)
     log = RunLog(log_path_for(out_path))
@@ -371,7 +357,7 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             sys.stderr.write(LASER_SAFETY_CAUTION)
             sys.stderr.flush()
             log("laser-safety caution shown; the shutter will open unattended")
-        if bench.roles.reference is None and not _complete_ports(table):
+        if bench.roles.reference is None and not ports_watch_the_beam(table):
             blind = (
                 "warning: this bench has no beam monitor (no reference meter, and its ports do not "
                 "measure a complete set), so a lost beam cannot be told from a dark projector and "
@@ -397,8 +383,8 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
                         run_start=run_start,
                         parallel_reads=not (bench.is_simulated and bench.simulation.time_scale == 0),
                         begin_reading=getattr(assembled.simulated_table, "begin_step", None),
+                        beam_baseline=_initial_beam_level(store, table),
                         **runner_kwargs)
-        runner._beam.baseline = _initial_beam_level(store, table)
         with stop_on_sigterm():
             status, message = runner.execute(done)
     except BaseException as exc:
@@ -422,6 +408,14 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
     _say(console, f"{status}: {message}")
     _say(console, f"data: {out_path}   log: {log_path_for(out_path)}")
     return STATUS_EXIT[status]
+
+
+def _initial_beam_level(store: RunStore, table) -> float | None:
+    """The beam baseline of a resumed run, from its first shutter-open reading (None if none)."""
+    row = store.summary.first_beam_row
+    if row is None:
+        return None
+    return beam_level("measure", row["values"], float(row["reference_w"]), table)
 
 
 def _as_mask(done, total: int) -> np.ndarray:

@@ -120,7 +120,7 @@ def lag_seconds(samples: list[tuple[float, int, int]]) -> float:
 def refresh_costs(n: int, folder: Path) -> tuple[float, float]:
     """Median seconds of a 200-reading refresh early and late in an n-reading store."""
     sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-    from test_storage_records import make_header, make_reading
+    from helpers.records import make_header, make_reading
     from lightloom.sequencer.storage import RunStore
     import lightloom.sequencer.storage.journal as journal_module
 
