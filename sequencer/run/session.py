@@ -25,6 +25,8 @@ from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, Be
 from lightloom.sequencer.optics.states import BASIS_LABELS
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
+from lightloom.sequencer.run.beam import beam_level, ports_watch_the_beam
+from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, hms
 from lightloom.sequencer.run.safety import LASER_SAFETY_CAUTION
 from lightloom.sequencer.outputs import check_new_output
 from lightloom.sequencer.model.records import FORMAT_VERSION, Event, PortLayout, RunHeader, RunSources
