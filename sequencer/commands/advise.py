@@ -223,13 +223,14 @@ def _print_text(doc: dict) -> None:
     console.print(table)
     f, b, n = doc["fidelity"], doc["best_local_fidelity"], doc["fidelity_without_correction"]
     console.print(f"  fidelity after these settings   {_fmt_vs(f)}", highlight=False)
-    console.print(f"  best with any local transform   {_fmt_vs(b)}"
-                  f"   (certified bound {b['upper_bound']:.4f})", highlight=False)
+    console.print(f"  best with any local transform   {_fmt_vs(b)}", highlight=False)
     console.print(f"  fidelity as measured            {_fmt_vs(n)}", highlight=False)
     if doc["remaining_error"] == "source":
-        console.print("  these settings reach the best any local transformation can: what is left is in the source",
-                      highlight=False)
+        console.print("  these settings reach the best any local transformation can:", highlight=False)
+        console.print("  what is left is in the source", highlight=False)
     else:
-        console.print("  the elements on hand cannot reach the local optimum: a more general spatial transformation "
-                      "would gain the difference", highlight=False)
-    console.print(f"  search: {doc['certificate']['how']} (gap {doc['certificate']['gap']:.1e})", highlight=False)
+        console.print("  the elements on hand cannot reach the local optimum: a more general", highlight=False)
+        console.print("  spatial transformation would gain the difference", highlight=False)
+    c = doc["certificate"]
+    console.print(f"  certified: at most {c['upper_bound']:.4f} reachable (gap {c['gap']:.1e})", highlight=False)
+    console.print(f"  how: {c['how']}", highlight=False)
