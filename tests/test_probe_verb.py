@@ -166,7 +166,7 @@ def test_list_reports_what_answers_at_given_addresses_without_hanging(served, ca
         elapsed = time.monotonic() - t0
     finally:
         silent.close()
-    assert status == 0 and elapsed < 5.0
+    assert status == 0 and elapsed < 8.0  # 0.3 s timeouts: bounded even with a silent port
     found = {f["address"]: f for f in doc["found"]}
     assert found[stage.visa_address]["identity"].startswith("lightloom,SIM-STAGE")
     assert found[stage.visa_address]["kind_guess"] == "rotation_stage"
