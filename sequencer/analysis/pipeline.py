@@ -1,21 +1,25 @@
 """From a run (its readings and the operators of every port reading) to states and figures of merit.
 
-Pure: takes the RunData read from a file, returns plain results. The corrections, each recorded in
-the result:
+Pure: takes the RunData read from a file, returns plain results. The corrections, each applied
+per reading and recorded in the result:
 
 1. background: the shutter-closed readings of each port, interpolated in time, are subtracted;
    their spread enters the noise model;
 2. port gains: divided out of power readings and of their operators alike (E = g K^dagger K in the
    file); counts keep gains in the operators, since counts cannot be rescaled;
 3. drift: readings are divided by the smoothed pick-off reference (or by the reference steps'
-   total power interpolated in time) relative to its mean;
+   total power interpolated in time) relative to its mean; for counts the factor multiplies the
+   operators instead;
 4. normalisation per setting over complementary ports (optional, when the ports of a setting
    measure a complete set): each step's readings are divided by their sum, which cancels drift
    without a reference meter.
 
-Single-factor protocols sum the readings of the ports (and expansion steps) that measure the same
-projector on the analysed factor, then reduce the operators to that factor, Tr_other(E) / 2,
-which is exact when the summed operator is A (x) I.
+Then the readings of each (setting, port) are combined into sufficient statistics
+(sequencer.analysis.sufficient), so that the fits cost O(distinct operators). The per-port
+operators stored in the file are the truth: single-factor protocols are reduced to their factor
+by what the operators say, never by the projectors' labels (sequencer.analysis.reduction). What
+the operators determine is checked first (sequencer.analysis.determines): a run that does not yet
+determine the state gives the Stokes components it does determine, and says what is missing.
 """
 
 from __future__ import annotations
@@ -29,10 +33,15 @@ import numpy as np
 from lightloom.sequencer.analysis.estimate import (
     MleResult, linear_inversion, mle_gaussian, mle_poisson, parametric_bootstrap,
 )
+from lightloom.sequencer.analysis.determines import Determined, determined_by, factor_observable
 from lightloom.sequencer.analysis.estimate import merit
+from lightloom.sequencer.analysis.estimate.hermitian import to_matrix, to_vector
+from lightloom.sequencer.analysis.estimate.linear import least_squares_operator
+from lightloom.sequencer.analysis.reduction import reduce_to_factor
+from lightloom.sequencer.analysis.sufficient import Sums, accumulate, setting_ids
 from lightloom.sequencer.optics.analyzer import complete_port_set
-from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS, partial_trace
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS
+from lightloom.sequencer.optics.stokes import PAULI
 from lightloom.sequencer.model.records import RunData
 
 FACTOR_BASIS = {"polarization": ("H", "V"), "spatial": ("h", "v")}
@@ -47,7 +56,11 @@ class AnalysisError(ValueError):
 
 @dataclass(frozen=True)
 class Prepared:
-    """Readings ready for an estimator: one row per (combined) reading."""
+    """Readings ready for an estimator: one row per distinct operator (sufficient statistics).
+
+    ``values`` are mean readings (W) for the Gaussian model with ``sigma`` the std of that mean,
+    or summed counts for the Poisson model (operators then summed too, in counts/s units).
+    """
 
     operators: np.ndarray  # (n, d, d)
     values: np.ndarray  # (n,) counts or W
@@ -56,24 +69,30 @@ class Prepared:
     basis: tuple[str, ...]
     analyzes: tuple[str, ...]
     corrections: dict[str, Any]
-    labels: tuple[str, ...] = ()
     times: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    readings: int = 0  # port readings behind the rows
+    segment: dict[str, Any] = field(default_factory=dict)  # kind, index, t_start, t_end
 
 
 @dataclass(frozen=True)
 class Estimate:
     """The result of an analysis: the state, its figures with uncertainties, and how it was made."""
 
-    rho: np.ndarray
-    rho_std: np.ndarray
+    rho: np.ndarray | None  # None when the readings do not determine the state (partial)
+    rho_std: np.ndarray | None
     basis: tuple[str, ...]
     analyzes: tuple[str, ...]
     figures: dict[str, tuple[float, float]]  # name -> (value, std)
-    stokes: dict[str, list[tuple[float, float]]]  # factor -> [S0..S3] (value, std)
+    stokes: dict[str, list[tuple[float, float] | None]]  # factor -> [S0..S3] (value, std), None if not determined
     closest_mode: tuple[str, float, float] | None
     estimator: dict[str, Any]
     corrections: dict[str, Any]
     linear_rho: np.ndarray | None = None
+    power: tuple[float, float] | None = None  # (value, std): S0 in W or counts/s
+    power_units: str = "W"
+    determined: Determined | None = None
+    partial: bool = False  # True: the state is not determined; only some Stokes components are
+    segment: dict[str, Any] = field(default_factory=dict)
 
 
 def _smooth(t: np.ndarray, y: np.ndarray, window: int) -> np.ndarray:
@@ -140,118 +159,187 @@ def _complete_ports(run: RunData) -> bool:
     return complete_port_set(list(zip(extra.get("port_sorter", []), extra.get("port_splitter", []))))
 
 
-def _spread_model(values: np.ndarray, groups: np.ndarray, bg_std: float) -> tuple[float, float, str]:
-    """(a, b) of sigma^2 = a^2 + (b v)^2 from repeated readings (groups), else fall-backs."""
+def _port_gains(run: RunData) -> np.ndarray:
+    h = run.header
+    return np.asarray(h.extra.get("port_gain") or [1.0] * len(h.port_names), dtype=float)
+
+
+def _spread_model(sums: Sums, bg_std: float) -> tuple[float, float, str]:
+    """(a, b) of sigma^2 = a^2 + (b v)^2 from repeated readings (rows of ``sums`` with count >= 2)."""
     a = float(bg_std)
-    uniq, inverse, counts = np.unique(groups, return_inverse=True, return_counts=True)
-    rep = counts[inverse] >= 2
-    if rep.sum() >= 4:
-        means = np.bincount(inverse, weights=values) / counts
-        dev = values - means[inverse]
-        corr = counts[inverse] / np.maximum(counts[inverse] - 1, 1)  # unbiased variance per reading
-        var = (dev**2 * corr)[rep]
-        v2 = (means[inverse] ** 2)[rep]
-        # least squares of var = a^2 + b^2 v^2 with a fixed from the background
+    rep = sums.count >= 2
+    if sums.count[rep].sum() >= 4:
+        k = sums.count[rep]
+        mean = sums.sum_value[rep] / k
+        var = np.clip(sums.sum_value2[rep] - k * mean**2, 0.0, None) / (k - 1)
+        # least squares of var = a^2 + b^2 v^2 with a fixed from the background, one term per reading
         excess = np.clip(var - a * a, 0.0, None)
-        b2 = float(np.sum(excess * v2) / max(np.sum(v2 * v2), 1e-300))
-        return a, math.sqrt(max(b2, 0.0)), f"from {int(rep.sum())} repeated readings"
+        v2 = mean**2
+        b2 = float(np.sum(k * excess * v2) / max(float(np.sum(k * v2 * v2)), 1e-300))
+        return a, math.sqrt(max(b2, 0.0)), f"from {int(k.sum())} repeated readings"
     return a, MIN_RELATIVE_SPREAD, "no repeats: background spread and a relative floor, rescaled by the fit residuals"
 
 
+@dataclass(frozen=True)
+class Segments:
+    """How to cut a run for separate fits: one id per reading (-1: left out), and what each id is."""
+
+    of_reading: np.ndarray  # (n,) int
+    kind: str  # "run" | "pass" | "window"
+    labels: tuple[int, ...]  # the pass index or window number of each segment id
+
+
+def whole_run(n_readings: int) -> Segments:
+    """Every reading in one segment."""
+    return Segments(np.zeros(n_readings, dtype=np.int64), "run", (0,))
+
+
+def by_pass(pass_index: np.ndarray) -> Segments:
+    """One segment per outer pass (sweep) of the protocol."""
+    labels, inverse = np.unique(pass_index, return_inverse=True)
+    return Segments(np.asarray(inverse, dtype=np.int64).reshape(-1), "pass", tuple(int(x) for x in labels))
+
+
+def by_window(t_mid: np.ndarray, window_s: float) -> Segments:
+    """Consecutive time windows of ``window_s`` seconds from the first reading."""
+    if window_s <= 0:
+        raise AnalysisError("a time window must be longer than 0 s")
+    if len(t_mid) == 0:
+        return Segments(np.zeros(0, dtype=np.int64), "window", ())
+    number = np.floor((t_mid - float(np.min(t_mid))) / window_s).astype(np.int64)
+    labels, inverse = np.unique(number, return_inverse=True)
+    return Segments(np.asarray(inverse, dtype=np.int64).reshape(-1), "window", tuple(int(x) for x in labels))
+
+
 def prepare(run: RunData, *, normalize: bool = False, operators: np.ndarray | None = None) -> Prepared:
-    """Readings of the ``measure`` kind, corrected, combined and reduced for the estimators.
+    """Readings of the ``measure`` kind, corrected and reduced to sufficient statistics for the estimators.
 
     ``operators`` may replace the stored ones (e.g. recomputed with a new calibration).
     """
+    prepared = prepare_segments(run, whole_run(len(run.readings)), normalize=normalize, operators=operators)
+    if not prepared:
+        raise AnalysisError("the run has no measure readings yet; wait for the first setting to be measured")
+    return prepared[0]
+
+
+def prepare_segments(
+    run: RunData, segments: Segments, *, normalize: bool = False, operators: np.ndarray | None = None,
+) -> list[Prepared]:
+    """One Prepared per segment that holds measure readings (corrections computed on the whole run).
+
+    Each reading is corrected on its own (background interpolated in time, drift, port gains,
+    optional normalisation), then the readings of each (segment, setting, port) are summed into
+    sufficient statistics (sequencer.analysis.sufficient): the estimators see one row per
+    distinct operator, whatever the length of the night.
+    """
     h = run.header
     r = run.readings
-    meas = r.of_kind("measure")
-    if not meas.any():
-        raise AnalysisError("the run has no measure readings yet; wait for the first setting to be measured")
     counts = h.port_units == "counts"
-    gains = np.asarray(h.extra.get("port_gain") or [1.0] * len(h.port_names), dtype=float)
+    gains = _port_gains(run)
     complete = _complete_ports(run)
     bg, bg_std, ref_bg, bg_info = _background(run)
     drift, drift_info = _drift_factor(run, ref_bg, complete, gains)
-    ops_all = np.asarray(operators if operators is not None else r.operators)
-    values = (r.values - bg)[meas]
-    ops = ops_all[meas]
-    f = drift[meas]
-    steps = r.step_index[meas]
-    plan = Plan.from_json(h.plan_json)
-    labels_by_step = {s.index: s.port_labels for s in plan.steps}
-    n, n_ports = values.shape
+    ops_source = operators if operators is not None else r.operators
+    meas = r.of_kind("measure") & (segments.of_reading >= 0)
+    rows = np.flatnonzero(meas)
+    if rows.size == 0:
+        return []
+    if normalize and not complete:
+        raise AnalysisError("normalisation per setting needs ports that measure a complete set (e.g. all four ports)")
     corrections: dict[str, Any] = {"background": bg_info, "drift": drift_info}
+    d = int(h.dimension)
+    t_mid_all = 0.5 * (r.t_start + r.t_end)
+
+    def corrected(lo: int, hi: int, mask: np.ndarray) -> np.ndarray:
+        v = (np.asarray(r.values[lo:hi]) - bg[lo:hi])[mask]
+        if counts:
+            return np.clip(np.round(v), 0, None)
+        v = v / drift[lo:hi][mask][:, None] / gains[None, :]
+        if normalize:
+            tot = v.sum(axis=1, keepdims=True)
+            if (tot <= 0).any():
+                raise AnalysisError("a setting has no signal at all; normalisation is impossible")
+            v = v / tot
+        return v
+
+    def model_operators(lo: int, hi: int, mask: np.ndarray) -> np.ndarray:
+        e = np.asarray(ops_source[lo:hi])[mask]
+        if counts:
+            # expected counts of a reading: drift x dwell x tr(T E), T in counts/s
+            scale = drift[lo:hi][mask] * np.asarray(r.dwell_s[lo:hi])[mask]
+            return e * scale[:, None, None, None]
+        return e / gains[None, :, None, None]
+
     if counts:
-        values = np.clip(np.round(values / f[:, None]), 0, None)
+        base_var = np.zeros(len(gains))
         corrections["port_gain"] = {"applied": True, "how": "kept in the operators (counts are not rescaled)",
                                     "gains": gains.tolist()}
-        sig = None
+        corrections["drift"] = {**drift_info, "how": "folded into the operators with the dwell (counts stay counts)"} \
+            if drift_info.get("applied") else drift_info
     else:
-        values = values / f[:, None] / gains[None, :]
-        ops = ops / gains[None, :, None, None]
-        sig_bg = np.broadcast_to(bg_std / gains, values.shape)
+        base_var = (bg_std / gains) ** 2
         corrections["port_gain"] = {"applied": True, "how": "divided out of readings and operators",
                                     "gains": gains.tolist()}
-        sig = np.array(sig_bg)
-    if normalize:
-        if not complete:
-            raise AnalysisError("normalisation per setting needs ports that measure a complete set (e.g. all four ports)")
-        tot = values.sum(axis=1, keepdims=True)
-        if (tot <= 0).any():
-            raise AnalysisError("a setting has no signal at all; normalisation is impossible")
-        values = values / tot
-        if sig is not None:
-            sig = sig / tot
-        corrections["normalisation"] = {"applied": True, "how": "each setting's readings divided by their sum over the complementary ports"}
+    corrections["normalisation"] = (
+        {"applied": True, "how": "each setting's readings divided by their sum over the complementary ports"}
+        if normalize else {"applied": False}
+    )
+    sums = accumulate(
+        rows=rows, segment=segments.of_reading[rows], pass_index=np.asarray(r.pass_index)[rows],
+        setting=setting_ids(np.asarray(r.commanded)[rows]), values_of=corrected, operators_of=model_operators,
+        base_variance=base_var, t_mid=t_mid_all[rows], d=d,
+    )
+    noise: dict[str, Any] = {"model": "poisson"}
+    a = b = 0.0
+    if not counts:
+        a = float(np.sqrt(np.mean(base_var))) if len(base_var) else 0.0
+        a, b, how = _spread_model(sums, a)
+        noise = {"model": "gaussian", "absolute_w": a, "relative": b, "how": how}
+    per_fit, _ = sums.merged(("segment", "setting", "port"))
+    out = []
+    for seg in np.unique(per_fit.segment):
+        part = per_fit.select(per_fit.segment == seg)
+        out.append(_rows_for_fit(run, part, counts, b, dict(corrections, noise_model=dict(noise)),
+                                 segment=int(seg), segments=segments))
+    return out
+
+
+def _rows_for_fit(run: RunData, part: Sums, counts: bool, relative: float, corrections: dict[str, Any],
+                  *, segment: int, segments: Segments) -> Prepared:
+    """The estimator's rows of one segment: one per (setting, port), reduced to one factor if asked."""
+    analyzes = run.header.analyzes
+    k = part.count
+    if counts:
+        ops, vals, var = part.sum_operator, part.sum_value, None
     else:
-        corrections["normalisation"] = {"applied": False}
-    # Flatten to one row per port reading, keyed for combination.
-    flat_ops = ops.reshape(n * n_ports, 4, 4)
-    flat_vals = values.reshape(-1)
-    flat_sig = sig.reshape(-1) if sig is not None else None
-    labels = [labels_by_step.get(int(s), ("",) * n_ports)[j] for s in steps for j in range(n_ports)]
-    keys = []
-    for i, (p, q, rep) in enumerate(zip(r.pass_index[meas], r.point_index[meas], r.repeat_index[meas])):
-        for j in range(n_ports):
-            keys.append((int(p), int(q), int(rep), labels[i * n_ports + j]))
-    analyzes = h.analyzes
-    t_rows = np.repeat(0.5 * (r.t_start + r.t_end)[meas], n_ports)
+        mean = part.sum_value / k
+        ops = part.sum_operator / k[:, None, None]
+        mean_sq = part.sum_value2 / k
+        floor = 1e-6 * float(np.max(np.abs(mean))) if len(mean) else 0.0
+        # variance of the mean of k readings, each with sigma^2 = background + (b v)^2 + floor^2
+        var = (part.sum_base_variance + relative**2 * part.sum_value2 + k * floor**2) / k**2
+        vals = mean
+        del mean_sq
+    times = part.t_sum / k
     if len(analyzes) == 1:
-        index: dict[tuple, int] = {}
-        group = np.array([index.setdefault(k, len(index)) for k in keys])
-        m = len(index)
-        g_ops = np.zeros((m, 4, 4), dtype=np.complex128)
-        np.add.at(g_ops, group, flat_ops)
-        g_vals = np.bincount(group, weights=flat_vals, minlength=m)
-        g_sig = np.sqrt(np.bincount(group, weights=flat_sig**2, minlength=m)) if flat_sig is not None else None
         keep = analyzes[0]
-        red = partial_trace(g_ops, keep) / 2.0
-        out_labels = [None] * m
-        for k, gi in index.items():
-            out_labels[gi] = k[3]
-        t_out = np.bincount(group, weights=t_rows, minlength=m) / np.bincount(group, minlength=m)
-        ops_out, vals_out, sig_out, basis = red, g_vals, g_sig, FACTOR_BASIS[keep]
-        rep_keys = [hash((k[0], k[1], k[3])) for k in sorted(index, key=index.get)]
-        corrections["reduction"] = {"applied": True, "how": f"ports and expansion steps summed per projector, then Tr over the other factor / 2, keeping {keep}"}
+        ops, vals, var, info = reduce_to_factor(ops, vals, var, keep)
+        basis = FACTOR_BASIS[keep]
+        corrections["reduction"] = {"applied": True, "case": info.case, "how": info.describe(keep),
+                                    "projectors": info.clusters, "exact_projectors": info.exact_clusters,
+                                    "worst_residual": info.worst_residual}
+        times = np.full(len(vals), float(np.sum(part.t_sum) / np.sum(k)))
     else:
-        ops_out, vals_out, sig_out, basis = flat_ops, flat_vals, flat_sig, BASIS_LABELS
-        out_labels = labels
-        t_out = t_rows
-        rep_keys = [hash((k[0], k[1], k[3])) for k in keys]
+        basis = BASIS_LABELS
         corrections["reduction"] = {"applied": False}
-    if sig_out is not None:
-        a = float(np.sqrt(np.mean(sig_out**2))) if len(sig_out) else 0.0
-        a_, b, how = _spread_model(vals_out, np.array(rep_keys), a)
-        floor = 1e-6 * float(np.max(np.abs(vals_out))) if len(vals_out) else 0.0
-        sig_out = np.sqrt(sig_out**2 + (b * np.abs(vals_out)) ** 2 + floor**2)
-        corrections["noise_model"] = {"model": "gaussian", "absolute_w": a, "relative": b, "how": how}
-    else:
-        corrections["noise_model"] = {"model": "poisson"}
+    sig = None if var is None else np.sqrt(np.maximum(var, np.finfo(float).tiny))
+    label = segments.labels[segment] if segment < len(segments.labels) else segment
     return Prepared(
-        operators=ops_out, values=vals_out, sigma=sig_out, model="poisson" if counts else "gaussian",
+        operators=ops, values=vals, sigma=sig, model="poisson" if counts else "gaussian",
         basis=tuple(basis), analyzes=tuple(analyzes), corrections=corrections,
-        labels=tuple(str(x) for x in out_labels), times=np.asarray(t_out),
+        times=np.asarray(times), readings=int(k.sum()),
+        segment={"kind": segments.kind, "index": int(label),
+                 "t_start": float(part.t_min.min()), "t_end": float(part.t_max.max())},
     )
 
 
@@ -289,8 +377,32 @@ def _rescale_sigma(prep: Prepared, fit: MleResult) -> tuple[np.ndarray, float]:
     return prep.sigma * scale, scale
 
 
+def _power_std(prep: Prepared, fit: MleResult, sigma: np.ndarray | None) -> float:
+    """Std of tr(T) (W or counts/s) by linear propagation through the least-squares estimator."""
+    design = to_vector(prep.operators)
+    if sigma is None:
+        var = np.maximum(fit.intensity * np.real(np.einsum("nij,ji->n", prep.operators, fit.rho)), 1.0)
+    else:
+        var = np.asarray(sigma) ** 2
+    solve, _ = least_squares_operator(design, 1.0 / var)
+    d = prep.operators.shape[-1]
+    trace_row = solve[:d].sum(axis=0)  # the first d coordinates are the diagonal of T
+    return float(np.sqrt(np.sum(trace_row**2 * var)))
+
+
+def _power_units(prep: Prepared) -> str:
+    return "counts/s" if prep.model == "poisson" else "W"
+
+
 def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Generator, n_bootstrap: int = 200) -> Estimate:
-    """Maximum likelihood with the run's noise model, figures of merit, bootstrap uncertainties."""
+    """Maximum likelihood with the run's noise model, figures of merit, bootstrap uncertainties.
+
+    When the rows do not determine the state (a run part way, an incomplete protocol), the
+    Stokes components they do determine are estimated by least squares instead (``partial``).
+    """
+    determined = determined_by(prep.operators, prep.analyzes)
+    if not determined.state:
+        return _partial_estimate(prep, determined, rng=rng, n_bootstrap=n_bootstrap)
     if prep.model == "poisson":
         if prep.values.sum() <= 0:
             raise AnalysisError("no counts above background in the measure readings")
@@ -322,7 +434,7 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
     for i in range(d):
         for j in range(d):
             rho_std[i, j] = figs.pop(f"_re_{i}{j}")[1] + 1j * figs.pop(f"_im_{i}{j}")[1]
-    stokes: dict[str, list[tuple[float, float]]] = {}
+    stokes: dict[str, list[tuple[float, float] | None]] = {}
     for factor in prep.analyzes if len(prep.analyzes) == 1 else ("polarization", "spatial"):
         stokes[factor] = [(1.0, 0.0)] + [figs.pop(f"stokes_{factor}_{k}") for k in range(1, 4)]
     closest = None
@@ -342,10 +454,73 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
             "log_likelihood": fit.log_likelihood, "certified_gap": fit.certified_gap,
             "iterations": fit.iterations, "converged": bool(fit.converged), "intensity": fit.intensity,
             "bootstrap_resamples": boot.n_resamples, "bootstrap_converged": boot.n_converged,
-            "readings": int(len(prep.values)),
+            "readings": int(prep.readings), "distinct_operators": int(len(prep.values)),
         },
         corrections=corrections,
         linear_rho=lin.rho,
+        power=(float(fit.intensity), _power_std(prep, fit, sigma)),
+        power_units=_power_units(prep),
+        determined=determined,
+        segment=dict(prep.segment),
+    )
+
+
+def _observables(prep: Prepared) -> dict[str, list[np.ndarray]]:
+    """Per factor, the observables [s0, s1, s2, s3] of its Stokes parameters in the rows' space."""
+    if prep.operators.shape[-1] == 2:
+        return {prep.analyzes[0]: [PAULI[k] for k in range(4)]}
+    return {f: [factor_observable(f, k) for k in range(4)] for f in ("polarization", "spatial")}
+
+
+def _partial_estimate(prep: Prepared, determined: Determined, *, rng: np.random.Generator,
+                      n_bootstrap: int) -> Estimate:
+    """The Stokes components the rows determine, by weighted least squares (minimum-norm solution:
+    every determined functional has the same value on all solutions), std from replicate readings."""
+    d = prep.operators.shape[-1]
+    design = to_vector(prep.operators)
+    v = np.asarray(prep.values, dtype=float)
+    if prep.model == "poisson":
+        var = np.maximum(v, 1.0)
+        replicas = rng.poisson(np.maximum(v, 0.0), size=(n_bootstrap, v.size)).astype(float)
+    else:
+        var = np.asarray(prep.sigma) ** 2
+        replicas = v[None, :] + np.sqrt(var)[None, :] * rng.standard_normal((n_bootstrap, v.size))
+    solve, _ = least_squares_operator(design, 1.0 / var)
+    x = solve @ v
+    xs = replicas @ solve.T
+    stokes: dict[str, list[tuple[float, float] | None]] = {}
+    figures: dict[str, tuple[float, float]] = {}
+    power = None
+    for factor, obs in _observables(prep).items():
+        fixed = determined.stokes.get(factor, ())
+        if not fixed:
+            continue
+        coords = to_vector(np.asarray(obs))
+        s0, s0s = coords[0] @ x, xs @ coords[0]
+        entry: list[tuple[float, float] | None] = [(1.0, 0.0)]
+        for k in (1, 2, 3):
+            if k in fixed:
+                entry.append((float(coords[k] @ x / s0), float(np.std((xs @ coords[k]) / s0s, ddof=1))))
+            else:
+                entry.append(None)
+        stokes[factor] = entry
+        if len(fixed) == 3:
+            dop = np.sqrt(sum((xs @ coords[k] / s0s) ** 2 for k in (1, 2, 3)))
+            figures[f"dop_{factor}"] = (float(np.sqrt(sum(entry[k][0] ** 2 for k in (1, 2, 3)))),
+                                        float(np.std(dop, ddof=1)))
+        if power is None:
+            power = (float(s0), float(np.std(s0s, ddof=1)))
+    rank_info = f"{determined.parameters} of {d * d} parameters determined"
+    return Estimate(
+        rho=None, rho_std=None, basis=prep.basis, analyzes=prep.analyzes, figures=figures, stokes=stokes,
+        closest_mode=None,
+        estimator={
+            "method": "weighted least squares on the determined components (the state is not determined)",
+            "model": prep.model, "determined": rank_info, "bootstrap_resamples": int(n_bootstrap),
+            "readings": int(prep.readings), "distinct_operators": int(len(v)),
+        },
+        corrections=dict(prep.corrections), power=power, power_units=_power_units(prep),
+        determined=determined, partial=True, segment=dict(prep.segment),
     )
 
 
@@ -360,40 +535,67 @@ def target_of(run: RunData) -> np.ndarray | None:
     return None
 
 
+def _vs(pair: tuple[float, float] | None) -> dict[str, float] | None:
+    if pair is None:
+        return None
+    return {"value": float(pair[0]), "std": float(pair[1])}
+
+
+def run_section(run: RunData) -> dict[str, Any]:
+    """The ``run`` section of the document: status and progress."""
+    return {
+        "status": run.status,
+        "steps_done": int(run.steps_done),
+        "steps_total": int(run.header.steps_total),
+        "message": run.message,
+        "protocol": run.header.protocol_name,
+        "bench": run.header.bench_name,
+    }
+
+
+def empty_document(run: RunData, reason: str) -> dict[str, Any]:
+    """The document of a run that has nothing to estimate yet (no measure readings, no signal)."""
+    basis = FACTOR_BASIS[run.header.analyzes[0]] if len(run.header.analyzes) == 1 else BASIS_LABELS
+    return {"basis": list(basis), "determines": "partial", "missing": [reason], "run": run_section(run)}
+
+
 def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
     """The fixed ``analyze --json`` document (DESIGN.md), plus extras."""
-    def vs(pair: tuple[float, float]) -> dict[str, float]:
-        return {"value": float(pair[0]), "std": float(pair[1])}
-
-    out: dict[str, Any] = {
-        "basis": list(est.basis),
-        "density_matrix": {"real": est.rho.real.tolist(), "imag": est.rho.imag.tolist()},
-        "density_matrix_std": {"real": est.rho_std.real.tolist(), "imag": est.rho_std.imag.tolist()},
-        "purity": vs(est.figures["purity"]),
-        "linear_entropy": vs(est.figures["linear_entropy"]),
-        "stokes": {f: [vs(x) for x in s] for f, s in est.stokes.items()},
-        "degree_of_polarization": {f: vs(est.figures[f"dop_{f}"]) for f in est.stokes},
-        "run": {
-            "status": run.status,
-            "steps_done": int(run.steps_done),
-            "steps_total": int(run.header.steps_total),
-            "message": run.message,
-            "protocol": run.header.protocol_name,
-            "bench": run.header.bench_name,
-        },
-        "estimator": est.estimator,
-        "corrections": est.corrections,
-    }
+    out: dict[str, Any] = {"basis": list(est.basis)}
+    if est.rho is not None:
+        out["density_matrix"] = {"real": est.rho.real.tolist(), "imag": est.rho.imag.tolist()}
+        out["density_matrix_std"] = {"real": est.rho_std.real.tolist(), "imag": est.rho_std.imag.tolist()}
+        out["purity"] = _vs(est.figures["purity"])
+        out["linear_entropy"] = _vs(est.figures["linear_entropy"])
+    out["stokes"] = {f: [_vs(x) for x in s] for f, s in est.stokes.items()}
+    out["degree_of_polarization"] = {f: _vs(est.figures[f"dop_{f}"]) for f in est.stokes if f"dop_{f}" in est.figures}
+    if est.power is not None:
+        out["power"] = {**_vs(est.power), "units": est.power_units}
+    if est.linear_rho is not None:
+        out["linear_inversion"] = {
+            "real": est.linear_rho.real.tolist(), "imag": est.linear_rho.imag.tolist(),
+            "min_eigenvalue": float(np.linalg.eigvalsh(est.linear_rho).min()),
+        }
+    determined = est.determined
+    out["determines"] = determined.kind if determined is not None else "partial"
+    out["missing"] = determined.missing(est.analyzes) if determined is not None else []
+    out["run"] = run_section(run)
+    out["estimator"] = est.estimator
+    out["corrections"] = est.corrections
     if "concurrence" in est.figures:
-        out["concurrence"] = vs(est.figures["concurrence"])
-        out["fully_entangled_fraction"] = vs(est.figures["fully_entangled_fraction"])
+        out["concurrence"] = _vs(est.figures["concurrence"])
+        out["fully_entangled_fraction"] = _vs(est.figures["fully_entangled_fraction"])
     if "fidelity" in est.figures:
-        out["fidelity"] = vs(est.figures["fidelity"])
+        out["fidelity"] = _vs(est.figures["fidelity"])
         out["target"] = run.header.extra.get("target_label")
     if est.closest_mode is not None:
         name, f, s = est.closest_mode
         out["closest_vector_mode"] = {"name": name, "fidelity": {"value": f, "std": s}}
         out["vector_mode_fidelities"] = {
-            k[len("fidelity_to_"):]: vs(v) for k, v in est.figures.items() if k.startswith("fidelity_to_")
+            k[len("fidelity_to_"):]: _vs(v) for k, v in est.figures.items() if k.startswith("fidelity_to_")
         }
+    if est.segment.get("kind") in ("pass", "window"):
+        out[est.segment["kind"]] = est.segment["index"]
+        out["t_start"] = est.segment["t_start"]
+        out["t_end"] = est.segment["t_end"]
     return out
