@@ -11,18 +11,12 @@ from dataclasses import dataclass, field
 from types import MappingProxyType
 from typing import Any, Callable, Mapping
 
-FAMILIES = ("visa", "serial")
-KINDS = ("rotation_stage", "actuator", "shutter", "power_meter", "photon_counter")
+from lightloom.sequencer.model.vocabulary import DEVICE_KINDS, DRIVER_FAMILIES, IDENTITY_WORD
 
-_IDN_KIND = {
-    "rotation_stage": "STAGE",
-    "actuator": "ACTUATOR",
-    "shutter": "SHUTTER",
-    "power_meter": "POWERMETER",
-    "photon_counter": "COUNTER",
-}
+FAMILIES = tuple(f for f in DRIVER_FAMILIES if f != "sim")
+"""The families this package implements (``sim`` devices live with the simulators)."""
 
-# The simulated instruments' command set (INTERFACES.md): a bench for them needs no `commands`.
+# The simulated instruments' command set (served by simulators/scpi_server.py): a bench for them needs no `commands`.
 DEFAULT_COMMANDS: Mapping[str, Mapping[str, str | None]] = MappingProxyType(
     {
         "rotation_stage": {
@@ -320,8 +314,8 @@ _KIND: Mapping[str, Mapping[str, _Option]] = {
 def split_driver(driver: str) -> tuple[str, str]:
     """Split ``"visa.rotation_stage"`` into ``("visa", "rotation_stage")``, or raise."""
     family, _, kind = driver.partition(".") if isinstance(driver, str) else ("", "", "")
-    if family not in FAMILIES or kind not in KINDS:
-        names = [f"{f}.{k}" for f in FAMILIES for k in KINDS]
+    if family not in FAMILIES or kind not in DEVICE_KINDS:
+        names = [f"{f}.{k}" for f in FAMILIES for k in DEVICE_KINDS]
         raise DriverConfigError(
             f"unknown driver {driver!r}{_nearest(str(driver), names)}; "
             f"the message-based drivers are {', '.join(names)}",
@@ -334,7 +328,7 @@ def option_defaults(driver: str) -> Mapping[str, Any]:
     """Every option key a ``visa.<kind>`` or ``serial.<kind>`` driver accepts, with its default."""
     family, kind = split_driver(driver)
     table = {name: option.default for name, option in _schema(family, kind).items()}
-    table["identity"] = f"lightloom,SIM-{_IDN_KIND[kind]}"
+    table["identity"] = f"lightloom,SIM-{IDENTITY_WORD[kind]}"
     table["commands"] = MappingProxyType(dict(DEFAULT_COMMANDS[kind]))
     table["reply_scale"] = 1.0
     return MappingProxyType(table)
@@ -400,7 +394,7 @@ def _parse(
         for name, option in schema.items()
     }
     if "identity" not in options:
-        values["identity"] = f"lightloom,SIM-{_IDN_KIND[kind]}"
+        values["identity"] = f"lightloom,SIM-{IDENTITY_WORD[kind]}"
     fields = values["fields"]
     parsed_limits = _limits(kind, limits)
     commands = _commands(kind, options.get("commands"), fields)

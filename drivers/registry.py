@@ -8,11 +8,12 @@ from typing import Any, Callable, Mapping, Protocol
 
 from lightloom.drivers.interfaces import Device
 from lightloom.drivers.message_devices import MESSAGE_DEVICE_CLASSES
-from lightloom.drivers.options import FAMILIES, KINDS, DriverConfigError, parse_config, split_driver
+from lightloom.drivers.options import FAMILIES, DriverConfigError, parse_config, split_driver
 from lightloom.drivers.transport import LineTransport
+from lightloom.sequencer.model.vocabulary import DEVICE_KINDS
 
 ENTRY_POINT_GROUP = "lightloom.drivers"
-BUILTIN_DRIVERS = tuple(f"{family}.{kind}" for family in FAMILIES for kind in KINDS)
+BUILTIN_DRIVERS = tuple(f"{family}.{kind}" for family in FAMILIES for kind in DEVICE_KINDS)
 
 
 class DriverFactory(Protocol):

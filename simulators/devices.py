@@ -20,6 +20,7 @@ import numpy as np
 
 from lightloom.drivers.errors import BadReply, ConnectionLost, DeviceFault, InstrumentTimeout, LimitViolation
 from lightloom.drivers.interfaces import DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
+from lightloom.sequencer.model.vocabulary import IDENTITY_WORD
 from lightloom.sequencer.plan.kinematics import move_time_s
 from lightloom.simulators.clock import SimClock
 from lightloom.simulators.faults import FaultInjector, garble_reply
@@ -34,11 +35,11 @@ __all__ = [
 IDENTITY_MAKER = "lightloom"
 IDENTITY_VERSION = "0.1"
 
-STAGE = "STAGE"
-ACTUATOR = "ACTUATOR"
-SHUTTER = "SHUTTER"
-POWERMETER = "POWERMETER"
-COUNTER = "COUNTER"
+STAGE = IDENTITY_WORD["rotation_stage"]
+ACTUATOR = IDENTITY_WORD["actuator"]
+SHUTTER = IDENTITY_WORD["shutter"]
+POWERMETER = IDENTITY_WORD["power_meter"]
+COUNTER = IDENTITY_WORD["photon_counter"]
 DEVICE_KINDS: tuple[str, ...] = (STAGE, ACTUATOR, SHUTTER, POWERMETER, COUNTER)
 
 

@@ -9,10 +9,8 @@ from typing import Iterable, Mapping
 
 import numpy as np
 
-LINK_FAULTS: tuple[str, ...] = ("timeout", "garbled", "drop")
-"""Faults of the link to an instrument: raised in process, enacted on the wire when served."""
+from lightloom.sequencer.model.vocabulary import FAULT_KINDS, LINK_FAULTS
 
-FAULT_KINDS: tuple[str, ...] = LINK_FAULTS + ("stuck", "beam_loss")
 
 FAULT_KEYS: tuple[str, ...] = ("device", "kind", "at_s", "probability", "duration_s", "count", "residual")
 

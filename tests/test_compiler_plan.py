@@ -14,8 +14,8 @@ from lightloom.sequencer.optics.analyzer import (
 )
 from lightloom.sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS
 from lightloom.sequencer.plan.ordering import transition_time_s
-from lightloom.sequencer.model.steps import Plan
-from lightloom.sequencer.plan.timing import estimate_plan
+from lightloom.sequencer.model.steps import StepList
+from lightloom.sequencer.plan.timing import estimate_steps
 
 K = StageKinematics(20.0, 50.0, 0.2, 0.05, -360.0, 360.0, 0.002)
 MODEL = AnalyzerModel(PlateModel(90, 0.3), PlateModel(180, -0.2), ConverterModel(90, 45, 0.1, False),
@@ -31,13 +31,13 @@ def _joint(pols="HVDARL", sps=("h", "v", "d", "a", "l+", "l-")) -> list[Request]
     return [Request((POLARIZATION_KETS[p], p), (SPATIAL_KETS[s], s)) for p in pols for s in sps]
 
 
-def _compile(table, reqs, analyzes=("polarization", "spatial"), **kw) -> Plan:
+def _compile(table, reqs, analyzes=("polarization", "spatial"), **kw) -> StepList:
     kw.setdefault("dwell_s", 0.5)
     kw.setdefault("repeats", 1)
     return compile_requests(table, reqs, protocol_name="t", analyzes=analyzes, **kw)
 
 
-def _measure(plan: Plan):
+def _measure(plan: StepList):
     return [s for s in plan.steps if s.kind == "measure"]
 
 
@@ -74,8 +74,8 @@ def test_every_port_measures_the_projector_its_label_names() -> None:
 def test_least_motion_cuts_motion_time_by_at_least_30_percent_on_joint_36() -> None:
     for ports in (FOUR, FOUR[:1]):
         table = _table(ports)
-        written = estimate_plan(_compile(table, _joint(), order="as-written"), table).motion_seconds
-        least = estimate_plan(_compile(table, _joint(), order="least-motion"), table).motion_seconds
+        written = estimate_steps(_compile(table, _joint(), order="as-written"), table).motion_seconds
+        least = estimate_steps(_compile(table, _joint(), order="least-motion"), table).motion_seconds
         assert least <= 0.7 * written, (ports, least, written)
 
 
@@ -95,13 +95,13 @@ def test_repeats_background_reference_and_passes() -> None:
     # per pass: one at the start, after settings 3 and 6, and one at the end
     assert kinds.count("reference") == 2 * 4
     assert {s.pass_index for s in plan.steps} == {0, 1}
-    est = estimate_plan(plan, _table())
+    est = estimate_steps(plan, _table())
     assert est.wait_seconds > 0  # the second pass waits for its start time
 
 
-def test_plan_json_round_trip_is_exact() -> None:
+def test_step_list_json_round_trip_is_exact() -> None:
     plan = _compile(_table(), _joint(), reference_every=2)
-    again = Plan.from_json(plan.to_json())
+    again = StepList.from_json(plan.to_json())
     assert again == plan or again.to_json() == plan.to_json()
 
 

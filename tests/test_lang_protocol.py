@@ -11,7 +11,8 @@ import sympy
 from sympy.physics.optics.polarization import jones_2_stokes
 
 from lightloom.sequencer.errors import ProtocolError
-from lightloom.sequencer.lang.protocol import FACTORS, load_protocol, parse_protocol
+from lightloom.sequencer.lang.protocol import load_protocol, parse_protocol
+from lightloom.sequencer.model.vocabulary import ANALYZERS as FACTORS
 
 HEAD = "protocol: t\ndwell_s: 0.5\n"
 

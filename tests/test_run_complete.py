@@ -21,7 +21,7 @@ import yaml
 
 from lightloom.sequencer import cli
 from lightloom.sequencer.lang.bench import load_bench
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import load_protocol
 from lightloom.sequencer.run.session import log_path_for
 from lightloom.sequencer.storage import RunData, read_runfile
@@ -74,8 +74,8 @@ def wait_for_log_steps(log: Path, n: int, proc: subprocess.Popen, timeout_s: flo
         time.sleep(0.01)
 
 
-def stored_plan(data: RunData) -> Plan:
-    return Plan.from_json(data.header.plan_json)
+def stored_plan(data: RunData) -> StepList:
+    return StepList.from_json(data.header.steps_json)
 
 
 def assert_each_step_once(data: RunData) -> None:
@@ -175,7 +175,7 @@ def test_a_run_completes_with_every_step_once_and_psd_operators(tmp_path, capsys
     assert run_cli("run", protocol, "--bench", bench, "--out", out) == 0
     data = assert_complete(out)
     assert data.message == f"all {len(stored_plan(data).steps)} steps recorded"
-    assert data.header.plan_json == compile_protocol(load_protocol(protocol), load_bench(bench)).to_json()
+    assert data.header.steps_json == compile_protocol(load_protocol(protocol), load_bench(bench)).to_json()
     assert_operators_psd(data, n_ports)
     assert data.readings.values.shape == (len(data.readings), n_ports)
     assert np.all(data.readings.flags == 0)

@@ -12,7 +12,7 @@ from lightloom.sequencer.lang.bench import load_bench
 from lightloom.sequencer.lang.protocol import load_protocol
 from lightloom.sequencer.storage import read_runfile
 from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
-from lightloom.sequencer.plan.timing import estimate_plan
+from lightloom.sequencer.plan.timing import estimate_steps
 from test_run_complete import REPO, run_cli, write_bench
 
 
@@ -75,7 +75,7 @@ def test_dry_run_json_has_points_and_an_estimate_that_adds_up(capsys):
     assert run_cli("dry-run", "joint-36", "--bench", "sim", "--json") == 0
     out = json.loads(capsys.readouterr().out)
     plan = compile_protocol(load_protocol("joint-36"), load_bench("sim"))
-    est = estimate_plan(plan, table_model(load_bench("sim")))
+    est = estimate_steps(plan, table_model(load_bench("sim")))
     assert out["points"] == len(plan.steps) == len(out["steps"])
     assert out["estimated_seconds"] == pytest.approx(est.total_seconds, abs=1e-3)
     assert out["estimated_seconds"] == pytest.approx(sum(s["seconds"] for s in out["steps"]), abs=0.01)

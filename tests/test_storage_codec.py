@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -129,3 +131,11 @@ def test_scan_of_garbage_after_records_is_a_tail():
     raw, _ = _journal_bytes(2)
     scan = scan_frames(raw + np.random.default_rng(5).bytes(3000))
     assert scan.end == len(raw) and scan.damage.intact_after == 0
+
+
+def test_journal_header_written_with_the_old_step_list_key_still_decodes():
+    # Earlier versions named the header's step list "plan_json"; their journals must stay readable.
+    payload = json.loads(encode_header(make_header()))
+    payload["header"]["plan_json"] = payload["header"].pop("steps_json")
+    fmt, header = decode_header(json.dumps(payload).encode("utf-8"))
+    assert header == make_header() and fmt == 1

@@ -34,7 +34,7 @@ def make_header(steps_total: int = 100, *, target: bool = True, ports=PORTS, nam
         bench_name="sim", bench_text=bench, bench_sha256=hashlib.sha256(bench.encode()).hexdigest(),
         simulated=True, analyzes=("polarization", "spatial"), element_names=ELEMENTS,
         port_names=tuple(ports), port_units="W", dimension=4, basis_labels=BASIS,
-        steps_total=steps_total, plan_json=json.dumps([{"step": i} for i in range(3)]),
+        steps_total=steps_total, steps_json=json.dumps([{"step": i} for i in range(3)]),
         target_state=target_state, extra={"port_labels": {"det_hh": "H,h"}, "note": "ünïcode"},
     )
 

@@ -179,3 +179,13 @@ def test_reader_never_sees_a_half_written_file_while_it_is_replaced(tmp_path):
     assert writer.stdout.read().strip() == "done" and writer.returncode == 0
     assert len(set(sizes)) > 5, "the reader never saw the file change"
     assert len(read_runfile(path).readings) == 59 * 3
+
+
+def test_file_written_with_the_old_step_list_name_still_opens(tmp_path):
+    # Earlier versions stored the compiled step list as /plan; such files must stay readable.
+    path = tmp_path / "run.h5"
+    _write(path, status="complete")
+    with h5py.File(path, "r+") as f:
+        f.move("steps", "plan")
+    data = read_runfile(path)
+    assert data.header == make_header() and data.status == "complete"

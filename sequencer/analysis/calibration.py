@@ -47,6 +47,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy.optimize import least_squares, minimize
 
 from lightloom.sequencer.errors import InputError
+from lightloom.sequencer.model.vocabulary import STAGE_ELEMENTS
 from lightloom.sequencer.optics.analyzer import (
     CONVERTER, ELEMENT_NAMES, AnalyzerModel, PlateModel, PortModel,
     RotatorModel, port_operators, probabilities,
@@ -74,7 +75,6 @@ CALIBRATION_INPUT: NDArray[np.complex128] = np.array([1, 0, 0, 0], dtype=np.comp
 """The input the scans assume: |H,h> (a polarizer at H before the analyzer, the h mode)."""
 CALIBRATION_INPUT.setflags(write=False)
 
-SCANNABLE: tuple[str, ...] = ("quarter_wave_plate", "half_wave_plate", "image_rotator", "converter_angle")
 
 # The start of a half-wave-like retardance is moved off 180 deg: there the readings depend on it
 # only quadratically, so a gradient step from exactly 180 would never move it.
@@ -104,8 +104,8 @@ class ScanReadings:
     dark: NDArray[np.bool_]
 
     def __post_init__(self) -> None:
-        if self.scanned not in SCANNABLE:
-            raise ValueError(f"scanned element {self.scanned!r}; expected one of {SCANNABLE}")
+        if self.scanned not in STAGE_ELEMENTS:
+            raise ValueError(f"scanned element {self.scanned!r}; expected one of {STAGE_ELEMENTS}")
         s = np.array(self.settings, dtype=float)
         v = np.array(self.values, dtype=float)
         d = np.array(self.dark, dtype=bool)

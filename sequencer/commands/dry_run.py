@@ -24,13 +24,13 @@ def run(args: argparse.Namespace) -> int:
     from lightloom.sequencer.optics.analyzer import CONVERTER
     from lightloom.sequencer.lang.protocol import load_protocol
     from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
-    from lightloom.sequencer.plan.timing import estimate_plan
+    from lightloom.sequencer.plan.timing import estimate_steps
 
     protocol = load_protocol(args.protocol)
     bench = load_bench(args.bench)
     plan = compile_protocol(protocol, bench)
     table = table_model(bench)
-    est = estimate_plan(plan, table)
+    est = estimate_steps(plan, table)
     measure = [s for s in plan.steps if s.kind == "measure"]
     if args.json:
         out = {

@@ -30,24 +30,10 @@ from lightloom.sequencer.lang.fields import (
 )
 from lightloom.sequencer.lang.fields import text as read_text
 from lightloom.sequencer.lang.yamlsafe import YMap, YNode, YScalar, YSeq, dump_plain, merge, parse_bytes, parse_text, to_plain
-
-KINDS: tuple[str, ...] = ("rotation_stage", "actuator", "shutter", "power_meter", "photon_counter")
-TRANSPORTS: tuple[str, ...] = ("sim", "visa", "serial")
-DETECTOR_KINDS: tuple[str, str] = ("power_meter", "photon_counter")
-STAGE_ROLES: tuple[str, ...] = ("quarter_wave_plate", "half_wave_plate", "converter_angle", "image_rotator")
-ROLE_NAMES: tuple[str, ...] = (
-    "quarter_wave_plate",
-    "half_wave_plate",
-    "mode_converter",
-    "converter_angle",
-    "image_rotator",
-    "shutter",
-    "reference",
-    "detectors",
+from lightloom.sequencer.model.vocabulary import (
+    DETECTOR_KINDS, DEVICE_KINDS, DRIVER_FAMILIES, FAULT_KINDS, ROLE_NAMES, SORTER_PORTS, SPLITTER_PORTS,
 )
-SORTER_PORTS: tuple[str, str] = ("h", "v")
-SPLITTER_PORTS: tuple[str, str] = ("H", "V")
-FAULT_KINDS: tuple[str, ...] = ("timeout", "garbled", "drop", "stuck", "beam_loss")
+
 PLUGIN_GROUP = "lightloom.drivers"
 
 _DEVICE_NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_\-]{0,63}$")
@@ -405,11 +391,11 @@ def _device(name: str, key_line: int, node: YNode, plugins: frozenset[str]) -> D
     family, dot, kind = driver.rpartition(".")
     if not dot or not family:
         fail(f"{sec.name('driver')}: expected FAMILY.KIND such as sim.rotation_stage, got '{driver}'", driver_node)
-    if kind not in KINDS:
-        fail(f"{sec.name('driver')}: unknown device kind '{kind}'{aside(kind, KINDS)}; expected one of"
-             f" {', '.join(KINDS)}", driver_node)
-    if family not in TRANSPORTS and driver not in plugins:
-        known = [f"{f}.{kind}" for f in TRANSPORTS] + sorted(plugins)
+    if kind not in DEVICE_KINDS:
+        fail(f"{sec.name('driver')}: unknown device kind '{kind}'{aside(kind, DEVICE_KINDS)}; expected one of"
+             f" {', '.join(DEVICE_KINDS)}", driver_node)
+    if family not in DRIVER_FAMILIES and driver not in plugins:
+        known = [f"{f}.{kind}" for f in DRIVER_FAMILIES] + sorted(plugins)
         fail(f"{sec.name('driver')}: unknown driver '{driver}'{aside(driver, known)}; expected sim.{kind},"
              f" visa.{kind}, serial.{kind} or an installed plugin driver"
              f" ({', '.join(sorted(plugins)) or 'none installed'})",

@@ -40,32 +40,13 @@ from lightloom.sequencer.optics.states import (
 )
 from lightloom.sequencer.optics.stokes import density_from_stokes
 from lightloom.sequencer.lang.yamlsafe import YMap, YNode, YScalar, parse_bytes, parse_text
+from lightloom.sequencer.model.vocabulary import ANALYZERS, CONVERTER_STATES, ELEMENT_FACTOR, ELEMENT_NAMES, ORDERS, STAGE_ELEMENTS
 
-FACTORS: tuple[str, str] = ("polarization", "spatial")
-"""The analysed factors, in basis order (polarization (x) spatial)."""
 
 NAMED_TARGETS: Mapping[str, Mapping[str, NDArray[np.complex128]]] = MappingProxyType(
     {"polarization": POLARIZATION_KETS, "spatial": SPATIAL_KETS}
 )
 
-ELEMENTS: tuple[str, ...] = (
-    "quarter_wave_plate",
-    "half_wave_plate",
-    "mode_converter",
-    "converter_angle",
-    "image_rotator",
-)
-"""Element names, fixed across protocol, bench, compiler and storage."""
-
-ELEMENT_FACTOR: Mapping[str, str] = MappingProxyType(
-    {
-        "quarter_wave_plate": "polarization",
-        "half_wave_plate": "polarization",
-        "mode_converter": "spatial",
-        "converter_angle": "spatial",
-        "image_rotator": "spatial",
-    }
-)
 
 # File key -> element name: angles carry their unit in the key, the converter state has none.
 ELEMENT_KEYS: Mapping[str, str] = MappingProxyType(
@@ -88,9 +69,6 @@ SHORT_NAMES: Mapping[str, str] = MappingProxyType(
     }
 )
 
-SCANNABLE: tuple[str, ...] = ("quarter_wave_plate", "half_wave_plate", "image_rotator", "converter_angle")
-CONVERTER_STATES: tuple[str, str] = ("in", "out")
-ORDERS: tuple[str, ...] = ("as-written", "shuffled", "least-motion")
 COMBINE: tuple[str, ...] = ("product", "zip")
 
 MAX_ANGLE_DEG = 720.0
@@ -241,11 +219,11 @@ def _analyzes(sec: Section) -> tuple[str, ...]:
         fail("analyzes: expected one or both of: polarization, spatial; got an empty list", node)
     seen: list[str] = []
     for item in items:
-        factor = choice(item, "analyzes", FACTORS)
+        factor = choice(item, "analyzes", ANALYZERS)
         if factor in seen:
             fail(f"analyzes lists '{factor}' twice; list each factor once", item)
         seen.append(factor)
-    return tuple(f for f in FACTORS if f in seen)
+    return tuple(f for f in ANALYZERS if f in seen)
 
 
 def _named_target(node: YScalar, factor: str, what: str) -> FactorTarget:
@@ -326,7 +304,7 @@ def element_settings(node: YNode, what: str, *, allow_empty: bool = False) -> di
             values[element] = number(entry.value, sec.name(entry.key), "deg", ge=-MAX_ANGLE_DEG, le=MAX_ANGLE_DEG)
     if not values and not allow_empty:
         fail(f"{what}: give at least one element setting, e.g. half_wave_plate_deg: 22.5", sec.node)
-    return {e: values[e] for e in ELEMENTS if e in values}
+    return {e: values[e] for e in ELEMENT_NAMES if e in values}
 
 
 def elements_label(values: Mapping[str, float | str]) -> str:
@@ -337,7 +315,7 @@ def elements_label(values: Mapping[str, float | str]) -> str:
 
 
 def _targets_point(targets: dict[str, FactorTarget], line: int, label: str | None = None) -> MeasurementPoint:
-    ordered = {f: targets[f] for f in FACTORS if f in targets}
+    ordered = {f: targets[f] for f in ANALYZERS if f in targets}
     return MeasurementPoint(
         label or ",".join(t.label for t in ordered.values()),
         _frozen(ordered),
@@ -351,11 +329,11 @@ def _elements_point(values: dict[str, float | str], line: int, label: str | None
 
 
 def _measure_targets(sec: Section, analyzes: tuple[str, ...]) -> list[MeasurementPoint]:
-    sec.check_keys(FACTORS + ("combine",))
+    sec.check_keys(ANALYZERS + ("combine",))
     combine = sec.choice("combine", COMBINE, "product")
     lists: list[list[FactorTarget]] = []
     lines: list[list[int]] = []
-    for factor in FACTORS:
+    for factor in ANALYZERS:
         if factor not in analyzes:
             if sec.has(factor):
                 fail(
@@ -398,17 +376,17 @@ def _measure_settings(node: YNode, analyzes: tuple[str, ...]) -> list[Measuremen
     for i, item in enumerate(seq.items):
         what = f"measure.settings[{i}]"
         sec = Section.of(item, what, "protocol", "targets per factor, or elements: {...}")
-        sec.check_keys(FACTORS + ("elements", "label"))
+        sec.check_keys(ANALYZERS + ("elements", "label"))
         label = sec.text("label") if sec.has("label") else None
         if sec.has("elements"):
-            extra = [f for f in FACTORS if sec.has(f)]
+            extra = [f for f in ANALYZERS if sec.has(f)]
             if extra:
                 fail(f"{what}: give either elements or targets ({', '.join(extra)}), not both", sec.node)
             points.append(_elements_point(element_settings(sec.require("elements", ""), sec.name("elements")),
                                           item.line, label))
             continue
         targets = {}
-        for factor in FACTORS:
+        for factor in ANALYZERS:
             if factor in analyzes:
                 t_node = sec.require(factor, f"a {factor} target (or give elements: {{...}})")
                 targets[factor] = factor_target(t_node, factor, sec.name(factor))
@@ -424,7 +402,7 @@ def _measure_settings(node: YNode, analyzes: tuple[str, ...]) -> list[Measuremen
 
 def _measure_scan(sec: Section, analyzes: tuple[str, ...]) -> tuple[list[MeasurementPoint], Scan]:
     sec.check_keys(("element", "from_deg", "to_deg", "step_deg", "fixed"))
-    element = sec.choice("element", SCANNABLE)
+    element = sec.choice("element", STAGE_ELEMENTS)
     if ELEMENT_FACTOR[element] not in analyzes:
         fail(
             f"{sec.name('element')}: {element} belongs to the {ELEMENT_FACTOR[element]} analyzer, but the"
@@ -450,7 +428,7 @@ def _measure_scan(sec: Section, analyzes: tuple[str, ...]) -> tuple[list[Measure
         angle = round(start + direction * i * step, 9) + 0.0
         values = dict(fixed)
         values[element] = angle
-        ordered = {e: values[e] for e in ELEMENTS if e in values}
+        ordered = {e: values[e] for e in ELEMENT_NAMES if e in values}
         points.append(_elements_point(ordered, sec.line, f"{SHORT_NAMES[element]}={fmt(angle)}"))
     return points, Scan(element, start, stop, step)
 

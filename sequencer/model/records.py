@@ -10,16 +10,12 @@ from typing import Any
 
 import numpy as np
 
+from lightloom.sequencer.model.vocabulary import (
+    ANALYZERS, EVENT_KINDS, PORT_UNITS, READING_KINDS, RUN_STATUSES,
+)
+
 FORMAT_VERSION = 1
 
-READING_KINDS: tuple[str, ...] = ("measure", "background", "reference")
-EVENT_KINDS: tuple[str, ...] = (
-    "start", "resume", "pause", "beam_lost", "beam_back", "drift", "fault", "interrupted",
-    "complete", "note",
-)
-RUN_STATUSES: tuple[str, ...] = ("running", "complete", "interrupted", "fault")
-ANALYZERS: tuple[str, ...] = ("polarization", "spatial")
-PORT_UNITS: tuple[str, ...] = ("W", "counts")
 
 FLAG_DRIFT = 1
 """Reading bit: the reference reading around it showed source drift beyond the protocol's limit."""
@@ -102,7 +98,7 @@ class RunHeader:
     dimension: int
     basis_labels: tuple[str, ...]
     steps_total: int
-    plan_json: str
+    steps_json: str
     target_state: np.ndarray | None = None
     extra: dict[str, Any] = field(default_factory=dict)
 
@@ -153,6 +149,9 @@ class RunHeader:
     @classmethod
     def from_json_dict(cls, data: dict[str, Any]) -> RunHeader:
         """Inverse of :meth:`to_json_dict`; raises KeyError or ValueError on a bad dict."""
+        data = dict(data)
+        if "steps_json" not in data and "plan_json" in data:  # journals written before the rename
+            data["steps_json"] = data.pop("plan_json")
         values = {f.name: data[f.name] for f in fields(cls) if f.name in data}
         target = values.get("target_state")
         if target is not None:

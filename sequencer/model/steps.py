@@ -1,4 +1,4 @@
-"""The compiled plan: a list of steps as plain data, and its JSON form (stored in every run file)."""
+"""The compiled step list: what to do, step by step, as plain data, and its JSON form (stored in every run file)."""
 
 from __future__ import annotations
 
@@ -6,7 +6,6 @@ import json
 import math
 from dataclasses import asdict, dataclass, field
 
-KINDS: tuple[str, ...] = ("measure", "background", "reference")
 
 
 @dataclass(frozen=True)
@@ -34,7 +33,7 @@ class Step:
 
 
 @dataclass(frozen=True)
-class Plan:
+class StepList:
     """Everything the runner needs to execute a protocol on a bench, and nothing it must look up."""
 
     protocol_name: str
@@ -49,7 +48,7 @@ class Plan:
     violations: tuple[str, ...] = field(default=())
 
     def to_json(self) -> str:
-        """A canonical JSON text (NaN written as null), identical for identical plans."""
+        """A canonical JSON text (NaN written as null), identical for identical step lists."""
         d = asdict(self)
         d["steps"] = [
             {**s, "settings": [None if math.isnan(x) else x for x in s["settings"]]} for s in d["steps"]
@@ -57,7 +56,7 @@ class Plan:
         return json.dumps(d, sort_keys=True, separators=(",", ":"))
 
     @staticmethod
-    def from_json(text: str) -> "Plan":
+    def from_json(text: str) -> "StepList":
         d = json.loads(text)
         steps = tuple(
             Step(
@@ -69,7 +68,7 @@ class Plan:
             )
             for s in d.pop("steps")
         )
-        return Plan(
+        return StepList(
             **{
                 **d,
                 "steps": steps,

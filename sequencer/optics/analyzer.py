@@ -15,17 +15,11 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from lightloom.sequencer.model.vocabulary import ELEMENT_NAMES
 from lightloom.sequencer.optics import jones
 
 Complex = NDArray[np.complex128]
 
-ELEMENT_NAMES: tuple[str, ...] = (
-    "quarter_wave_plate",
-    "half_wave_plate",
-    "mode_converter",
-    "converter_angle",
-    "image_rotator",
-)
 QWP, HWP, CONVERTER, CONVERTER_ANGLE, ROTATOR = range(5)
 CONVERTER_IN, CONVERTER_OUT = 1.0, 0.0
 

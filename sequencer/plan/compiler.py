@@ -1,4 +1,4 @@
-"""The compiler, a pure function (protocol, bench) -> Plan.
+"""The compiler, a pure function (protocol, bench) -> StepList.
 
 Target states become element settings through the optics model and the bench's calibration.
 Every port of a setting measures a projector, so targets that share a basis share a setting when
@@ -29,7 +29,7 @@ from lightloom.sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, O
 from lightloom.sequencer.optics.stokes import stokes_from_density
 from lightloom.sequencer.optics.states import density
 from lightloom.sequencer.plan.ordering import PERIOD_DEG, order_settings
-from lightloom.sequencer.model.steps import Plan, Step
+from lightloom.sequencer.model.steps import StepList, Step
 
 STAGE_ELEMENTS = (QWP, HWP, CONVERTER_ANGLE, ROTATOR)
 # A run file holds its whole plan; beyond this a series belongs in several runs.
@@ -117,8 +117,8 @@ def compile_requests(
     reference_dwell_s: float | None = None,
     passes: int = 1,
     pass_interval_s: float = 0.0,
-) -> Plan:
-    """Compile projector requests into an ordered Plan for ``table``.
+) -> StepList:
+    """Compile projector requests into an ordered StepList for ``table``.
 
     Raises
     ------
@@ -316,7 +316,7 @@ def _expand_steps(
     table, protocol_name, settings, key_labels, logical, order_idx, analyzes, dwell_s, repeats,
     bg_every, bg_start, bg_end, bg_dwell, ref_every, ref_dwell, passes, pass_interval_s, order,
     ref_settings, ref_labels, ref_point,
-) -> Plan:
+) -> StepList:
     per_pass = len(order_idx) * repeats
     if ref_every > 0:
         per_pass += 2 + len(order_idx) // ref_every
@@ -370,7 +370,7 @@ def _expand_steps(
             add("reference", p, ref_point, 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
     if bg_end:
         add("background", passes - 1, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
-    return Plan(
+    return StepList(
         protocol_name=protocol_name,
         bench_name=table.name,
         element_names=ELEMENT_NAMES,

@@ -14,11 +14,11 @@ import numpy as np
 
 from lightloom.sequencer.plan.kinematics import leg_times_s, nearest_equivalent_deg
 from lightloom.sequencer.optics.analyzer import CONVERTER, CONVERTER_ANGLE, HWP, QWP, ROTATOR
+from lightloom.sequencer.model.vocabulary import ORDERS
 
 if TYPE_CHECKING:
     from lightloom.sequencer.plan.compiler import TableModel
 
-ORDERS = ("as-written", "shuffled", "least-motion")
 # Angles that give the same operator: plates and the converter stage repeat every 180 deg whatever
 # their retardance; the image rotator (a reflection) every 90 deg.
 PERIOD_DEG: dict[int, float] = {QWP: 180.0, HWP: 180.0, CONVERTER_ANGLE: 180.0, ROTATOR: 90.0}

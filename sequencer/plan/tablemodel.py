@@ -15,7 +15,7 @@ from lightloom.sequencer.plan.kinematics import StageKinematics
 from lightloom.sequencer.optics.analyzer import (
     ELEMENT_NAMES, AnalyzerModel, ConverterModel, PlateModel, PortModel, RotatorModel,
 )
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol
 
 
@@ -112,7 +112,7 @@ def protocol_requests(protocol: Protocol) -> list[Request]:
     return out
 
 
-def compile_protocol(protocol: Protocol, bench: Bench) -> Plan:
+def compile_protocol(protocol: Protocol, bench: Bench) -> StepList:
     """Compile ``protocol`` for ``bench`` (pure). Errors point at the protocol line that asked.
 
     Raises

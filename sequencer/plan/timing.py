@@ -11,11 +11,11 @@ from lightloom.sequencer.plan.compiler import TableModel
 from lightloom.sequencer.plan.kinematics import nearest_equivalent_deg, path_time_s, path_travel_deg
 from lightloom.sequencer.optics.analyzer import CONVERTER, ELEMENT_NAMES
 from lightloom.sequencer.plan.ordering import PERIOD_DEG, transition_time_s
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.steps import StepList
 
 
 @dataclass(frozen=True)
-class PlanEstimate:
+class StepsEstimate:
     """Per-step durations (s) and totals of a plan on a table."""
 
     step_seconds: tuple[float, ...]
@@ -32,7 +32,7 @@ class PlanEstimate:
         return float(sum(self.step_seconds))
 
 
-def estimate_plan(plan: Plan, table: TableModel) -> PlanEstimate:
+def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
     """Estimate the wall time of ``plan`` from the table's kinematics, dwell and command overheads.
 
     Each step: the shutter change if any, the slowest stage's backlash-aware move (all stages move
@@ -81,4 +81,4 @@ def estimate_plan(plan: Plan, table: TableModel) -> PlanEstimate:
         prev = cur
         times.append(t)
         elapsed += t
-    return PlanEstimate(tuple(times), motion, dwell, wait, overhead, travel, stage_t, switches)
+    return StepsEstimate(tuple(times), motion, dwell, wait, overhead, travel, stage_t, switches)

@@ -25,7 +25,7 @@ from lightloom.sequencer.plan.kinematics import approach_path
 from lightloom.sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, complete_port_set, port_operators,
 )
-from lightloom.sequencer.model.steps import Plan, Step
+from lightloom.sequencer.model.steps import StepList, Step
 from lightloom.sequencer.model.records import (
     FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT, FLAG_RETRIED, Event, Reading,
 )
@@ -121,7 +121,7 @@ class Runner:
 
     def __init__(
         self,
-        plan: Plan,
+        plan: StepList,
         table: TableModel,
         rig: Rig,
         store,

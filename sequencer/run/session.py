@@ -23,14 +23,14 @@ from lightloom.sequencer import __version__
 from lightloom.sequencer.lang.bench import Bench, load_bench, parse_bench
 from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, UsageError
 from lightloom.sequencer.optics.states import BASIS_LABELS
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
 from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, _complete_product as _complete_ports
 from lightloom.sequencer.run.safety import LASER_SAFETY_CAUTION
 from lightloom.sequencer.model.records import FORMAT_VERSION, Event, RunHeader
 from lightloom.sequencer.storage.store import RunStore
 from lightloom.sequencer.plan.tablemodel import STAGE_ROLES, compile_protocol, table_model
-from lightloom.sequencer.plan.timing import estimate_plan
+from lightloom.sequencer.plan.timing import estimate_steps
 
 STATUS_EXIT = {"complete": EXIT_OK, "interrupted": EXIT_INTERRUPTED, "fault": EXIT_FAULT}
 
@@ -101,7 +101,7 @@ def port_units(bench: Bench) -> str:
     raise BenchError("detectors mix power meters and photon counters; use one kind for all ports", file, line)
 
 
-def make_header(protocol: Protocol, bench: Bench, plan: Plan, units: str, protocol_spec: str, bench_spec: str) -> RunHeader:
+def make_header(protocol: Protocol, bench: Bench, plan: StepList, units: str, protocol_spec: str, bench_spec: str) -> RunHeader:
     target = None
     if protocol.target_state is not None:
         t = np.array(protocol.target_state, dtype=np.complex128)
@@ -141,7 +141,7 @@ def make_header(protocol: Protocol, bench: Bench, plan: Plan, units: str, protoc
         dimension=4,
         basis_labels=BASIS_LABELS,
         steps_total=len(plan.steps),
-        plan_json=plan.to_json(),
+        steps_json=plan.to_json(),
         target_state=target,
         extra=extra,
     )
@@ -248,7 +248,7 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
         header = store.header
         protocol, bench = _recover_inputs(header)
         plan = compile_protocol(protocol, bench)
-        if plan.to_json() != header.plan_json:
+        if plan.to_json() != header.steps_json:
             raise UsageError(
                 f"{out_path}: the protocol and bench compile to a different plan than the one stored "
                 f"(stored by lightloom {header.tool_version}, this is {__version__}); resume it with the "
@@ -309,7 +309,7 @@ def _initial_beam_level(store: RunStore, table) -> float | None:
 def _execute(protocol, bench, plan, assembled, store, out_path, done, console, live, *, resumed) -> int:
     table = table_model(bench)
     log = RunLog(log_path_for(out_path))
-    est = estimate_plan(plan, table)
+    est = estimate_steps(plan, table)
     left = sum(t for s, t in zip(plan.steps, est.step_seconds) if s.index not in done)
     monitor = None
     try:

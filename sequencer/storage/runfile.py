@@ -12,7 +12,8 @@ element_names, port_names, port_units, dimension, basis_labels, extra_json.
 
 - ``/protocol``, ``/bench``: scalar UTF-8 text (the protocol YAML, the resolved bench
   YAML), attributes name, sha256 (hex of the UTF-8 text), media_type.
-- ``/plan``: scalar UTF-8 JSON of the compiled steps, attributes steps_total, media_type.
+- ``/steps``: scalar UTF-8 JSON of the compiled step list, attributes steps_total, media_type
+  (older files name it ``/plan``; both are read).
 - ``/readings/``: step_index, pass_index, point_index, repeat_index, flags (n,) int64;
   kind (n,) HDF5 enum over uint8 {measure 0, background 1, reference 2};
   commanded, readback (n, E) float64 with element_names and per-element units;
@@ -112,7 +113,7 @@ def _write_header(f: h5py.File, header: RunHeader) -> None:
           name=header.protocol_name, sha256=header.protocol_sha256, media_type="application/yaml")
     _text(f, "bench", header.bench_text, "bench YAML, resolved (extends applied)",
           name=header.bench_name, sha256=header.bench_sha256, media_type="application/yaml")
-    _text(f, "plan", header.plan_json, "compiled steps of the run as JSON",
+    _text(f, "steps", header.steps_json, "compiled steps of the run as JSON",
           steps_total=header.steps_total, media_type="application/json")
     if header.target_state is not None:
         _dataset(f, "target_state", header.target_state,
@@ -126,7 +127,7 @@ def _write_readings(f: h5py.File, header: RunHeader, table: ReadingTable) -> Non
     g.attrs["n_readings"] = len(table)
     units = _strings([element_unit(name) for name in header.element_names])
     for name, description in (
-        ("step_index", "index of the compiled step (see /plan) this reading belongs to"),
+        ("step_index", "index of the compiled step (see /steps) this reading belongs to"),
         ("pass_index", "index of the outer pass (sweep) of the protocol"),
         ("point_index", "index of the analyzer setting within the pass"),
         ("repeat_index", "index of the repeat at this setting"),
@@ -262,7 +263,7 @@ def _read_header(f: h5py.File) -> RunHeader:
         dimension=int(a["dimension"]),
         basis_labels=_str_list(a["basis_labels"]),
         steps_total=int(a["steps_total"]),
-        plan_json=f["plan"].asstr()[()],
+        steps_json=f["steps" if "steps" in f else "plan"].asstr()[()],
         target_state=target,
         extra=json.loads(_str(a["extra_json"])),
     )

@@ -27,7 +27,7 @@ from lightloom.sequencer.lang.protocol import load_protocol
 from lightloom.sequencer.run.session import start_run
 from lightloom.sequencer.storage import read_runfile
 from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
-from lightloom.sequencer.plan.timing import estimate_plan
+from lightloom.sequencer.plan.timing import estimate_steps
 
 REQUIRED_SAVING = 0.30
 
@@ -70,7 +70,7 @@ def main(argv: list[str]) -> int:
             for order, path in paths.items():
                 plan = compile_protocol(load_protocol(path), bench)
                 assert plan.order == order
-                est[order] = estimate_plan(plan, table).motion_seconds
+                est[order] = estimate_steps(plan, table).motion_seconds
                 between[order] = motion_between_settings_s(plan, table)
                 sim[order] = simulated_motion_s(path, bench_name, Path(tmp) / f"{bench_name}-{order}.h5")
             e_ratio = est["least-motion"] / est["as-written"]

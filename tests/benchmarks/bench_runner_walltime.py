@@ -4,7 +4,7 @@ Run on demand: ``PYTHONPATH=. python tests/benchmarks/bench_runner_walltime.py [
 (default: joint-36 on sim at time_scale 1, real time, about 25 s).
 
 The run goes through ``sequencer.session.start_run`` (compile, run file, runner, log, close). The
-estimate is ``sequencer.timing.estimate_plan``; the physical floor is the dwell of every step plus
+estimate is ``sequencer.timing.estimate_steps``; the physical floor is the dwell of every step plus
 the least motion of the plan's order with every stage moving at once
 (``sequencer.ordering.transition_time_s``, settling included), from the stages' start at 0 deg.
 Requirements: wall time within 5 % of the estimate and within 10 % of the floor. Prints where the
@@ -23,15 +23,15 @@ import yaml
 
 from lightloom.sequencer.lang.bench import load_bench
 from lightloom.sequencer.plan.ordering import transition_time_s
-from lightloom.sequencer.model.steps import Plan
+from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.run.session import start_run
 from lightloom.sequencer.storage import read_runfile
 from lightloom.sequencer.storage.store import RunStore
 from lightloom.sequencer.plan.tablemodel import table_model
-from lightloom.sequencer.plan.timing import estimate_plan
+from lightloom.sequencer.plan.timing import estimate_steps
 
 
-def floor_seconds(plan: Plan, bench) -> tuple[float, float]:
+def floor_seconds(plan: StepList, bench) -> tuple[float, float]:
     """(dwell, motion) of the physical floor, s: motion from the stages at 0 deg and the converter out."""
     table = table_model(bench)
     start = np.where(np.isnan(np.array(plan.steps[0].settings)), np.nan, 0.0)
@@ -69,8 +69,8 @@ def main(argv: list[str]) -> int:
         data = read_runfile(out)
         bench = load_bench(bench_path)
     assert status == 0, data.message
-    plan = Plan.from_json(data.header.plan_json)
-    est = estimate_plan(plan, table_model(bench))
+    plan = StepList.from_json(data.header.steps_json)
+    est = estimate_steps(plan, table_model(bench))
     dwell, motion = floor_seconds(plan, bench)
     floor = dwell + motion
     r = data.readings

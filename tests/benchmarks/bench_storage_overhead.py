@@ -38,7 +38,7 @@ def make_header(steps: int) -> RunHeader:
         bench_name="sim", bench_text=text, bench_sha256=hashlib.sha256(text.encode()).hexdigest(),
         simulated=True, analyzes=("polarization", "spatial"), element_names=ELEMENTS,
         port_names=PORTS, port_units="W", dimension=4,
-        basis_labels=("H,h", "H,v", "V,h", "V,v"), steps_total=steps, plan_json="[]",
+        basis_labels=("H,h", "H,v", "V,h", "V,v"), steps_total=steps, steps_json="[]",
     )
 
 
