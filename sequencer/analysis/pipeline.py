@@ -35,6 +35,7 @@ from lightloom.sequencer.analysis.estimate import (
 )
 from lightloom.sequencer.analysis.determines import Determined, determined_by, factor_observable
 from lightloom.sequencer.analysis.estimate import merit
+from lightloom.sequencer.analysis.estimate.errors import EstimationError
 from lightloom.sequencer.analysis.estimate.hermitian import to_matrix, to_vector
 from lightloom.sequencer.analysis.estimate.linear import least_squares_operator
 from lightloom.sequencer.analysis.reduction import reduce_to_factor
@@ -71,6 +72,10 @@ class Prepared:
     corrections: dict[str, Any]
     times: np.ndarray = field(default_factory=lambda: np.zeros(0))
     readings: int = 0  # port readings behind the rows
+    # chi^2 of the readings about their group means, and its degrees of freedom (Gaussian): with
+    # the rows' own chi^2 it gives the per-reading chi^2 that the residual rescaling uses.
+    within_chi2: float = 0.0
+    within_dof: int = 0
     segment: dict[str, Any] = field(default_factory=dict)  # kind, index, t_start, t_end
 
 
@@ -309,17 +314,19 @@ def _rows_for_fit(run: RunData, part: Sums, counts: bool, relative: float, corre
     """The estimator's rows of one segment: one per (setting, port), reduced to one factor if asked."""
     analyzes = run.header.analyzes
     k = part.count
+    within_chi2, within_dof = 0.0, 0
     if counts:
         ops, vals, var = part.sum_operator, part.sum_value, None
     else:
         mean = part.sum_value / k
         ops = part.sum_operator / k[:, None, None]
-        mean_sq = part.sum_value2 / k
         floor = 1e-6 * float(np.max(np.abs(mean))) if len(mean) else 0.0
         # variance of the mean of k readings, each with sigma^2 = background + (b v)^2 + floor^2
         var = (part.sum_base_variance + relative**2 * part.sum_value2 + k * floor**2) / k**2
         vals = mean
-        del mean_sq
+        reading_var = var * k
+        within_chi2 = float(np.sum(np.clip(part.sum_value2 - k * mean**2, 0.0, None) / reading_var))
+        within_dof = int(np.sum(k - 1))
     times = part.t_sum / k
     if len(analyzes) == 1:
         keep = analyzes[0]
@@ -337,7 +344,7 @@ def _rows_for_fit(run: RunData, part: Sums, counts: bool, relative: float, corre
     return Prepared(
         operators=ops, values=vals, sigma=sig, model="poisson" if counts else "gaussian",
         basis=tuple(basis), analyzes=tuple(analyzes), corrections=corrections,
-        times=np.asarray(times), readings=int(k.sum()),
+        times=np.asarray(times), readings=int(k.sum()), within_chi2=within_chi2, within_dof=within_dof,
         segment={"kind": segments.kind, "index": int(label),
                  "t_start": float(part.t_min.min()), "t_end": float(part.t_max.max())},
     )
@@ -366,13 +373,17 @@ def _functions(analyzes: tuple[str, ...], target: np.ndarray | None):
 
 
 def _rescale_sigma(prep: Prepared, fit: MleResult) -> tuple[np.ndarray, float]:
-    """Scale the relative part of sigma so that chi^2 per degree of freedom is 1 (no repeats case)."""
+    """Scale sigma so that the per-reading chi^2 per degree of freedom is at least 1.
+
+    The per-reading chi^2 is the rows' chi^2 about the fit plus that of the readings about their
+    row means (Prepared.within_chi2), so aggregation does not change the rule.
+    """
     assert prep.sigma is not None
     pred = np.einsum("ij,nji->n", fit.intensity * fit.rho, prep.operators).real
     resid = prep.values - pred
     d = prep.operators.shape[-1]
-    dof = max(1, len(prep.values) - d * d)
-    chi2 = float(np.sum((resid / prep.sigma) ** 2))
+    dof = max(1, len(prep.values) - d * d + prep.within_dof)
+    chi2 = float(np.sum((resid / prep.sigma) ** 2)) + prep.within_chi2
     scale = math.sqrt(max(chi2 / dof, 1.0))
     return prep.sigma * scale, scale
 
@@ -599,3 +610,40 @@ def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
         out["t_start"] = est.segment["t_start"]
         out["t_end"] = est.segment["t_end"]
     return out
+
+
+def _document(run: RunData, prep: Prepared, *, target: np.ndarray | None, rng: np.random.Generator,
+              n_bootstrap: int) -> tuple[dict[str, Any], Estimate | None]:
+    """The document of one Prepared; an estimation that cannot proceed says why in ``missing``."""
+    try:
+        est = estimate(prep, target=target, rng=rng, n_bootstrap=n_bootstrap)
+    except (AnalysisError, EstimationError) as exc:
+        doc = empty_document(run, str(exc))
+        doc["corrections"] = prep.corrections
+        if prep.segment.get("kind") in ("pass", "window"):
+            doc.update({prep.segment["kind"]: prep.segment["index"], "t_start": prep.segment["t_start"],
+                        "t_end": prep.segment["t_end"]})
+        return doc, None
+    return result_json(run, est), est
+
+
+def analyse_run(
+    run: RunData, *, rng: np.random.Generator, n_bootstrap: int = 200, normalize: bool = False,
+    operators: np.ndarray | None = None, segments: Segments | None = None,
+) -> tuple[dict[str, Any], Estimate | None, list[tuple[dict[str, Any], Estimate | None]]]:
+    """The whole-run document (always one, whatever the state of the run) and, with ``segments``,
+    one document per segment (pass or time window) that holds measure readings.
+
+    Returns (document, its Estimate or None, [(segment document, Estimate or None), ...]).
+    """
+    target = target_of(run)
+    whole = prepare_segments(run, whole_run(len(run.readings)), normalize=normalize, operators=operators)
+    if whole:
+        doc, est = _document(run, whole[0], target=target, rng=rng, n_bootstrap=n_bootstrap)
+    else:
+        doc, est = empty_document(run, "no measure readings yet: the first analyzer setting has not been read"), None
+    parts: list[tuple[dict[str, Any], Estimate | None]] = []
+    if segments is not None:
+        for prep in prepare_segments(run, segments, normalize=normalize, operators=operators):
+            parts.append(_document(run, prep, target=target, rng=rng, n_bootstrap=n_bootstrap))
+    return doc, est, parts
