@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
+from rich import box
 from rich.console import Console
 from rich.table import Table
 
@@ -139,9 +140,10 @@ def print_passes(console: Console, passes: list[dict[str, Any]]) -> None:
     kind = "pass" if "pass" in passes[0] else "window"
     t0 = min(p["t_start"] for p in passes)
     stokes = "polarization" if any("polarization" in p.get("stokes", {}) for p in passes) else "spatial"
-    t = Table(title=f"results per {kind} (value±std; time from the first reading, h:mm:ss)")
-    for col in (kind, "middle", "purity", "concurrence", "fidelity", f"{stokes[:3]}. S1", "S2", "S3"):
-        t.add_column(col, justify="right")
+    t = Table(title=f"results per {kind}: value(std in its last digits), middle h:mm:ss",
+              box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, padding=(0, 1), collapse_padding=True)
+    for col in (kind, "middle", "purity", "conc.", "fid.", f"{stokes[:3]}. S1", "S2", "S3"):
+        t.add_column(col, justify="right", no_wrap=True)
     for p in passes:
         s = p.get("stokes", {}).get(stokes) or [None] * 4
         t.add_row(str(p.get(kind)), _clock(0.5 * (p["t_start"] + p["t_end"]) - t0),
@@ -154,7 +156,10 @@ def print_passes(console: Console, passes: list[dict[str, Any]]) -> None:
 
 
 def _tight(x: dict[str, Any] | None, digits: int = 4) -> str:
-    return "-" if x is None else f"{x['value']:.{digits}f}±{x['std']:.{digits}f}"
+    """Value with its std in the last digits, in parentheses: 0.9490(2) is 0.9490 ± 0.0002."""
+    if x is None:
+        return "-"
+    return f"{x['value']:.{digits}f}({int(round(x['std'] * 10**digits))})"
 
 
 def _clock(seconds: float) -> str:
@@ -166,20 +171,23 @@ def print_summary(console: Console, results: list[tuple[str, dict[str, Any]]]) -
     """One row per run file: protocol, status, purity, concurrence, fidelity, Stokes."""
     from lightloom.sequencer.analysis.summary import summary_row
 
-    t = Table(title="runs (value ± std)")
-    for col in ("file", "protocol", "status", "purity", "concurrence", "fidelity",
-                "polarization S1 S2 S3", "spatial S1 S2 S3"):
-        t.add_column(col)
+    t = Table(title="runs: value(std in its last digits)", box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, padding=(0, 1), collapse_padding=True)
+    for col in ("file", "protocol", "status"):
+        t.add_column(col, overflow="fold", min_width=8)
+    for col in ("purity", "conc.", "fid.", "pol. S1-S3", "spat. S1-S3"):
+        t.add_column(col, no_wrap=True)
 
     def pm(row: dict[str, Any], key: str, digits: int = 4) -> str:
-        return "-" if row[key] is None else f"{row[key]:.{digits}f} ± {row[key + '_std']:.{digits}f}"
+        if row[key] is None:
+            return "-"
+        return _tight({"value": row[key], "std": row[key + "_std"]}, digits)
 
     for path, doc in results:
         row = summary_row(path, doc)
         status = row["status"] or "-"
         if row["steps_total"]:
             status += f" {row['steps_done']}/{row['steps_total']}"
-        stokes = {f: " ".join("-" if row[f"{f}_S{k}"] is None else f"{row[f'{f}_S{k}']:+.3f}" for k in (1, 2, 3))
+        stokes = {f: "\n".join("-" if row[f"{f}_S{k}"] is None else f"{row[f'{f}_S{k}']:+.3f}" for k in (1, 2, 3))
                   for f in ("polarization", "spatial")}
         t.add_row(path, row["protocol"] or "-", status, pm(row, "purity"), pm(row, "concurrence"),
                   pm(row, "fidelity"), stokes["polarization"], stokes["spatial"])
