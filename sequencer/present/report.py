@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -168,12 +169,14 @@ def _clock(seconds: float) -> str:
 
 
 def print_summary(console: Console, results: list[tuple[str, dict[str, Any]]]) -> None:
-    """One row per run file: protocol, status, purity, concurrence, fidelity, Stokes."""
+    """One row per run file (its name; the JSON and CSV give the paths): protocol, status, purity,
+    concurrence, fidelity, Stokes."""
     from lightloom.sequencer.analysis.summary import summary_row
 
     t = Table(title="runs: value(std in its last digits)", box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, padding=(0, 1), collapse_padding=True)
-    for col in ("file", "protocol", "status"):
-        t.add_column(col, overflow="fold", min_width=8)
+    t.add_column("file", overflow="fold", min_width=8)
+    t.add_column("protocol", no_wrap=True, overflow="ellipsis", max_width=16)
+    t.add_column("status", overflow="fold", min_width=8)
     for col in ("purity", "conc.", "fid.", "pol. S1-S3", "spat. S1-S3"):
         t.add_column(col, no_wrap=True)
 
@@ -189,7 +192,7 @@ def print_summary(console: Console, results: list[tuple[str, dict[str, Any]]]) -
             status += f" {row['steps_done']}/{row['steps_total']}"
         stokes = {f: "\n".join("-" if row[f"{f}_S{k}"] is None else f"{row[f'{f}_S{k}']:+.3f}" for k in (1, 2, 3))
                   for f in ("polarization", "spatial")}
-        t.add_row(path, row["protocol"] or "-", status, pm(row, "purity"), pm(row, "concurrence"),
+        t.add_row(Path(path).name, row["protocol"] or "-", status, pm(row, "purity"), pm(row, "concurrence"),
                   pm(row, "fidelity"), stokes["polarization"], stokes["spatial"])
     console.print(t)
     for path, doc in results:
