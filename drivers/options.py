@@ -11,9 +11,9 @@ from dataclasses import dataclass, field
 from types import MappingProxyType
 from typing import Any, Callable, Mapping
 
-from lightloom.sequencer.model.vocabulary import DEVICE_KINDS, DRIVER_FAMILIES, IDENTITY_WORD
+from lightloom.sequencer.model.vocabulary import IDENTITY_WORD, MESSAGE_FAMILIES, MESSAGE_KINDS
 
-FAMILIES = tuple(f for f in DRIVER_FAMILIES if f != "sim")
+FAMILIES = MESSAGE_FAMILIES
 """The families this package implements (``sim`` devices live with the simulators)."""
 
 # The simulated instruments' command set (served by simulators/scpi_server.py): a bench for them needs no `commands`.
@@ -314,8 +314,8 @@ _KIND: Mapping[str, Mapping[str, _Option]] = {
 def split_driver(driver: str) -> tuple[str, str]:
     """Split ``"visa.rotation_stage"`` into ``("visa", "rotation_stage")``, or raise."""
     family, _, kind = driver.partition(".") if isinstance(driver, str) else ("", "", "")
-    if family not in FAMILIES or kind not in DEVICE_KINDS:
-        names = [f"{f}.{k}" for f in FAMILIES for k in DEVICE_KINDS]
+    if family not in FAMILIES or kind not in MESSAGE_KINDS:
+        names = [f"{f}.{k}" for f in FAMILIES for k in MESSAGE_KINDS]
         raise DriverConfigError(
             f"unknown driver {driver!r}{_nearest(str(driver), names)}; "
             f"the message-based drivers are {', '.join(names)}",

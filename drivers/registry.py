@@ -10,10 +10,11 @@ from lightloom.drivers.interfaces import Device
 from lightloom.drivers.message_devices import MESSAGE_DEVICE_CLASSES
 from lightloom.drivers.options import FAMILIES, DriverConfigError, parse_config, split_driver
 from lightloom.drivers.transport import LineTransport
-from lightloom.sequencer.model.vocabulary import DEVICE_KINDS
+from lightloom.sequencer.model.vocabulary import MESSAGE_KINDS
 
 ENTRY_POINT_GROUP = "lightloom.drivers"
-BUILTIN_DRIVERS = tuple(f"{family}.{kind}" for family in FAMILIES for kind in DEVICE_KINDS)
+CAMERA_DRIVERS = ("opencv.camera",)
+BUILTIN_DRIVERS = tuple(f"{family}.{kind}" for family in FAMILIES for kind in MESSAGE_KINDS) + CAMERA_DRIVERS
 
 
 class DriverFactory(Protocol):
@@ -82,7 +83,7 @@ def create_device(
     ----------
     name : the bench's name for the device (used in every error message).
     driver : ``visa.<kind>`` or ``serial.<kind>`` with kind one of rotation_stage, actuator,
-        shutter, power_meter, photon_counter; or a plug-in name.
+        shutter, power_meter, photon_counter; ``opencv.camera``; or a plug-in name.
     address : VISA resource name (``TCPIP::host::port::SOCKET``, ``ASRL/dev/ttyUSB0::INSTR``,
         ``ASRLsocket://host:port::INSTR``, ...) or pyserial port / URL (``COM3``,
         ``/dev/ttyUSB0``, ``socket://host:port``).
@@ -95,6 +96,10 @@ def create_device(
         Unknown driver (with the known ones and the nearest), missing or malformed address,
         bad option or limit; ``key`` says which.
     """
+    if driver in CAMERA_DRIVERS:
+        from lightloom.drivers.camera_opencv import create as create_camera
+
+        return create_camera(name, address, options)
     if driver in BUILTIN_DRIVERS:
         return _create_message_device(name, driver, address, options, limits)
     source = installed_plugins() if plugins is None else plugins

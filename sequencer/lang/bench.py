@@ -45,6 +45,7 @@ _KIND_KEYS: Mapping[str, tuple[str, ...]] = MappingProxyType(
         "shutter": ("switch_s", "settle_s"),
         "power_meter": (),
         "photon_counter": (),
+        "camera": (),
     }
 )
 _TOP_KEYS = (
@@ -400,6 +401,9 @@ def _device(name: str, key_line: int, node: YNode, plugins: frozenset[str]) -> D
              f" visa.{kind}, serial.{kind} or an installed plugin driver"
              f" ({', '.join(sorted(plugins)) or 'none installed'})",
              driver_node)
+    if driver not in plugins and (family == "opencv") != (kind == "camera" and family != "sim"):
+        fail(f"{sec.name('driver')}: '{driver}' is not a driver; cameras use sim.camera, opencv.camera or"
+             " a plugin driver, and the opencv family has cameras only", driver_node)
     sec.check_keys(_COMMON_DEVICE_KEYS + _KIND_KEYS[kind])
 
     address = None

@@ -9,14 +9,21 @@ from __future__ import annotations
 from types import MappingProxyType
 from typing import Mapping
 
-DEVICE_KINDS: tuple[str, ...] = ("rotation_stage", "actuator", "shutter", "power_meter", "photon_counter")
+MESSAGE_KINDS: tuple[str, ...] = ("rotation_stage", "actuator", "shutter", "power_meter", "photon_counter")
+"""Device kinds reached by text messages (the visa and serial families)."""
+
+DEVICE_KINDS: tuple[str, ...] = MESSAGE_KINDS + ("camera",)
 """What a bench device is (the ``kind`` a driver implements)."""
 
-DETECTOR_KINDS: tuple[str, str] = ("power_meter", "photon_counter")
+DETECTOR_KINDS: tuple[str, ...] = ("power_meter", "photon_counter", "camera")
 """Device kinds that give detector readings."""
 
-DRIVER_FAMILIES: tuple[str, ...] = ("sim", "visa", "serial")
-"""Built-in driver families: the part of a driver name before the dot (``visa.power_meter``)."""
+MESSAGE_FAMILIES: tuple[str, ...] = ("visa", "serial")
+"""Driver families that speak text messages to an instrument."""
+
+DRIVER_FAMILIES: tuple[str, ...] = ("sim",) + MESSAGE_FAMILIES + ("opencv",)
+"""Built-in driver families: the part of a driver name before the dot (``visa.power_meter``);
+``opencv`` has cameras only."""
 
 ANALYZERS: tuple[str, str] = ("polarization", "spatial")
 """The analysed factors, in basis order (polarization (x) spatial)."""
@@ -74,8 +81,9 @@ EVENT_KINDS: tuple[str, ...] = (
 RUN_STATUSES: tuple[str, ...] = ("running", "complete", "interrupted", "fault")
 """Where a run stands."""
 
-PORT_UNITS: tuple[str, ...] = ("W", "counts")
-"""Units of detector readings: power meters give W, photon counters counts."""
+PORT_UNITS: tuple[str, ...] = ("W", "counts", "ADU")
+"""Units of detector readings: power meters give W, photon counters counts, cameras the sum of a
+frame's pixels in ADU."""
 
 ORDERS: tuple[str, ...] = ("as-written", "shuffled", "least-motion")
 """How a protocol's settings may be ordered."""
@@ -87,6 +95,7 @@ IDENTITY_WORD: Mapping[str, str] = MappingProxyType(
         "shutter": "SHUTTER",
         "power_meter": "POWERMETER",
         "photon_counter": "COUNTER",
+        "camera": "CAMERA",
     }
 )
 """The word for each device kind in the simulated instruments' ``*IDN?`` reply (``lightloom,SIM-STAGE``)."""
