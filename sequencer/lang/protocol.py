@@ -92,7 +92,11 @@ _TOP_KEYS = (
     "seed",
     "sweep",
     "target_state",
+    "determines",
 )
+
+PURPOSES: tuple[str, ...] = ("joint-state", "polarization-state", "spatial-state", "scan")
+"""What a protocol may say it is for (``determines:``); checked against the bench before a run."""
 
 
 @dataclass(frozen=True)
@@ -189,6 +193,8 @@ class Protocol:
     source_path: str = field(compare=False)
     source_text: str = field(compare=False, repr=False)
     sha256: str = field(compare=False)
+    determines: str | None = None
+    determines_line: int = field(default=0, compare=False)
 
     @property
     def dimension(self) -> int:
@@ -557,6 +563,10 @@ def _protocol_from_tree(root: YNode, source_path: str, source_text: str) -> Prot
     if ts is not None:
         target_state, target_label = _target_state(ts, analyzes)
 
+    determines = sec.choice("determines", PURPOSES, None)
+    if determines is not None:
+        _check_purpose(determines, analyzes, sec)
+
     return Protocol(
         name=name,
         description=description,
@@ -576,7 +586,22 @@ def _protocol_from_tree(root: YNode, source_path: str, source_text: str) -> Prot
         source_path=source_path,
         source_text=source_text,
         sha256=hashlib.sha256(source_text.encode("utf-8")).hexdigest(),
+        determines=determines,
+        determines_line=sec.key_line("determines") if determines is not None else 0,
     )
+
+
+def _check_purpose(determines: str, analyzes: tuple[str, ...], sec: Section) -> None:
+    """A stated purpose must fit the analysed factors (the bench check comes at compile time)."""
+    needs = {"joint-state": ("polarization", "spatial"), "polarization-state": ("polarization",),
+             "spatial-state": ("spatial",)}.get(determines, ())
+    lacking = [f for f in needs if f not in analyzes]
+    if lacking:
+        fail(
+            f"determines: {determines} needs analyzes to include {' and '.join(lacking)},"
+            f" but the protocol analyzes only {', '.join(analyzes)}",
+            sec.node.get("determines"),  # type: ignore[arg-type]
+        )
 
 
 def parse_protocol(text: str, path: str) -> Protocol:
