@@ -9,12 +9,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from lightloom.sequencer.analysis.determines import determined_by
 from lightloom.sequencer.analysis.pipeline import analyse_run
 from lightloom.sequencer.cli import main
 from lightloom.sequencer.lang.bench import load_bench
 from lightloom.sequencer.model.records import RunData
-from lightloom.sequencer.optics.states import density
 from lightloom.sequencer.optics.stokes import reduced_stokes
 from lightloom.sequencer.storage.store import load_run
 
@@ -87,7 +85,7 @@ def test_a_protocol_of_H_and_V_only_gives_S1_and_names_the_missing_bases(tmp_pat
     assert s[2] is None and s[3] is None
     truth = reduced_stokes(load_bench("sim").simulation.source.density(), "polarization")
     assert abs(s[1]["value"] - truth[1]) <= 5 * s[1]["std"] + 2e-3
-    assert any("D/A" in m and "R/L" in m for m in doc["missing"])
+    assert any("D/A" in m for m in doc["missing"]) and any("R/L" in m for m in doc["missing"])
     assert doc["power"]["units"] == "W" and doc["power"]["value"] > 0
     assert main(["analyze", str(out)]) == 0
     text = capsys.readouterr().out
@@ -109,15 +107,3 @@ def test_a_run_killed_after_a_few_steps_exits_0_in_text_and_json(tmp_path: Path,
     assert doc["determines"] == "partial" and doc["missing"]
     assert main(["analyze", str(out), "--bootstrap", "20"]) == 0
     assert "still missing" in capsys.readouterr().out
-
-
-def test_determines_names_what_a_set_of_projectors_fixes() -> None:
-    # Projectors onto H, V (2x2): S1 only; adding D, R: the whole state. Common practice, no source.
-    kets = {"H": [1, 0], "V": [0, 1], "D": [1, 1], "R": [1, 1j]}
-    ops = {k: density(np.asarray(v, dtype=complex) / np.linalg.norm(v)) for k, v in kets.items()}
-    hv = determined_by(np.array([ops["H"], ops["V"]]), ("polarization",))
-    assert hv.kind == "partial" and hv.stokes == {"polarization": (1,)} and hv.parameters == 2
-    full = determined_by(np.array(list(ops.values())), ("polarization",))
-    assert full.kind == "polarization-state" and full.missing(("polarization",)) == []
-    # H alone does not fix even S1 (no total intensity): nothing normalised is known
-    assert determined_by(np.array([ops["H"]]), ("polarization",)).stokes == {"polarization": ()}

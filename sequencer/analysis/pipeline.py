@@ -33,7 +33,6 @@ import numpy as np
 from lightloom.sequencer.analysis.estimate import (
     MleResult, linear_inversion, mle_gaussian, mle_poisson, parametric_bootstrap,
 )
-from lightloom.sequencer.analysis.determines import Determined, determined_by, factor_observable
 from lightloom.sequencer.analysis.estimate import merit
 from lightloom.sequencer.analysis.estimate.errors import EstimationError
 from lightloom.sequencer.analysis.estimate.hermitian import to_matrix, to_vector
@@ -41,6 +40,7 @@ from lightloom.sequencer.analysis.estimate.linear import least_squares_operator
 from lightloom.sequencer.analysis.reduction import reduce_to_factor
 from lightloom.sequencer.analysis.sufficient import Sums, accumulate, setting_ids
 from lightloom.sequencer.optics.analyzer import complete_port_set
+from lightloom.sequencer.optics.determination import STATE_KIND, Determination, determination
 from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS
 from lightloom.sequencer.optics.stokes import PAULI
 from lightloom.sequencer.model.records import RunData
@@ -95,7 +95,7 @@ class Estimate:
     linear_rho: np.ndarray | None = None
     power: tuple[float, float] | None = None  # (value, std): S0 in W or counts/s
     power_units: str = "W"
-    determined: Determined | None = None
+    determined: Determination | None = None
     partial: bool = False  # True: the state is not determined; only some Stokes components are
     segment: dict[str, Any] = field(default_factory=dict)
 
@@ -411,8 +411,8 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
     When the rows do not determine the state (a run part way, an incomplete protocol), the
     Stokes components they do determine are estimated by least squares instead (``partial``).
     """
-    determined = determined_by(prep.operators, prep.analyzes)
-    if not determined.state:
+    determined = _determination(prep)
+    if determined.kind != STATE_KIND[tuple(prep.analyzes)]:
         return _partial_estimate(prep, determined, rng=rng, n_bootstrap=n_bootstrap)
     if prep.model == "poisson":
         if prep.values.sum() <= 0:
@@ -476,14 +476,26 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
     )
 
 
+def _factors(prep: Prepared) -> tuple[str, ...]:
+    """The factors of the rows' space: the analysed one (2x2 rows) or both (4x4)."""
+    return tuple(prep.analyzes) if prep.operators.shape[-1] == 2 else ("polarization", "spatial")
+
+
+def _determination(prep: Prepared) -> Determination:
+    """What the rows determine (sequencer.optics.determination, shared with validate and dry-run)."""
+    return determination(prep.operators, _factors(prep), prep.analyzes)
+
+
 def _observables(prep: Prepared) -> dict[str, list[np.ndarray]]:
     """Per factor, the observables [s0, s1, s2, s3] of its Stokes parameters in the rows' space."""
     if prep.operators.shape[-1] == 2:
         return {prep.analyzes[0]: [PAULI[k] for k in range(4)]}
-    return {f: [factor_observable(f, k) for k in range(4)] for f in ("polarization", "spatial")}
+    eye = PAULI[0]
+    return {"polarization": [np.kron(PAULI[k], eye) for k in range(4)],
+            "spatial": [np.kron(eye, PAULI[k]) for k in range(4)]}
 
 
-def _partial_estimate(prep: Prepared, determined: Determined, *, rng: np.random.Generator,
+def _partial_estimate(prep: Prepared, determined: Determination, *, rng: np.random.Generator,
                       n_bootstrap: int) -> Estimate:
     """The Stokes components the rows determine, by weighted least squares (minimum-norm solution:
     every determined functional has the same value on all solutions), std from replicate readings."""
@@ -503,7 +515,8 @@ def _partial_estimate(prep: Prepared, determined: Determined, *, rng: np.random.
     figures: dict[str, tuple[float, float]] = {}
     power = None
     for factor, obs in _observables(prep).items():
-        fixed = determined.stokes.get(factor, ())
+        flags = determined.stokes.get(factor, (False,) * 4)
+        fixed = tuple(k for k in (1, 2, 3) if flags[0] and flags[k])
         if not fixed:
             continue
         coords = to_vector(np.asarray(obs))
@@ -521,7 +534,7 @@ def _partial_estimate(prep: Prepared, determined: Determined, *, rng: np.random.
                                         float(np.std(dop, ddof=1)))
         if power is None:
             power = (float(s0), float(np.std(s0s, ddof=1)))
-    rank_info = f"{determined.parameters} of {d * d} parameters determined"
+    rank_info = f"{determined.rank} of {determined.full_rank} parameters determined"
     return Estimate(
         rho=None, rho_std=None, basis=prep.basis, analyzes=prep.analyzes, figures=figures, stokes=stokes,
         closest_mode=None,
@@ -589,7 +602,11 @@ def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
         }
     determined = est.determined
     out["determines"] = determined.kind if determined is not None else "partial"
-    out["missing"] = determined.missing(est.analyzes) if determined is not None else []
+    out["missing"] = list(determined.missing) if determined is not None else []
+    if est.partial and determined is not None:
+        out["missing"].append(
+            f"the {'joint 4x4' if len(est.analyzes) == 2 else '2x2 ' + est.analyzes[0]} state: the readings "
+            f"fix {determined.rank} of its {determined.full_rank} real parameters")
     out["run"] = run_section(run)
     out["estimator"] = est.estimator
     out["corrections"] = est.corrections
