@@ -28,6 +28,8 @@ def add_parser(sub) -> None:
     p.add_argument("--normalize", action="store_true", help="normalise each setting over its complementary ports (cancels drift without a reference meter)")
     p.add_argument("--bootstrap", type=int, default=200, metavar="N", help="bootstrap resamples for the error bars (default 200)")
     p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
+    p.add_argument("--field-maps", action="store_true",
+                   help="add the transverse polarization maps of a joint state to the JSON (key field_maps)")
     p.set_defaults(handler=run)
 
 
@@ -44,8 +46,8 @@ def run(args: argparse.Namespace) -> int:
         except ValueError as exc:
             raise UsageError(f"--window: {exc}") from None
     if len(args.files) > 1:
-        if args.per_pass or window_s is not None or args.plots or args.bench:
-            raise UsageError("--per-pass, --window, --plots and --bench take one run file; give one file, or drop them for the summary table")
+        if args.per_pass or window_s is not None or args.plots or args.bench or args.field_maps:
+            raise UsageError("--per-pass, --window, --plots, --bench and --field-maps take one run file; give one file, or drop them for the summary table")
         return _many(args)
     return _one(args, args.files[0], window_s)
 
@@ -72,6 +74,12 @@ def _analyse(args: argparse.Namespace, path: str, window_s: float | None):
         raise UsageError(f"{path}: {exc}") from None
     if args.bench:
         doc.setdefault("corrections", {})["operators"] = f"recomputed from read-back positions with the calibration of {args.bench}"
+    if getattr(args, "field_maps", False):
+        if est is None or est.rho is None or est.rho.shape != (4, 4):
+            raise UsageError(f"{path}: --field-maps needs a joint (polarization and spatial) state, determined by the readings")
+        from lightloom.sequencer.analysis.portrait import portrait, portrait_json
+
+        doc["field_maps"] = portrait_json(portrait(est.rho))
     if segments is not None:
         doc["passes"] = [d for d, _ in parts]
     return data, doc, est, parts
@@ -169,6 +177,12 @@ def _plots(data, doc: dict[str, Any], est, directory: str) -> list:
             points = {f: np.array([v for v, _ in s]) for f, s in est.stokes.items()}
             unc = {f: float(np.sqrt(sum(sd**2 for _, sd in s[1:]))) for f, s in est.stokes.items()}
             written.append(plots.plot_poincare(points, out / "poincare.png", title="reduced states", uncertainties=unc))
+            if est.rho.shape == (4, 4):
+                from lightloom.sequencer.analysis.portrait import portrait
+                from lightloom.sequencer.present.portrait import plot_portrait
+
+                written.append(plot_portrait(portrait(est.rho), out / "portrait.png",
+                                             title=f"{data.header.protocol_name}: polarization portrait"))
         series = timeline.reference_series(data)
         if series.lines:
             written.append(timeline.plot_reference_series(series, out / "reference.png",
