@@ -106,7 +106,9 @@ def _smooth(t: np.ndarray, y: np.ndarray, window: int) -> np.ndarray:
     ys = y[order]
     k = max(1, min(window, len(ys)))
     pad = np.pad(ys, (k // 2, k - 1 - k // 2), mode="edge")
-    sm = np.convolve(pad, np.ones(k) / k, mode="valid")
+    # running sums: O(n) whatever the window (a convolution would cost n x window)
+    csum = np.concatenate([[0.0], np.cumsum(pad)])
+    sm = (csum[k:] - csum[:-k]) / k
     out = np.empty_like(sm)
     out[order] = sm
     return out
@@ -253,7 +255,6 @@ def prepare_segments(
         raise AnalysisError("normalisation per setting needs ports that measure a complete set (e.g. all four ports)")
     corrections: dict[str, Any] = {"background": bg_info, "drift": drift_info}
     d = int(h.dimension)
-    t_mid_all = 0.5 * (r.t_start + r.t_end)
 
     def corrected(lo: int, hi: int, mask: np.ndarray) -> np.ndarray:
         v = (np.asarray(r.values[lo:hi]) - bg[lo:hi])[mask]
@@ -289,18 +290,17 @@ def prepare_segments(
         {"applied": True, "how": "each setting's readings divided by their sum over the complementary ports"}
         if normalize else {"applied": False}
     )
-    sums = accumulate(
+    fine, per_fit = accumulate(
         rows=rows, segment=segments.of_reading[rows], pass_index=np.asarray(r.pass_index)[rows],
         setting=setting_ids(np.asarray(r.commanded)[rows]), values_of=corrected, operators_of=model_operators,
-        base_variance=base_var, t_mid=t_mid_all[rows], d=d,
+        base_variance=base_var, t_start=np.asarray(r.t_start)[rows], t_end=np.asarray(r.t_end)[rows], d=d,
     )
     noise: dict[str, Any] = {"model": "poisson"}
     a = b = 0.0
     if not counts:
         a = float(np.sqrt(np.mean(base_var))) if len(base_var) else 0.0
-        a, b, how = _spread_model(sums, a)
+        a, b, how = _spread_model(fine, a)
         noise = {"model": "gaussian", "absolute_w": a, "relative": b, "how": how}
-    per_fit, _ = sums.merged(("segment", "setting", "port"))
     out = []
     for seg in np.unique(per_fit.segment):
         part = per_fit.select(per_fit.segment == seg)

@@ -31,18 +31,19 @@ SETTING_DECIMALS = 6
 
 @dataclass(frozen=True)
 class Sums:
-    """Sufficient statistics of measure readings, one row per (segment, pass, setting, port).
+    """Sufficient statistics of measure readings, one row per key and port.
 
     Attributes
     ----------
-    segment, pass_index, setting, port : ndarray (g,) int. The key of each row.
+    segment, pass_index, setting, port : ndarray (g,) int. The key of each row (-1 where the
+        rows are summed over that key).
     count : ndarray (g,). Number of readings.
     sum_value, sum_value2 : ndarray (g,). Sum of corrected readings and of their squares.
-    sum_operator : ndarray (g, d, d) complex. Sum of the operators (Gaussian: as read; Poisson:
-        each multiplied by its drift factor and dwell, so intensities are counts/s).
+    sum_operator : ndarray (g, d, d) complex, or None. Sum of the operators (Gaussian: as read;
+        Poisson: each multiplied by its drift factor and dwell, so intensities are counts/s).
     sum_base_variance : ndarray (g,). Sum of the per-reading variance known before the fit
         (background spread), W^2; zeros for counts.
-    t_sum, t_min, t_max : ndarray (g,). Sum, first and last mid-reading time (UNIX s).
+    t_sum, t_min, t_max : ndarray (g,). Sum of mid-reading times, first start and last end (UNIX s).
     """
 
     segment: np.ndarray
@@ -52,7 +53,7 @@ class Sums:
     count: np.ndarray
     sum_value: np.ndarray
     sum_value2: np.ndarray
-    sum_operator: np.ndarray
+    sum_operator: np.ndarray | None
     sum_base_variance: np.ndarray
     t_sum: np.ndarray
     t_min: np.ndarray
@@ -63,38 +64,8 @@ class Sums:
 
     def select(self, rows: np.ndarray) -> Sums:
         """The rows ``rows`` (mask or indices)."""
-        return Sums(**{k: getattr(self, k)[rows] for k in self.__dataclass_fields__})
-
-    def merged(self, keys: tuple[str, ...]) -> tuple[Sums, np.ndarray]:
-        """Rows summed over everything but ``keys`` (e.g. ("segment", "setting", "port")).
-
-        Returns the merged sums and, for each original row, the index of its merged row.
-        """
-        stacked = np.stack([getattr(self, k) for k in keys], axis=1) if len(self) else np.zeros((0, len(keys)), int)
-        uniq, inverse = np.unique(stacked, axis=0, return_inverse=True)
-        inverse = np.asarray(inverse).reshape(-1)
-        m = len(uniq)
-
-        def add(x: np.ndarray) -> np.ndarray:
-            return np.bincount(inverse, weights=x, minlength=m)
-
-        ops = np.zeros((m,) + self.sum_operator.shape[1:], dtype=np.complex128)
-        np.add.at(ops, inverse, self.sum_operator)
-        t_min = np.full(m, np.inf)
-        t_max = np.full(m, -np.inf)
-        np.minimum.at(t_min, inverse, self.t_min)
-        np.maximum.at(t_max, inverse, self.t_max)
-        fields = {k: np.zeros(m, dtype=np.int64) for k in ("segment", "pass_index", "setting", "port")}
-        for j, k in enumerate(keys):
-            fields[k] = uniq[:, j].astype(np.int64)
-        for k in set(fields) - set(keys):
-            fields[k] = np.full(m, -1, dtype=np.int64)
-        merged = Sums(
-            **fields, count=add(self.count), sum_value=add(self.sum_value), sum_value2=add(self.sum_value2),
-            sum_operator=ops, sum_base_variance=add(self.sum_base_variance), t_sum=add(self.t_sum),
-            t_min=t_min, t_max=t_max,
-        )
-        return merged, inverse
+        return Sums(**{k: (None if getattr(self, k) is None else getattr(self, k)[rows])
+                       for k in self.__dataclass_fields__})
 
 
 def setting_ids(commanded: np.ndarray) -> np.ndarray:
@@ -106,6 +77,71 @@ def setting_ids(commanded: np.ndarray) -> np.ndarray:
     return np.asarray(inverse, dtype=np.int64).reshape(-1)
 
 
+def _dense(*columns: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(id of each row's key, the distinct keys as rows) for integer key columns, by one 1-D sort."""
+    combined = np.zeros(len(columns[0]), dtype=np.int64)
+    parts = []
+    for col in columns:
+        values, inverse = np.unique(col, return_inverse=True)
+        parts.append(values)
+        combined = combined * len(values) + np.asarray(inverse, dtype=np.int64).reshape(-1)
+    uniq, ids = np.unique(combined, return_inverse=True)
+    keys = np.zeros((len(uniq), len(columns)), dtype=np.int64)
+    rest = uniq.copy()
+    for j in range(len(columns) - 1, -1, -1):
+        keys[:, j] = parts[j][rest % len(parts[j])]
+        rest //= len(parts[j])
+    return np.asarray(ids, dtype=np.int64).reshape(-1), keys
+
+
+class _Accumulator:
+    """Running sums over rows of groups, touched a chunk at a time (cost per chunk: the chunk)."""
+
+    def __init__(self, n_groups: int, operator_shape: tuple[int, ...] | None) -> None:
+        self.count = np.zeros(n_groups)
+        self.s1 = np.zeros(n_groups)
+        self.s2 = np.zeros(n_groups)
+        self.base = np.zeros(n_groups)
+        self.tsum = np.zeros(n_groups)
+        self.tmin = np.full(n_groups, np.inf)
+        self.tmax = np.full(n_groups, -np.inf)
+        self.ops = None if operator_shape is None else np.zeros((n_groups, 2 * int(np.prod(operator_shape))))
+
+    def add(self, gid: np.ndarray, v: np.ndarray, base: np.ndarray, t: np.ndarray, t_lo: np.ndarray,
+            t_hi: np.ndarray, flat_ops: np.ndarray | None) -> None:
+        u, local = np.unique(gid, return_inverse=True)
+        m = len(u)
+
+        def add(x: np.ndarray) -> np.ndarray:
+            return np.bincount(local, weights=x, minlength=m)
+
+        self.count[u] += np.bincount(local, minlength=m)
+        self.s1[u] += add(v)
+        self.s2[u] += add(v * v)
+        self.base[u] += add(base)
+        self.tsum[u] += add(t)
+        lo = np.full(m, np.inf)
+        hi = np.full(m, -np.inf)
+        np.minimum.at(lo, local, t_lo)
+        np.maximum.at(hi, local, t_hi)
+        self.tmin[u] = np.minimum(self.tmin[u], lo)
+        self.tmax[u] = np.maximum(self.tmax[u], hi)
+        if self.ops is not None and flat_ops is not None:
+            for j in range(flat_ops.shape[1]):
+                self.ops[u, j] += add(flat_ops[:, j])
+
+    def sums(self, keys: np.ndarray, n_ports: int, d: int, names: tuple[str, ...]) -> Sums:
+        rep = np.repeat(keys, n_ports, axis=0)
+        fields = {k: np.full(len(rep), -1, dtype=np.int64) for k in ("segment", "pass_index", "setting")}
+        for j, name in enumerate(names):
+            fields[name] = rep[:, j]
+        operator = None if self.ops is None else self.ops.view(np.complex128).reshape(-1, d, d)
+        out = Sums(**fields, port=np.tile(np.arange(n_ports), len(keys)), count=self.count, sum_value=self.s1,
+                   sum_value2=self.s2, sum_operator=operator, sum_base_variance=self.base, t_sum=self.tsum,
+                   t_min=self.tmin, t_max=self.tmax)
+        return out.select(self.count > 0)
+
+
 def accumulate(
     *,
     rows: np.ndarray,
@@ -115,66 +151,49 @@ def accumulate(
     values_of,
     operators_of,
     base_variance: np.ndarray,
-    t_mid: np.ndarray,
+    t_start: np.ndarray,
+    t_end: np.ndarray,
     d: int,
-) -> Sums:
+) -> tuple[Sums, Sums]:
     """Sums over the measure readings ``rows`` (indices into the reading table, increasing).
 
-    ``segment``, ``pass_index``, ``setting`` and ``t_mid`` are per measure reading (aligned with
-    ``rows``); ``values_of(lo, hi, mask)`` returns the corrected readings (k, P) of table rows lo..hi
-    that ``mask`` selects, ``operators_of(lo, hi, mask)`` their operators (k, P, d, d) as the model
-    uses them; ``base_variance`` (P,) is each port's per-reading variance known before the fit.
-    Table rows are read CHUNK_ROWS at a time.
+    ``segment``, ``pass_index``, ``setting``, ``t_start`` and ``t_end`` are per measure reading
+    (aligned with ``rows``); ``values_of(lo, hi, mask)`` returns the corrected readings (k, P) of
+    table rows lo..hi that ``mask`` selects, ``operators_of(lo, hi, mask)`` their operators
+    (k, P, d, d) as the model uses them; ``base_variance`` (P,) is each port's per-reading variance
+    known before the fit. Table rows are read CHUNK_ROWS at a time.
+
+    Returns (per (segment, pass, setting, port) without operators: for the spread of repeats;
+    per (segment, setting, port) with operators: the rows of the fits).
     """
     n = len(rows)
+    empty_i = np.zeros(0, dtype=np.int64)
+    empty = Sums(empty_i, empty_i, empty_i, empty_i, np.zeros(0), np.zeros(0), np.zeros(0),
+                 np.zeros((0, d, d), complex), np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0))
     if n == 0:
-        empty = np.zeros(0, dtype=np.int64)
-        return Sums(empty, empty, empty, empty, np.zeros(0), np.zeros(0), np.zeros(0),
-                    np.zeros((0, d, d), complex), np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0))
-    probe = values_of(int(rows[0]), int(rows[0]) + 1, np.ones(1, bool))
-    n_ports = probe.shape[1]
-    key = np.stack([segment, pass_index, setting], axis=1)
-    uniq, inverse = np.unique(key, axis=0, return_inverse=True)
-    inverse = np.asarray(inverse).reshape(-1)
-    g = len(uniq) * n_ports
-    count = np.zeros(g)
-    s1 = np.zeros(g)
-    s2 = np.zeros(g)
-    sbv = np.zeros(g)
-    tsum = np.zeros(g)
-    tmin = np.full(g, np.inf)
-    tmax = np.full(g, -np.inf)
-    ops = np.zeros((g, d * d * 2))
+        return empty, empty
+    n_ports = len(base_variance)
+    fine_id, fine_keys = _dense(segment, pass_index, setting)
+    coarse_id, coarse_keys = _dense(segment, setting)
+    fine = _Accumulator(len(fine_keys) * n_ports, None)
+    coarse = _Accumulator(len(coarse_keys) * n_ports, (d, d))
     port = np.arange(n_ports)
+    t_mid = 0.5 * (t_start + t_end)
     start = 0
     while start < n:
         lo = int(rows[start])
-        hi = lo + CHUNK_ROWS
-        stop = int(np.searchsorted(rows, hi, side="left"))
-        local = rows[start:stop] - lo
-        mask = np.zeros(min(CHUNK_ROWS, int(rows[stop - 1]) - lo + 1), dtype=bool)
-        mask[local] = True
-        v = np.asarray(values_of(lo, lo + len(mask), mask), dtype=float)
+        stop = int(np.searchsorted(rows, lo + CHUNK_ROWS, side="left"))
+        mask = np.zeros(int(rows[stop - 1]) - lo + 1, dtype=bool)
+        mask[rows[start:stop] - lo] = True
+        v = np.asarray(values_of(lo, lo + len(mask), mask), dtype=float).reshape(-1)
         e = np.asarray(operators_of(lo, lo + len(mask), mask), dtype=np.complex128)
-        gid = (inverse[start:stop, None] * n_ports + port[None, :]).reshape(-1)
+        flat = np.ascontiguousarray(e).reshape(len(v), d * d).view(np.float64)
+        base = np.broadcast_to(base_variance, (stop - start, n_ports)).reshape(-1)
         t = np.repeat(t_mid[start:stop], n_ports)
-        vv = v.reshape(-1)
-        count += np.bincount(gid, minlength=g)
-        s1 += np.bincount(gid, weights=vv, minlength=g)
-        s2 += np.bincount(gid, weights=vv * vv, minlength=g)
-        sbv += np.bincount(gid, weights=np.broadcast_to(base_variance, v.shape).reshape(-1), minlength=g)
-        tsum += np.bincount(gid, weights=t, minlength=g)
-        np.minimum.at(tmin, gid, t)
-        np.maximum.at(tmax, gid, t)
-        flat = e.reshape(len(gid), d * d).view(np.float64)
-        for j in range(flat.shape[1]):
-            ops[:, j] += np.bincount(gid, weights=flat[:, j], minlength=g)
+        t_lo = np.repeat(t_start[start:stop], n_ports)
+        t_hi = np.repeat(t_end[start:stop], n_ports)
+        fine.add((fine_id[start:stop, None] * n_ports + port).reshape(-1), v, base, t, t_lo, t_hi, None)
+        coarse.add((coarse_id[start:stop, None] * n_ports + port).reshape(-1), v, base, t, t_lo, t_hi, flat)
         start = stop
-    seen = count > 0
-    operator = ops.view(np.complex128).reshape(g, d, d)
-    rep = np.repeat(uniq, n_ports, axis=0)
-    return Sums(
-        segment=rep[:, 0], pass_index=rep[:, 1], setting=rep[:, 2], port=np.tile(port, len(uniq)),
-        count=count, sum_value=s1, sum_value2=s2, sum_operator=operator, sum_base_variance=sbv,
-        t_sum=tsum, t_min=tmin, t_max=tmax,
-    ).select(seen)
+    return (fine.sums(fine_keys, n_ports, d, ("segment", "pass_index", "setting")),
+            coarse.sums(coarse_keys, n_ports, d, ("segment", "setting")))
