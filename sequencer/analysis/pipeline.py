@@ -162,8 +162,7 @@ def _drift_factor(run: RunData, ref_bg: np.ndarray, use_complete_sum: bool, gain
 
 
 def _complete_ports(run: RunData) -> bool:
-    extra = run.header.extra
-    return complete_port_set(list(zip(extra.get("port_sorter", []), extra.get("port_splitter", []))))
+    return complete_port_set([(p.sorter_port, p.splitter_port) for p in run.header.ports])
 
 
 def _port_gains(run: RunData) -> np.ndarray:
@@ -242,7 +241,11 @@ def prepare_segments(
     h = run.header
     r = run.readings
     counts = h.port_units == "counts"
+<<<<<<< HEAD
     gains = _port_gains(run)
+=======
+    gains = h.port_gains
+>>>>>>> main
     complete = _complete_ports(run)
     bg, bg_std, ref_bg, bg_info = _background(run)
     drift, drift_info = _drift_factor(run, ref_bg, complete, gains)
@@ -553,10 +556,7 @@ def target_of(run: RunData) -> np.ndarray | None:
     h = run.header
     if len(h.analyzes) == 2:
         return None if h.target_state is None else np.asarray(h.target_state)
-    t2 = h.extra.get("target_state_2x2")
-    if t2:
-        return np.asarray(t2["real"]) + 1j * np.asarray(t2["imag"])
-    return None
+    return None if h.factor_target_state is None else np.asarray(h.factor_target_state)
 
 
 def _vs(pair: tuple[float, float] | None) -> dict[str, float] | None:
@@ -614,8 +614,13 @@ def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
         out["concurrence"] = _vs(est.figures["concurrence"])
         out["fully_entangled_fraction"] = _vs(est.figures["fully_entangled_fraction"])
     if "fidelity" in est.figures:
+<<<<<<< HEAD
         out["fidelity"] = _vs(est.figures["fidelity"])
         out["target"] = run.header.extra.get("target_label")
+=======
+        out["fidelity"] = vs(est.figures["fidelity"])
+        out["target"] = run.header.target_label
+>>>>>>> main
     if est.closest_mode is not None:
         name, f, s = est.closest_mode
         out["closest_vector_mode"] = {"name": name, "fidelity": {"value": f, "std": s}}

@@ -14,6 +14,13 @@ def add_parser(sub) -> None:
     p = sub.add_parser(
         "analyze",
         help="reconstruct the state of a run (complete, interrupted or still running); several runs: one summary table",
+        description=(
+            "Reconstruct the state measured in a run file (finished, stopped or still running) with error"
+            " bars: density matrix, purity, concurrence, Stokes parameters and fidelity to the protocol's"
+            " target, as tables, as JSON (--json) or as figures (--plots DIR); what the readings do not"
+            " determine yet is listed as missing. Each pass or time window on its own with --per-pass or"
+            " --window; several files give one summary table (--json, --csv)."
+        ),
     )
     p.add_argument("files", nargs="+", metavar="FILE", help="run file (FILE.h5) or its journal; several for a summary table")
     out = p.add_mutually_exclusive_group()
