@@ -167,7 +167,7 @@ def _complete_ports(run: RunData) -> bool:
 
 def _port_gains(run: RunData) -> np.ndarray:
     h = run.header
-    return np.asarray(h.extra.get("port_gain") or [1.0] * len(h.port_names), dtype=float)
+    return np.asarray(h.port_gains, dtype=float)
 
 
 def _spread_model(sums: Sums, bg_std: float) -> tuple[float, float, str]:
@@ -241,11 +241,7 @@ def prepare_segments(
     h = run.header
     r = run.readings
     counts = h.port_units == "counts"
-<<<<<<< HEAD
     gains = _port_gains(run)
-=======
-    gains = h.port_gains
->>>>>>> main
     complete = _complete_ports(run)
     bg, bg_std, ref_bg, bg_info = _background(run)
     drift, drift_info = _drift_factor(run, ref_bg, complete, gains)
@@ -614,13 +610,8 @@ def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
         out["concurrence"] = _vs(est.figures["concurrence"])
         out["fully_entangled_fraction"] = _vs(est.figures["fully_entangled_fraction"])
     if "fidelity" in est.figures:
-<<<<<<< HEAD
         out["fidelity"] = _vs(est.figures["fidelity"])
-        out["target"] = run.header.extra.get("target_label")
-=======
-        out["fidelity"] = vs(est.figures["fidelity"])
         out["target"] = run.header.target_label
->>>>>>> main
     if est.closest_mode is not None:
         name, f, s = est.closest_mode
         out["closest_vector_mode"] = {"name": name, "fidelity": {"value": f, "std": s}}
