@@ -95,7 +95,7 @@ def _analyse(args: argparse.Namespace, path: str, window_s: float | None):
 def _one(args: argparse.Namespace, path: str, window_s: float | None) -> int:
     data, doc, est, parts = _analyse(args, path, window_s)
     if args.plots:
-        doc["plots"] = [str(p) for p in _plots(data, doc, est, args.plots)]
+        doc["plots"] = [str(p) for p in write_figures(data, doc, est, args.plots)]
     if args.json:
         print(json.dumps(doc, indent=1))
     elif args.csv:
@@ -166,7 +166,8 @@ def _recomputed_operators(data, bench_spec: str) -> np.ndarray:
     return port_operators(table.analyzer, table.ports, data.readings.readback)
 
 
-def _plots(data, doc: dict[str, Any], est, directory: str) -> list:
+def write_figures(data, doc: dict[str, Any], est, directory: str) -> list:
+    """The PNG figures of an analysed run into ``directory``; returns their paths."""
     from pathlib import Path
 
     from lightloom.sequencer.errors import UsageError

@@ -18,10 +18,11 @@ from typing import Any, Sequence
 import numpy as np
 
 from lightloom.sequencer.model.records import RunData
-from lightloom.sequencer.present.plots import DPI, _apply_time_axis, _mpl, _new_figure, save_png
+from lightloom.sequencer.present.plots import DPI, _apply_time_axis, _draw_events, _mpl, _new_figure, save_png
 
 # Lines longer than this are drawn as means of consecutive points (a bin holding a gap stays a gap).
 MAX_POINTS_PER_LINE = 20000
+MARKED_EVENTS = ("beam_lost", "beam_back", "drift", "fault", "interrupted", "resume")
 # A pause with no reading longer than this many typical spacings of the run is drawn as a gap.
 GAP_SPACINGS = 20.0
 
@@ -42,6 +43,7 @@ class PowerSeries:
 
     lines: tuple[Line, ...]
     t0: float
+    events: tuple[tuple[float, str], ...] = ()  # (UNIX s, kind) of beam losses, faults, resumes
 
 
 def _with_gaps(t: np.ndarray, v: np.ndarray, closed_between: np.ndarray, typical_s: float) -> tuple[np.ndarray, np.ndarray]:
@@ -98,7 +100,8 @@ def reference_series(run: RunData) -> PowerSeries:
         values = np.asarray(r.values)[order][refsteps]
         for j, port in enumerate(run.header.port_names):
             add(f"{port} (reference steps)", refsteps, values[:, j], run.header.port_units)
-    return PowerSeries(tuple(lines), float(ts[0]))
+    events = tuple((e.t, e.kind) for e in run.events if e.kind in MARKED_EVENTS)
+    return PowerSeries(tuple(lines), float(ts[0]), events)
 
 
 def power_figure(series: PowerSeries, title: str = ""):
@@ -117,6 +120,10 @@ def power_figure(series: PowerSeries, title: str = ""):
         # points marked while few enough to see: a point alone between two gaps has no line
         ax.plot(t_rel, rel, "-", lw=1.0, marker="." if line.t.size < 2000 else None, ms=3,
                 label=f"{line.name}, median {median:.4g} {line.units}")
+    shown = [np.abs(100.0 * (ln.value / np.nanmedian(ln.value) - 1.0)) for ln in series.lines
+             if np.any(np.isfinite(ln.value)) and np.nanmedian(ln.value) != 0]
+    peak = max((float(np.nanmax(x)) for x in shown if np.any(np.isfinite(x))), default=0.0)
+    _draw_events(ax, series.events, series.t0, np.concatenate(t_all) if t_all else np.zeros(1), max(0.5, 1.15 * peak))
     _apply_time_axis(mpl, ax, np.concatenate(t_all) if t_all else np.zeros(1))
     ax.set_ylabel("change from the line's median (%)", fontsize=10)
     ax.grid(True, color="0.9", lw=0.6)
