@@ -8,8 +8,6 @@ import argparse
 import json
 from pathlib import Path
 
-import numpy as np
-
 # Within this of the best local fidelity, the remaining error is the source's, not the settings'.
 SETTINGS_MATCH = 1e-6
 
@@ -34,12 +32,14 @@ def add_parser(sub) -> None:
     p.add_argument("--json", action="store_true", help="print the result as JSON")
     p.add_argument("--converter-axis", type=float, metavar="DEG", default=None,
                    help="the mode converter is mounted at this fixed axis angle (default: a stage turns it)")
+    p.add_argument("--tolerance", type=float, default=1e-3, metavar="F",
+                   help="certify the optimum to within this fidelity where no closed form exists (default 1e-3)")
     p.add_argument("--bootstrap", type=int, default=200, metavar="N", help="bootstrap resamples (default 200)")
     p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
     p.set_defaults(handler=run)
 
 
-def parse_state(text: str, what: str) -> tuple[np.ndarray, str]:
+def parse_state(text: str, what: str):
     """A 4-ket from a name (joint mode or product ``P,s``) or four comma-separated amplitudes.
 
     Raises
@@ -47,6 +47,8 @@ def parse_state(text: str, what: str) -> tuple[np.ndarray, str]:
     UsageError
         With the names and the format expected.
     """
+    import numpy as np
+
     from lightloom.sequencer.errors import UsageError
     from lightloom.sequencer.optics.states import (
         JOINT_KETS, POLARIZATION_KETS, SPATIAL_KETS, normalize_ket, parse_complex,
@@ -74,6 +76,8 @@ def _fmt_vs(value: float, std: float | None) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
+    import numpy as np
+
     from lightloom.sequencer.analysis.advice import advise, pulled_back_target
     from lightloom.sequencer.errors import UsageError
 
@@ -81,6 +85,8 @@ def run(args: argparse.Namespace) -> int:
         raise UsageError("--bootstrap needs at least 2 resamples")
     if args.converter_axis is not None and not np.isfinite(args.converter_axis):
         raise UsageError("--converter-axis: expected a finite angle in degrees")
+    if not (np.isfinite(args.tolerance) and 1e-6 <= args.tolerance <= 0.1):
+        raise UsageError("--tolerance: expected a fidelity between 1e-6 and 0.1 (smaller takes longer)")
     target, target_label = parse_state(args.target, "--target")
     estimates = None
     if Path(args.source).suffix in (".h5", ".journal") or Path(args.source).exists():
@@ -90,7 +96,8 @@ def run(args: argparse.Namespace) -> int:
         ket, label = parse_state(args.source, "FILE_OR_STATE (not an existing run file)")
         rho = np.outer(ket, ket.conj())
         source = {"kind": "state", "state": label}
-    adv = advise(rho, target, converter_axis_deg=args.converter_axis, rng=np.random.default_rng(args.seed))
+    adv = advise(rho, target, converter_axis_deg=args.converter_axis, tol=args.tolerance,
+                 rng=np.random.default_rng(args.seed))
 
     std_fidelity = std_best = std_now = None
     if estimates is not None:
@@ -134,6 +141,8 @@ def run(args: argparse.Namespace) -> int:
 def _measured(args: argparse.Namespace):
     """The maximum-likelihood 4x4 state of the run, and a function giving the bootstrap std of the
     fidelity to any (pulled-back) target density matrix."""
+    import numpy as np
+
     from lightloom.sequencer.analysis.pipeline import AnalysisError, estimate, prepare
     from lightloom.sequencer.errors import UsageError
     from lightloom.sequencer.storage.store import load_run
@@ -150,7 +159,7 @@ def _measured(args: argparse.Namespace):
     except AnalysisError as exc:
         raise UsageError(f"{args.source}: {exc}") from None
 
-    def std_of_fidelity_to(target_rho: np.ndarray) -> float:
+    def std_of_fidelity_to(target_rho) -> float:
         # Same seed for every call: the same replicates, so the stds are comparable.
         est = estimate(prep, target=target_rho, rng=np.random.default_rng(args.seed), n_bootstrap=args.bootstrap)
         return float(est.figures["fidelity"][1])
