@@ -49,6 +49,9 @@ FACTOR_BASIS = {"polarization": ("H", "V"), "spatial": ("h", "v")}
 BOOTSTRAP_TOLERANCE = 1e-3
 # Floor of the relative spread of a power reading when nothing measures it (no repeats).
 MIN_RELATIVE_SPREAD = 1e-4
+# Relative spread assumed for partial estimates when nothing measures the noise (no repeats and no
+# redundant readings yet): deliberately wide, 1% a reading, and said so in the document.
+UNMEASURED_RELATIVE_SPREAD = 1e-2
 
 
 class AnalysisError(ValueError):
@@ -501,14 +504,27 @@ def _partial_estimate(prep: Prepared, determined: Determination, *, rng: np.rand
     d = prep.operators.shape[-1]
     design = to_vector(prep.operators)
     v = np.asarray(prep.values, dtype=float)
+    noise = "Poisson counts"
     if prep.model == "poisson":
         var = np.maximum(v, 1.0)
+        solve, rank = least_squares_operator(design, 1.0 / var)
+        x = solve @ v
         replicas = rng.poisson(np.maximum(v, 0.0), size=(n_bootstrap, v.size)).astype(float)
     else:
         var = np.asarray(prep.sigma) ** 2
+        solve, rank = least_squares_operator(design, 1.0 / var)
+        x = solve @ v
+        # the same residual rule as the full fit: per-reading chi^2 per degree of freedom at least 1
+        dof = len(v) - rank + prep.within_dof
+        chi2 = float(np.sum((v - design @ x) ** 2 / var)) + prep.within_chi2
+        if dof > 0:
+            var = var * max(chi2 / dof, 1.0)
+            noise = f"Gaussian, rescaled by the residuals ({dof} degrees of freedom)"
+        else:
+            var = np.maximum(var, (UNMEASURED_RELATIVE_SPREAD * v) ** 2 / max(prep.readings / len(v), 1.0))
+            noise = (f"not measured yet (no repeats, no redundant readings): {UNMEASURED_RELATIVE_SPREAD:.0%} "
+                     "a reading assumed")
         replicas = v[None, :] + np.sqrt(var)[None, :] * rng.standard_normal((n_bootstrap, v.size))
-    solve, _ = least_squares_operator(design, 1.0 / var)
-    x = solve @ v
     xs = replicas @ solve.T
     stokes: dict[str, list[tuple[float, float] | None]] = {}
     figures: dict[str, tuple[float, float]] = {}
@@ -539,7 +555,7 @@ def _partial_estimate(prep: Prepared, determined: Determination, *, rng: np.rand
         closest_mode=None,
         estimator={
             "method": "weighted least squares on the determined components (the state is not determined)",
-            "model": prep.model, "determined": rank_info, "bootstrap_resamples": int(n_bootstrap),
+            "model": prep.model, "determined": rank_info, "noise": noise, "bootstrap_resamples": int(n_bootstrap),
             "readings": int(prep.readings), "distinct_operators": int(len(v)),
         },
         corrections=dict(prep.corrections), power=power, power_units=_power_units(prep),
