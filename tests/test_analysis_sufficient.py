@@ -10,7 +10,7 @@ import pytest
 
 from lightloom.sequencer.analysis.estimate import mle_gaussian
 from lightloom.sequencer.analysis.pipeline import (
-    _background, _drift_factor, _port_gains, estimate, prepare, target_of,
+    _background, _background_at, _drift_model, _port_gains, estimate, prepare, target_of,
 )
 from lightloom.sequencer.analysis.reduction import reduce_to_factor
 from lightloom.sequencer.analysis.estimate import merit
@@ -46,20 +46,21 @@ def night(tmp_path_factory) -> Path:
     return out
 
 
-def _per_reading_rows(run, relative: float):
+def _per_reading_rows(run, absolute: float, relative: float):
     """Every port reading as its own row, corrected as the pipeline corrects it (no combination)."""
     from lightloom.sequencer.analysis.pipeline import _complete_ports
 
     r = run.readings
     gains = _port_gains(run)
-    bg, bg_std, ref_bg, _ = _background(run)
-    drift, _ = _drift_factor(run, ref_bg, _complete_ports(run), gains)
+    bg_model, ref_bg = _background(run)
+    t_mid = 0.5 * (r.t_start + r.t_end)
+    bg = _background_at(bg_model, t_mid)
+    drift = _drift_model(run, ref_bg, _complete_ports(run), gains).factor(t_mid)
     meas = r.of_kind("measure")
     values = ((r.values - bg)[meas] / drift[meas][:, None] / gains[None, :]).reshape(-1)
     ops = (r.operators[meas] / gains[None, :, None, None]).reshape(-1, 4, 4)
-    base = np.broadcast_to((bg_std / gains) ** 2, (int(meas.sum()), len(gains))).reshape(-1)
     floor = 1e-6 * np.max(np.abs(values))
-    sigma = np.sqrt(base + (relative * values) ** 2 + floor**2)
+    sigma = np.sqrt(absolute**2 + (relative * values) ** 2 + floor**2)
     return ops, values, sigma
 
 
@@ -75,14 +76,15 @@ def test_estimates_agree_with_the_per_reading_fit(night: Path) -> None:
     run = load_run(night)
     prep = prepare(run)
     est = estimate(prep, target=target_of(run), rng=np.random.default_rng(3), n_bootstrap=100)
-    ops, values, sigma = _per_reading_rows(run, prep.corrections["noise_model"]["relative"])
+    nm = prep.corrections["noise_model"]
+    ops, values, sigma = _per_reading_rows(run, nm["absolute_w"], nm["relative"])
     assert len(values) == 8 * len(prep.values) * 1  # 4 passes x 2 repeats per row
     reference = mle_gaussian(ops, values, sigma)
     # Each density-matrix entry and figure within 1 std (the bootstrap's) of the per-reading fit.
     diff = np.abs(reference.rho - est.rho)
     assert np.all(diff.real <= est.rho_std.real + 1e-5) and np.all(diff.imag <= est.rho_std.imag + 1e-5)
     for name, func in (("purity", merit.purity), ("concurrence", merit.concurrence)):
-        value, std = est.figures[name]
+        value, std, _ = est.figures[name]
         assert abs(float(func(reference.rho)) - value) <= std
     assert abs(reference.intensity - est.power[0]) <= 2 * est.power[1]
 
@@ -98,13 +100,13 @@ def test_reduction_sums_complementary_ports_and_not_labels() -> None:
     rho = np.kron(rho_pol, 0.3 * h + 0.7 * v)
     ops = np.array([np.kron(pol[k], m) for k in pol for m in (h, v)])
     values = np.real(np.einsum("nij,ji->n", ops, rho))
-    red_ops, red_vals, _, info = reduce_to_factor(ops, values, None, "polarization")
+    red_ops, red_vals, _, info, _ = reduce_to_factor(ops, values, None, "polarization")
     assert info.case == "exact" and len(red_ops) == 6
     expected = np.real(np.einsum("nij,ji->n", red_ops, partial_trace(rho, "polarization")))
     assert np.allclose(red_vals, expected)
     lone = np.array([np.kron(pol[k], h) for k in pol])
     lone_vals = np.real(np.einsum("nij,ji->n", lone, rho))
-    red_ops, red_vals, _, info = reduce_to_factor(lone, lone_vals, None, "polarization")
+    red_ops, red_vals, _, info, _ = reduce_to_factor(lone, lone_vals, None, "polarization")
     assert info.case == "conditional"
     # proportional to the conditional state's predictions (here the reduced state: a product source)
     pred = np.real(np.einsum("nij,ji->n", red_ops, rho_pol))

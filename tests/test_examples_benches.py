@@ -26,11 +26,13 @@ def _records(log):
 
 
 @pytest.mark.parametrize("example, protocol, power_w, closed", CASES)
-def test_an_example_bench_runs_a_protocol_against_instruments_speaking_its_dialects(
+def test_an_example_bench_passes_the_pre_night_check_and_runs_a_protocol_against_its_dialects(
     tmp_path, example, protocol, power_w, closed
 ):
     twin = serve_twin(EXAMPLES / example, tmp_path, power_w=power_w)
     try:
+        # The pre-night check first, as a user would, then the protocol.
+        assert main(["probe", str(twin.bench_path), "--yes", "--json"]) == 0
         out = tmp_path / "run.h5"
         assert main(["run", protocol, "--bench", str(twin.bench_path), "--out", str(out), "--quiet"]) == 0
     finally:

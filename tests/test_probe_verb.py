@@ -114,8 +114,8 @@ def test_a_dead_meter_fails_and_the_rest_is_still_checked(served, capsys):
 def test_a_stuck_stage_fails_its_motion_check_within_the_settle_timeout(served, capsys):
     s = served(faults=[{"device": "hwp_stage", "kind": "stuck", "at_s": 0.0}])
     t0 = time.monotonic()
-    status, doc = _probe(capsys, s.bench, "--yes")
-    assert status == 3 and time.monotonic() - t0 < 60
+    status, doc = _probe(capsys, s.bench, "--yes", "--settle-timeout", "1")
+    assert status == 3 and time.monotonic() - t0 < 30
     (motion,) = _by(doc, "hwp_stage", "motion")
     assert motion["ok"] is False
     assert _by(doc, "qwp_stage", "motion")[0]["ok"]

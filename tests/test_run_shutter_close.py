@@ -90,7 +90,7 @@ def test_a_bench_back_within_the_close_time_receives_close_as_its_last_shutter_c
 def test_a_bench_down_for_longer_warns_to_block_the_beam_after_the_bounded_time_with_back_off(tmp_path):
     server, bench, log = _served_bench(tmp_path, close_s=1.0)
     try:
-        outage = _take_down_while_open(server, log, down_s=4.0)
+        outage = _take_down_while_open(server, log, down_s=2.5)
         out = tmp_path / "run.h5"
         status = main(["run", "polarization-6", "--bench", str(bench), "--out", str(out), "--quiet"])
         outage.join(10)

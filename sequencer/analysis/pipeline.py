@@ -7,12 +7,16 @@ per reading and recorded in the result:
    their spread enters the noise model;
 2. port gains: divided out of power readings and of their operators alike (E = g K^dagger K in the
    file); counts keep gains in the operators, since counts cannot be rescaled;
-3. drift: readings are divided by the smoothed pick-off reference (or by the reference steps'
-   total power interpolated in time) relative to its mean; for counts the factor multiplies the
-   operators instead;
+3. drift: readings are divided by a smooth drift model fitted to the pick-off reference (or to
+   the reference steps' total power), only where the reference shows a drift beyond its own
+   noise (sequencer.analysis.drift); for counts the factor multiplies the operators instead;
 4. normalisation per setting over complementary ports (optional, when the ports of a setting
    measure a complete set): each step's readings are divided by their sum, which cancels drift
    without a reference meter.
+
+The errors of the background subtraction and of the drift model are drawn into every bootstrap
+replicate (sequencer.analysis.propagation), and every figure gets a 95% interval inside its
+physical range (sequencer.analysis.intervals).
 
 Then the readings of each (setting, port) are combined into sufficient statistics
 (sequencer.analysis.sufficient), so that the fits cost O(distinct operators). The per-port
@@ -24,6 +28,7 @@ determine the state gives the Stokes components it does determine, and says what
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 from typing import Any
@@ -34,11 +39,15 @@ from lightloom.sequencer.analysis.estimate import (
     MleResult, linear_inversion, mle_gaussian, mle_poisson, parametric_bootstrap,
 )
 from lightloom.sequencer.analysis.estimate import merit
+from lightloom.sequencer.analysis.background import BackgroundModel, background_info, background_model, pooled_reading_noise
+from lightloom.sequencer.analysis.drift import DriftModel, fit_drift, no_drift
+from lightloom.sequencer.analysis.intervals import figure_bounds
+from lightloom.sequencer.analysis.propagation import CorrectionNoise, correction_noise
 from lightloom.sequencer.analysis.estimate.errors import EstimationError
 from lightloom.sequencer.analysis.estimate.hermitian import to_matrix, to_vector
 from lightloom.sequencer.analysis.estimate.linear import least_squares_operator
 from lightloom.sequencer.analysis.reduction import reduce_to_factor
-from lightloom.sequencer.analysis.sufficient import Sums, accumulate, setting_ids
+from lightloom.sequencer.analysis.sufficient import CHUNK_ROWS, Sums, accumulate, setting_ids
 from lightloom.sequencer.optics.analyzer import complete_port_set
 from lightloom.sequencer.optics.determination import STATE_KIND, Determination, determination
 from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS
@@ -79,6 +88,11 @@ class Prepared:
     # the rows' own chi^2 it gives the per-reading chi^2 that the residual rescaling uses.
     within_chi2: float = 0.0
     within_dof: int = 0
+    correction_noise: CorrectionNoise | None = None
+    # variance of a row = a^2 x absolute_factor + (b x prediction)^2 x relative_factor (Gaussian):
+    # 1/k for the mean of k readings; reduced rows combine several means
+    absolute_factor: np.ndarray | None = None
+    relative_factor: np.ndarray | None = None
     segment: dict[str, Any] = field(default_factory=dict)  # kind, index, t_start, t_end
 
 
@@ -90,78 +104,52 @@ class Estimate:
     rho_std: np.ndarray | None
     basis: tuple[str, ...]
     analyzes: tuple[str, ...]
-    figures: dict[str, tuple[float, float]]  # name -> (value, std)
-    stokes: dict[str, list[tuple[float, float] | None]]  # factor -> [S0..S3] (value, std), None if not determined
-    closest_mode: tuple[str, float, float] | None
+    figures: dict[str, tuple]  # name -> (value, std, (lo, hi) 95% interval)
+    stokes: dict[str, list[tuple | None]]  # factor -> [S0..S3] (value, std, interval), None if not determined
+    closest_mode: tuple | None  # (name, value, std, interval)
     estimator: dict[str, Any]
     corrections: dict[str, Any]
     linear_rho: np.ndarray | None = None
-    power: tuple[float, float] | None = None  # (value, std): S0 in W or counts/s
+    power: tuple | None = None  # (value, std, (lo, hi)): S0 in W or counts/s
     power_units: str = "W"
     determined: Determination | None = None
     partial: bool = False  # True: the state is not determined; only some Stokes components are
     segment: dict[str, Any] = field(default_factory=dict)
 
 
-def _smooth(t: np.ndarray, y: np.ndarray, window: int) -> np.ndarray:
-    """Running mean in time order over ``window`` readings (the drift is slow; the meter is noisy)."""
-    order = np.argsort(t)
-    ys = y[order]
-    k = max(1, min(window, len(ys)))
-    pad = np.pad(ys, (k // 2, k - 1 - k // 2), mode="edge")
-    # running sums: O(n) whatever the window (a convolution would cost n x window)
-    csum = np.concatenate([[0.0], np.cumsum(pad)])
-    sm = (csum[k:] - csum[:-k]) / k
-    out = np.empty_like(sm)
-    out[order] = sm
-    return out
-
-
-def _background(run: RunData) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]:
-    """Per-reading background of every port (interpolated in time), its std per port, info."""
+def _background(run: RunData) -> tuple[BackgroundModel, np.ndarray]:
+    """The background model of the ports, and the background of the reference meter per reading."""
     r = run.readings
     bg = r.of_kind("background")
-    n_ports = r.values.shape[1]
     t_mid = 0.5 * (r.t_start + r.t_end)
+    model = background_model(t_mid[bg], r.values[bg])
     if not bg.any():
-        return np.zeros_like(r.values), np.zeros(n_ports), np.zeros(len(r)), {"applied": False, "readings": 0}
-    tb = t_mid[bg]
-    vb = r.values[bg]
-    per_reading = np.column_stack([np.interp(t_mid, tb, vb[:, j]) for j in range(n_ports)])
-    std = vb.std(axis=0, ddof=1) if bg.sum() > 1 else np.zeros(n_ports)
-    ref_bg = np.interp(t_mid, tb, r.reference_w[bg]) if np.isfinite(r.reference_w[bg]).all() else np.zeros(len(r))
-    info = {
-        "applied": True,
-        "readings": int(bg.sum()),
-        "mean_per_port": [float(x) for x in vb.mean(axis=0)],
-        "std_per_port": [float(x) for x in std],
-    }
-    return per_reading, std, ref_bg, info
+        return model, np.zeros(len(r))
+    ref_bg = np.interp(t_mid, t_mid[bg], r.reference_w[bg]) if np.isfinite(r.reference_w[bg]).all() else np.zeros(len(r))
+    return model, ref_bg
 
 
-def _drift_factor(run: RunData, ref_bg: np.ndarray, use_complete_sum: bool, gains: np.ndarray) -> tuple[np.ndarray, dict[str, Any]]:
-    """Relative source power at every reading, from the pick-off meter or the reference steps."""
+def _background_at(model: BackgroundModel, t_s: np.ndarray) -> np.ndarray:
+    """(n, ports) background under readings at ``t_s``: the model's interpolation, one port at a
+    time (O(n); the model's own weight matrix would be n x background readings)."""
+    if not model.applied:
+        return np.zeros((len(t_s), model.values.shape[1] if model.values.ndim == 2 else 0))
+    return np.column_stack([np.interp(t_s, model.times_s, model.values[:, j]) for j in range(model.values.shape[1])])
+
+
+def _drift_model(run: RunData, ref_bg: np.ndarray, use_complete_sum: bool, gains: np.ndarray) -> DriftModel:
+    """Relative source power, from the pick-off meter or the reference steps (sequencer.analysis.drift)."""
     r = run.readings
     lit = ~r.of_kind("background")
     t_mid = 0.5 * (r.t_start + r.t_end)
     ref = r.reference_w - ref_bg
-    if lit.any() and np.isfinite(ref[lit]).all() and (ref[lit] > 0).all():
-        window = max(5, int(lit.sum()) // 10)
-        smooth = np.ones(len(r))
-        smooth[lit] = _smooth(t_mid[lit], ref[lit], window)
-        smooth[lit] /= smooth[lit].mean()
-        return smooth, {
-            "applied": True, "source": "pick-off reference meter", "smoothing_readings": window,
-            "min": float(smooth[lit].min()), "max": float(smooth[lit].max()),
-        }
+    if lit.any() and np.isfinite(ref[lit]).all():
+        return fit_drift(t_mid[lit], ref[lit], source="pick-off reference meter")
     refsteps = r.of_kind("reference")
     if refsteps.sum() >= 2 and use_complete_sum:
         total = (r.values[refsteps] / gains).sum(axis=1)
-        if (total > 0).all():
-            f = np.interp(t_mid, t_mid[refsteps], total / total.mean())
-            return f, {"applied": True, "source": "reference steps (total power, interpolated in time)",
-                       "min": float(f.min()), "max": float(f.max())}
-    return np.ones(len(r)), {"applied": False, "source": None}
+        return fit_drift(t_mid[refsteps], total, source="reference steps (total power over complementary ports)")
+    return no_drift(None, "no reference meter and no reference steps over a complete set of ports")
 
 
 def _complete_ports(run: RunData) -> bool:
@@ -174,18 +162,39 @@ def _port_gains(run: RunData) -> np.ndarray:
 
 
 def _spread_model(sums: Sums, bg_std: float) -> tuple[float, float, str]:
-    """(a, b) of sigma^2 = a^2 + (b v)^2 from repeated readings (rows of ``sums`` with count >= 2)."""
+    """(a, b) of sigma^2 = a^2 + (b v)^2 from repeated readings (rows of ``sums`` with count >= 2).
+
+    Both terms are fitted (non-negative least squares on the unbiased variances, one observation
+    per reading), the background spread entering as one more observation of a^2: a few
+    background readings alone estimate the absolute noise, which dominates at low power, too poorly.
+    """
     a = float(bg_std)
     rep = sums.count >= 2
     if sums.count[rep].sum() >= 4:
+        from scipy.optimize import nnls
+
         k = sums.count[rep]
         mean = sums.sum_value[rep] / k
         var = np.clip(sums.sum_value2[rep] - k * mean**2, 0.0, None) / (k - 1)
-        # least squares of var = a^2 + b^2 v^2 with a fixed from the background, one term per reading
-        excess = np.clip(var - a * a, 0.0, None)
         v2 = mean**2
-        b2 = float(np.sum(k * excess * v2) / max(float(np.sum(k * v2 * v2)), 1e-300))
-        return a, math.sqrt(max(b2, 0.0)), f"from {int(k.sum())} repeated readings"
+        # var = a^2 + b^2 v^2, weighted by 1 / model variance^2 (the spread of a variance estimate
+        # grows with the variance), with the background spread as one more observation of a^2.
+        v_scale = max(float(np.median(v2)), 1e-300)
+        design = np.column_stack([np.ones(var.size), v2 / v_scale])
+        rhs = var
+        weight = k.astype(float)
+        if a > 0:
+            design = np.vstack([design, [1.0, 0.0]])
+            rhs = np.concatenate([var, [a * a]])
+            weight = np.concatenate([weight, [1.0]])
+        mean_var = max(float(np.average(rhs, weights=weight)), 1e-300)
+        model_var = np.full(rhs.size, mean_var)
+        for _ in range(3):
+            w = np.sqrt(weight) / model_var
+            sol, _ = nnls(design * w[:, None], rhs * w)
+            model_var = np.maximum(design @ sol, 1e-3 * mean_var)
+        a2, b2 = float(sol[0]), float(sol[1]) / v_scale
+        return math.sqrt(max(a2, 0.0)), math.sqrt(max(b2, 0.0)), f"from {int(k.sum())} repeated readings"
     return a, MIN_RELATIVE_SPREAD, "no repeats: background spread and a relative floor, rescaled by the fit residuals"
 
 
@@ -246,16 +255,19 @@ def prepare_segments(
     counts = h.port_units == "counts"
     gains = _port_gains(run)
     complete = _complete_ports(run)
-    bg, bg_std, ref_bg, bg_info = _background(run)
-    drift, drift_info = _drift_factor(run, ref_bg, complete, gains)
-    ops_source = operators if operators is not None else r.operators
     meas = r.of_kind("measure") & (segments.of_reading >= 0)
     rows = np.flatnonzero(meas)
     if rows.size == 0:
         return []
     if normalize and not complete:
         raise AnalysisError("normalisation per setting needs ports that measure a complete set (e.g. all four ports)")
-    corrections: dict[str, Any] = {"background": bg_info, "drift": drift_info}
+    t_all = 0.5 * (np.asarray(r.t_start) + np.asarray(r.t_end))
+    bg_model, ref_bg = _background(run)
+    bg_std = bg_model.sigma if bg_model.applied else np.zeros(len(gains))
+    bg = _background_at(bg_model, t_all)
+    drift_model = _drift_model(run, ref_bg, complete, gains)
+    drift = drift_model.factor(t_all)
+    corrections: dict[str, Any] = {"background": background_info(bg_model), "drift": drift_model.info}
     d = int(h.dimension)
 
     def corrected(lo: int, hi: int, mask: np.ndarray) -> np.ndarray:
@@ -278,12 +290,13 @@ def prepare_segments(
             return e * scale[:, None, None, None]
         return e / gains[None, :, None, None]
 
+    ops_source = operators if operators is not None else r.operators
     if counts:
         base_var = np.zeros(len(gains))
         corrections["port_gain"] = {"applied": True, "how": "kept in the operators (counts are not rescaled)",
                                     "gains": gains.tolist()}
-        corrections["drift"] = {**drift_info, "how": "folded into the operators with the dwell (counts stay counts)"} \
-            if drift_info.get("applied") else drift_info
+        if drift_model.applied:
+            corrections["drift"] = {**drift_model.info, "how": "folded into the operators with the dwell (counts stay counts)"}
     else:
         base_var = (bg_std / gains) ** 2
         corrections["port_gain"] = {"applied": True, "how": "divided out of readings and operators",
@@ -292,7 +305,7 @@ def prepare_segments(
         {"applied": True, "how": "each setting's readings divided by their sum over the complementary ports"}
         if normalize else {"applied": False}
     )
-    fine, per_fit = accumulate(
+    fine, per_fit, row_of_reading = accumulate(
         rows=rows, segment=segments.of_reading[rows], pass_index=np.asarray(r.pass_index)[rows],
         setting=setting_ids(np.asarray(r.commanded)[rows]), values_of=corrected, operators_of=model_operators,
         base_variance=base_var, t_start=np.asarray(r.t_start)[rows], t_end=np.asarray(r.t_end)[rows], d=d,
@@ -303,28 +316,77 @@ def prepare_segments(
         a = float(np.sqrt(np.mean(base_var))) if len(base_var) else 0.0
         a, b, how = _spread_model(fine, a)
         noise = {"model": "gaussian", "absolute_w": a, "relative": b, "how": how}
+        if bg_model.applied and a > 0:
+            # a is the absolute noise of one corrected reading (gain divided out)
+            a_port = a * gains
+            repeat_dof = int(np.sum(fine.count[fine.count >= 2] - 1)) if "repeated" in how else 0
+            if bg_model.times_s.size < 2:
+                bg_model = background_model(bg_model.times_s, bg_model.values, fallback_sigma=a_port)
+            else:
+                bg_model = pooled_reading_noise(bg_model, a_port, repeat_dof)
+            corrections["background"] = {**background_info(bg_model), "reading_noise_how":
+                                         "background spread pooled with the absolute noise of repeated readings"}
+    elif bg_model.applied and bg_model.times_s.size < 2:
+        # One background reading of counts: its Poisson spread.
+        bg_model = background_model(bg_model.times_s, bg_model.values,
+                                    fallback_sigma=np.sqrt(np.clip(bg_model.values[0], 1.0, None)))
+    divisor = (drift[rows][:, None] * gains[None, :]) if not counts else np.ones((len(rows), len(gains)))
+    if not counts:
+        # the rows are means: each reading enters its row divided by the row's count
+        divisor = divisor * per_fit.count[row_of_reading]
+    noise_map = _correction_noise(t_all[rows], divisor, row_of_reading, per_fit, bg_model, drift_model)
     out = []
     for seg in np.unique(per_fit.segment):
-        part = per_fit.select(per_fit.segment == seg)
-        out.append(_rows_for_fit(run, part, counts, b, dict(corrections, noise_model=dict(noise)),
-                                 segment=int(seg), segments=segments))
+        idx = np.flatnonzero(per_fit.segment == seg)
+        part = per_fit.select(idx)
+        seg_noise = dataclasses.replace(
+            noise_map, background_map=None if noise_map.background_map is None else noise_map.background_map[idx],
+            row_times_s=noise_map.row_times_s[idx])
+        out.append(_rows_for_fit(run, part, counts, a, b, dict(corrections, noise_model=dict(noise)),
+                                 segment=int(seg), segments=segments, correction=seg_noise))
     return out
 
 
-def _rows_for_fit(run: RunData, part: Sums, counts: bool, relative: float, corrections: dict[str, Any],
-                  *, segment: int, segments: Segments) -> Prepared:
+def _correction_noise(t_mid: np.ndarray, divisor: np.ndarray, row_of_reading: np.ndarray, per_fit: Sums,
+                      background: BackgroundModel, drift: DriftModel) -> CorrectionNoise:
+    """The correction errors mapped onto the rows (sequencer.analysis.propagation), built a chunk of
+    readings at a time: the map is a sum over readings, so only its non-zero entries are ever held."""
+    n_ports = row_of_reading.shape[1] if row_of_reading.ndim == 2 else 0
+    n_rows = len(per_fit)
+    row_times = per_fit.t_sum / np.maximum(per_fit.count, 1)
+    total = None
+    last = None
+    for lo in range(0, len(t_mid), CHUNK_ROWS):
+        hi = min(lo + CHUNK_ROWS, len(t_mid))
+        k = hi - lo
+        last = correction_noise(
+            flat_times_s=np.repeat(t_mid[lo:hi], n_ports), flat_ports=np.tile(np.arange(n_ports), k),
+            flat_divisor=divisor[lo:hi].reshape(-1), flat_rows=row_of_reading[lo:hi].reshape(-1), n_rows=n_rows,
+            row_times_s=row_times, background=background, drift=drift,
+        )
+        if last.background_map is not None:
+            total = last.background_map if total is None else total + last.background_map
+    if last is None:
+        return CorrectionNoise(None, np.zeros(0), drift, row_times)
+    return dataclasses.replace(last, background_map=total)
+
+
+def _rows_for_fit(run: RunData, part: Sums, counts: bool, absolute: float, relative: float,
+                  corrections: dict[str, Any], *, segment: int, segments: Segments,
+                  correction: CorrectionNoise) -> Prepared:
     """The estimator's rows of one segment: one per (setting, port), reduced to one factor if asked."""
     analyzes = run.header.analyzes
     k = part.count
     within_chi2, within_dof = 0.0, 0
+    abs_factor = rel_factor = 1.0 / k
     if counts:
         ops, vals, var = part.sum_operator, part.sum_value, None
     else:
         mean = part.sum_value / k
         ops = part.sum_operator / k[:, None, None]
         floor = 1e-6 * float(np.max(np.abs(mean))) if len(mean) else 0.0
-        # variance of the mean of k readings, each with sigma^2 = background + (b v)^2 + floor^2
-        var = (part.sum_base_variance + relative**2 * part.sum_value2 + k * floor**2) / k**2
+        # variance of the mean of k readings, each with sigma^2 = a^2 + (b v)^2 + floor^2
+        var = (k * absolute**2 + relative**2 * part.sum_value2 + k * floor**2) / k**2
         vals = mean
         reading_var = var * k
         within_chi2 = float(np.sum(np.clip(part.sum_value2 - k * mean**2, 0.0, None) / reading_var))
@@ -332,12 +394,22 @@ def _rows_for_fit(run: RunData, part: Sums, counts: bool, relative: float, corre
     times = part.t_sum / k
     if len(analyzes) == 1:
         keep = analyzes[0]
-        ops, vals, var, info = reduce_to_factor(ops, vals, var, keep)
+        joint_vals = vals
+        ops, vals, var, info, comb = reduce_to_factor(ops, vals, var, keep)
         basis = FACTOR_BASIS[keep]
         corrections["reduction"] = {"applied": True, "case": info.case, "how": info.describe(keep),
                                     "projectors": info.clusters, "exact_projectors": info.exact_clusters,
                                     "worst_residual": info.worst_residual}
-        times = np.full(len(vals), float(np.sum(part.t_sum) / np.sum(k)))
+        weight = np.maximum(comb.sum(axis=1), np.finfo(float).tiny)
+        times = (comb @ times) / weight
+        abs_factor = (comb**2) @ (1.0 / k)
+        summed = comb @ joint_vals
+        rel_factor = ((comb**2) @ (joint_vals**2 / k)) / np.maximum(summed**2, np.finfo(float).tiny)
+        if correction.background_map is not None:
+            from scipy import sparse
+
+            correction = dataclasses.replace(correction, background_map=sparse.csr_matrix(comb) @ correction.background_map)
+        correction = dataclasses.replace(correction, row_times_s=times)
     else:
         basis = BASIS_LABELS
         corrections["reduction"] = {"applied": False}
@@ -349,6 +421,8 @@ def _rows_for_fit(run: RunData, part: Sums, counts: bool, relative: float, corre
         times=np.asarray(times), readings=int(k.sum()), within_chi2=within_chi2, within_dof=within_dof,
         segment={"kind": segments.kind, "index": int(label),
                  "t_start": float(part.t_min.min()), "t_end": float(part.t_max.max())},
+        correction_noise=correction, absolute_factor=np.broadcast_to(abs_factor, np.shape(vals)).copy(),
+        relative_factor=np.broadcast_to(rel_factor, np.shape(vals)).copy(),
     )
 
 
@@ -426,6 +500,18 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
         if not np.any(prep.values > 0):
             raise AnalysisError("no power above background in the measure readings: was the beam on?")
         fit = mle_gaussian(prep.operators, prep.values, prep.sigma)
+        nm = prep.corrections.get("noise_model", {})
+        if nm.get("relative", 0.0) > 0 and prep.absolute_factor is not None:
+            # The relative part of the spread from the fitted readings rather than the measured
+            # ones: weights that follow each reading's own noise bias the fit (a reading that
+            # fluctuates up is down-weighted), and the bootstrap, whose sigma is fixed, would not
+            # show that bias (iteratively reweighted least squares, common practice, no source).
+            pred = np.clip(np.einsum("ij,nji->n", fit.intensity * fit.rho, prep.operators).real, 0.0, None)
+            floor = 1e-6 * float(np.max(np.abs(prep.values)))
+            refined = np.sqrt(nm["absolute_w"] ** 2 * prep.absolute_factor
+                              + (nm["relative"] * pred) ** 2 * prep.relative_factor + floor**2 * prep.absolute_factor)
+            prep = dataclasses.replace(prep, sigma=np.maximum(refined, np.finfo(float).tiny))
+            fit = mle_gaussian(prep.operators, prep.values, prep.sigma)
         sigma, scale = _rescale_sigma(prep, fit)
         if scale > 1.0:
             fit = mle_gaussian(prep.operators, prep.values, sigma)
@@ -441,20 +527,22 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
     boot = parametric_bootstrap(
         prep.operators, prep.values, fns, rng=rng, sigma=sigma, model=prep.model,
         n_resamples=n_bootstrap, fit=fit, tol=BOOTSTRAP_TOLERANCE,
+        bounds={name: figure_bounds(name, d) for name in fns},
+        perturb=prep.correction_noise.perturb if prep.correction_noise is not None else None,
     )
-    figs = {k: (float(v.value), float(v.std)) for k, v in boot.figures.items()}
+    figs = {k: (float(v.value), float(v.std), v.interval) for k, v in boot.figures.items()}
     rho_std = np.zeros((d, d), dtype=np.complex128)
     for i in range(d):
         for j in range(d):
             rho_std[i, j] = figs.pop(f"_re_{i}{j}")[1] + 1j * figs.pop(f"_im_{i}{j}")[1]
     stokes: dict[str, list[tuple[float, float] | None]] = {}
     for factor in prep.analyzes if len(prep.analyzes) == 1 else ("polarization", "spatial"):
-        stokes[factor] = [(1.0, 0.0)] + [figs.pop(f"stokes_{factor}_{k}") for k in range(1, 4)]
+        stokes[factor] = [(1.0, 0.0, (1.0, 1.0))] + [figs.pop(f"stokes_{factor}_{k}") for k in range(1, 4)]
     closest = None
     if len(prep.analyzes) == 2:
         fids = {name: figs.pop(f"fidelity_{name}") for name in JOINT_KETS}
         best = max(fids, key=lambda k: fids[k][0])
-        closest = (best, fids[best][0], fids[best][1])
+        closest = (best, fids[best][0], fids[best][1], fids[best][2])
         figs.update({f"fidelity_to_{k}": v for k, v in fids.items()})
     corrections = dict(prep.corrections)
     if prep.model == "gaussian":
@@ -471,7 +559,7 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
         },
         corrections=corrections,
         linear_rho=lin.rho,
-        power=(float(fit.intensity), _power_std(prep, fit, sigma)),
+        power=_with_interval(float(fit.intensity), _power_std(prep, fit, sigma), 0.0, np.inf),
         power_units=_power_units(prep),
         determined=determined,
         segment=dict(prep.segment),
@@ -536,19 +624,21 @@ def _partial_estimate(prep: Prepared, determined: Determination, *, rng: np.rand
             continue
         coords = to_vector(np.asarray(obs))
         s0, s0s = coords[0] @ x, xs @ coords[0]
-        entry: list[tuple[float, float] | None] = [(1.0, 0.0)]
+        entry: list[tuple | None] = [(1.0, 0.0, (1.0, 1.0))]
         for k in (1, 2, 3):
             if k in fixed:
-                entry.append((float(coords[k] @ x / s0), float(np.std((xs @ coords[k]) / s0s, ddof=1))))
+                reps = (xs @ coords[k]) / s0s
+                entry.append((float(coords[k] @ x / s0), float(np.std(reps, ddof=1)),
+                              _percentile_interval(reps, -1.0, 1.0)))
             else:
                 entry.append(None)
         stokes[factor] = entry
         if len(fixed) == 3:
             dop = np.sqrt(sum((xs @ coords[k] / s0s) ** 2 for k in (1, 2, 3)))
             figures[f"dop_{factor}"] = (float(np.sqrt(sum(entry[k][0] ** 2 for k in (1, 2, 3)))),
-                                        float(np.std(dop, ddof=1)))
+                                        float(np.std(dop, ddof=1)), _percentile_interval(dop, 0.0, 1.0))
         if power is None:
-            power = (float(s0), float(np.std(s0s, ddof=1)))
+            power = (float(s0), float(np.std(s0s, ddof=1)), _percentile_interval(s0s, 0.0, np.inf))
     rank_info = f"{determined.rank} of {determined.full_rank} parameters determined"
     return Estimate(
         rho=None, rho_std=None, basis=prep.basis, analyzes=prep.analyzes, figures=figures, stokes=stokes,
@@ -571,10 +661,26 @@ def target_of(run: RunData) -> np.ndarray | None:
     return None if h.factor_target_state is None else np.asarray(h.factor_target_state)
 
 
-def _vs(pair: tuple[float, float] | None) -> dict[str, float] | None:
-    if pair is None:
+def _vs(fig: tuple | None) -> dict[str, Any] | None:
+    """{value, std, interval} of a figure (value, std, (lo, hi))."""
+    if fig is None:
         return None
-    return {"value": float(pair[0]), "std": float(pair[1])}
+    out: dict[str, Any] = {"value": float(fig[0]), "std": float(fig[1])}
+    if len(fig) > 2 and fig[2] is not None:
+        out["interval"] = [float(fig[2][0]), float(fig[2][1])]
+    return out
+
+
+def _with_interval(value: float, std: float, lo: float, hi: float) -> tuple[float, float, tuple[float, float]]:
+    """(value, std, interval): value +- 1.96 std cut to the physical range [lo, hi] (normal
+    approximation, for quantities estimated linearly)."""
+    return value, std, (float(max(lo, value - 1.96 * std)), float(min(hi, value + 1.96 * std)))
+
+
+def _percentile_interval(samples: np.ndarray, lo: float, hi: float) -> tuple[float, float]:
+    """The 2.5% and 97.5% points of replicate values, inside [lo, hi]."""
+    a, b = np.percentile(samples, [2.5, 97.5])
+    return float(np.clip(a, lo, hi)), float(np.clip(b, lo, hi))
 
 
 def run_section(run: RunData) -> dict[str, Any]:
@@ -629,8 +735,8 @@ def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
         out["fidelity"] = _vs(est.figures["fidelity"])
         out["target"] = run.header.target_label
     if est.closest_mode is not None:
-        name, f, s = est.closest_mode
-        out["closest_vector_mode"] = {"name": name, "fidelity": {"value": f, "std": s}}
+        name, *fig = est.closest_mode
+        out["closest_vector_mode"] = {"name": name, "fidelity": _vs(tuple(fig))}
         out["vector_mode_fidelities"] = {
             k[len("fidelity_to_"):]: _vs(v) for k, v in est.figures.items() if k.startswith("fidelity_to_")
         }

@@ -120,7 +120,7 @@ def _relative_residual(total: np.ndarray, factor: str) -> float:
 
 def reduce_to_factor(
     ops: np.ndarray, values: np.ndarray, variance: np.ndarray | None, factor: str
-) -> tuple[np.ndarray, np.ndarray, np.ndarray | None, ReductionInfo]:
+) -> tuple[np.ndarray, np.ndarray, np.ndarray | None, ReductionInfo, np.ndarray]:
     """Operators on ``factor`` and the combined readings they predict.
 
     Parameters
@@ -132,7 +132,8 @@ def reduce_to_factor(
 
     Returns
     -------
-    (operators (k, 2, 2), values (k,), variance (k,) or None, ReductionInfo).
+    (operators (k, 2, 2), values (k,), variance (k,) or None, ReductionInfo, combination (k, m):
+    the weight of each input row in each output row).
     """
     labels = clusters_of(ops, factor)
     n_clusters = int(labels.max()) + 1 if len(labels) else 0
@@ -176,4 +177,6 @@ def reduce_to_factor(
         red_var = np.bincount(rows, weights=(weights**2 * variance)[used], minlength=len(kept))
     info = ReductionInfo(case, n_clusters, int(exact.sum()),
                          float(residuals[kept].max()) if len(kept) else 0.0)
-    return _traced_out(red_ops, factor) / 2.0, red_vals, red_var, info
+    combination = np.zeros((len(kept), len(ops)))
+    combination[rows, np.flatnonzero(used)] = weights[used]
+    return _traced_out(red_ops, factor) / 2.0, red_vals, red_var, info, combination

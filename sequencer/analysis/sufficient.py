@@ -154,7 +154,7 @@ def accumulate(
     t_start: np.ndarray,
     t_end: np.ndarray,
     d: int,
-) -> tuple[Sums, Sums]:
+) -> tuple[Sums, Sums, np.ndarray]:
     """Sums over the measure readings ``rows`` (indices into the reading table, increasing).
 
     ``segment``, ``pass_index``, ``setting``, ``t_start`` and ``t_end`` are per measure reading
@@ -164,14 +164,15 @@ def accumulate(
     known before the fit. Table rows are read CHUNK_ROWS at a time.
 
     Returns (per (segment, pass, setting, port) without operators: for the spread of repeats;
-    per (segment, setting, port) with operators: the rows of the fits).
+    per (segment, setting, port) with operators: the rows of the fits; the index (len(rows), P)
+    of each port reading's row in the latter).
     """
     n = len(rows)
     empty_i = np.zeros(0, dtype=np.int64)
     empty = Sums(empty_i, empty_i, empty_i, empty_i, np.zeros(0), np.zeros(0), np.zeros(0),
                  np.zeros((0, d, d), complex), np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0))
     if n == 0:
-        return empty, empty
+        return empty, empty, np.zeros((0, len(base_variance)), dtype=np.int64)
     n_ports = len(base_variance)
     fine_id, fine_keys = _dense(segment, pass_index, setting)
     coarse_id, coarse_keys = _dense(segment, setting)
@@ -195,5 +196,8 @@ def accumulate(
         fine.add((fine_id[start:stop, None] * n_ports + port).reshape(-1), v, base, t, t_lo, t_hi, None)
         coarse.add((coarse_id[start:stop, None] * n_ports + port).reshape(-1), v, base, t, t_lo, t_hi, flat)
         start = stop
+    seen = coarse.count > 0
+    row_of_group = np.cumsum(seen) - 1
+    row_of_reading = row_of_group[coarse_id[:, None] * n_ports + port[None, :]]
     return (fine.sums(fine_keys, n_ports, d, ("segment", "pass_index", "setting")),
-            coarse.sums(coarse_keys, n_ports, d, ("segment", "setting")))
+            coarse.sums(coarse_keys, n_ports, d, ("segment", "setting")), row_of_reading)

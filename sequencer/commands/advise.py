@@ -25,8 +25,9 @@ def add_parser(sub) -> None:
         ),
     )
     p.add_argument("source", metavar="FILE_OR_STATE",
-                   help="a joint run file (FILE.h5), or a state: a name (radial, azimuthal, hybrid_plus, "
-                        "hybrid_minus, a product such as H,h) or four amplitudes such as '0.6,0,0,0.8j'")
+                   help="a joint run file (FILE.h5), a saved `analyze --json` document (FILE.json), or a "
+                        "state: a name (radial, azimuthal, hybrid_plus, hybrid_minus, a product such as H,h) "
+                        "or four amplitudes such as '0.6,0,0,0.8j'")
     p.add_argument("--target", required=True, metavar="NAME_OR_STATE",
                    help="the beam wanted: a name or four amplitudes (basis |H,h>, |H,v>, |V,h>, |V,v>)")
     p.add_argument("--json", action="store_true", help="print the result as JSON")
@@ -89,7 +90,10 @@ def run(args: argparse.Namespace) -> int:
         raise UsageError("--tolerance: expected a fidelity between 1e-6 and 0.1 (smaller takes longer)")
     target, target_label = parse_state(args.target, "--target")
     estimates = None
-    if Path(args.source).suffix in (".h5", ".journal") or Path(args.source).exists():
+    if Path(args.source).suffix == ".json":
+        rho = _from_analysis_json(args.source)
+        source = {"kind": "analysis", "file": args.source}
+    elif Path(args.source).suffix in (".h5", ".journal") or Path(args.source).exists():
         rho, estimates = _measured(args)
         source = {"kind": "run", "file": args.source}
     else:
@@ -129,13 +133,38 @@ def run(args: argparse.Namespace) -> int:
         "remaining_error": limited,
         "std_from": ("bootstrap replicates of the reconstructed state (the best local fidelity's std "
                      "is that of the fidelity at its optimal unitaries, to first order)")
-        if estimates is not None else "a state given exactly: no std",
+        if estimates is not None else "a state given without its replicates: no std",
     }
     if args.json:
         print(json.dumps(doc, indent=1))
     else:
         _print_text(doc)
     return 0
+
+
+def _from_analysis_json(path: str):
+    """The density matrix of a saved ``analyze --json`` document (no replicates: no std)."""
+    import numpy as np
+
+    from lightloom.sequencer.errors import OpticsError, UsageError
+    from lightloom.sequencer.optics.states import normalize_density
+
+    try:
+        doc = json.loads(Path(path).read_text(encoding="utf-8"))
+        dm = doc["density_matrix"]
+        rho = np.asarray(dm["real"], dtype=float) + 1j * np.asarray(dm["imag"], dtype=float)
+    except FileNotFoundError:
+        raise UsageError(f"{path}: no such file") from None
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        raise UsageError(f"{path}: expected the JSON document of `lightloom analyze --json` with a "
+                         f"density_matrix {{real, imag}} ({type(exc).__name__}: {exc})") from None
+    if rho.shape != (4, 4):
+        raise UsageError(f"{path}: the advisor needs a joint (4x4) density matrix, this one is {rho.shape[0]}x{rho.shape[1]}"
+                         if rho.ndim == 2 else f"{path}: density_matrix is not a matrix")
+    try:
+        return normalize_density(rho, tol=1e-6)
+    except OpticsError as exc:
+        raise UsageError(f"{path}: {exc}") from None
 
 
 def _measured(args: argparse.Namespace):

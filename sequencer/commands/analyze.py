@@ -37,6 +37,9 @@ def add_parser(sub) -> None:
     p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
     p.add_argument("--field-maps", action="store_true",
                    help="add the transverse polarization maps of a joint state to the JSON (key field_maps)")
+    p.add_argument("--stability", action="store_true",
+                   help="also report the stability of the reference and every port: mean, drift per hour, "
+                        "Allan deviation (automatic for runs of the stability protocol)")
     p.set_defaults(handler=run)
 
 
@@ -53,19 +56,27 @@ def run(args: argparse.Namespace) -> int:
         except ValueError as exc:
             raise UsageError(f"--window: {exc}") from None
     if len(args.files) > 1:
-        if args.per_pass or window_s is not None or args.plots or args.bench or args.field_maps:
-            raise UsageError("--per-pass, --window, --plots, --bench and --field-maps take one run file; give one file, or drop them for the summary table")
+        if args.per_pass or window_s is not None or args.plots or args.bench or args.field_maps or args.stability:
+            raise UsageError("--per-pass, --window, --plots, --bench, --field-maps and --stability take one run file; "
+                             "give one file, or drop them for the summary table")
         return _many(args)
     return _one(args, args.files[0], window_s)
 
 
-def _analyse(args: argparse.Namespace, path: str, window_s: float | None):
+def _analyse(args: argparse.Namespace, path: str, window_s: float | None, data=None):
     """(RunData, document, whole-run Estimate or None, [(segment document, Estimate or None)])."""
     from lightloom.sequencer.analysis.pipeline import AnalysisError, analyse_run, by_pass, by_window
     from lightloom.sequencer.errors import UsageError
     from lightloom.sequencer.storage.store import load_run
 
-    data = load_run(path)
+    if data is None:
+        data = load_run(path)
+    from lightloom.sequencer.analysis.scans import scanned_element
+
+    element = scanned_element(data)
+    if element is not None:
+        doc, _ = _scan_document(args, path, data, element)
+        return data, doc, None, []
     operators = _recomputed_operators(data, args.bench) if getattr(args, "bench", None) else None
     segments = None
     if getattr(args, "per_pass", False):
@@ -87,15 +98,31 @@ def _analyse(args: argparse.Namespace, path: str, window_s: float | None):
         from lightloom.sequencer.analysis.portrait import portrait, portrait_json
 
         doc["field_maps"] = portrait_json(portrait(est.rho))
+    if doc.get("determines") == "partial":
+        doc["state"] = "not determined: " + "; ".join(doc.get("missing", []))
     if segments is not None:
         doc["passes"] = [d for d, _ in parts]
     return data, doc, est, parts
 
 
 def _one(args: argparse.Namespace, path: str, window_s: float | None) -> int:
-    data, doc, est, parts = _analyse(args, path, window_s)
+    from lightloom.sequencer.analysis.scans import scanned_element
+    from lightloom.sequencer.storage.store import load_run
+
+    data = load_run(path)
+    element = scanned_element(data)
+    if element is not None:
+        return _scan(args, path, data, element)
+    data, doc, est, parts = _analyse(args, path, window_s, data)
+    stability = _stability(args, data)
+    if stability is not None:
+        from lightloom.sequencer.analysis.stability import stability_json
+
+        doc["stability"] = stability_json(stability)
     if args.plots:
         doc["plots"] = [str(p) for p in write_figures(data, doc, est, args.plots)]
+        if stability is not None:
+            doc["plots"].append(str(_stability_plot(data, stability, args.plots)))
     if args.json:
         print(json.dumps(doc, indent=1))
     elif args.csv:
@@ -109,6 +136,10 @@ def _one(args: argparse.Namespace, path: str, window_s: float | None) -> int:
         print_report(console, doc)
         if "passes" in doc:
             print_passes(console, doc["passes"])
+        if stability is not None:
+            from lightloom.sequencer.present.report import print_stability
+
+            print_stability(console, doc["stability"])
         for p in doc.get("plots", []):
             console.print(f"  figure: {p}", highlight=False)
     return 0
@@ -182,8 +213,8 @@ def write_figures(data, doc: dict[str, Any], est, directory: str) -> list:
         if est is not None and est.rho is not None:
             written.append(plots.plot_density_matrix(est.rho, list(est.basis), out / "density_matrix.png",
                                                      title=f"{data.header.protocol_name}: reconstructed state"))
-            points = {f: np.array([v for v, _ in s]) for f, s in est.stokes.items()}
-            unc = {f: float(np.sqrt(sum(sd**2 for _, sd in s[1:]))) for f, s in est.stokes.items()}
+            points = {f: np.array([v for v, *_ in s]) for f, s in est.stokes.items()}
+            unc = {f: float(np.sqrt(sum(sd**2 for _, sd, *_ in s[1:]))) for f, s in est.stokes.items()}
             written.append(plots.plot_poincare(points, out / "poincare.png", title="reduced states", uncertainties=unc))
             if est.rho.shape == (4, 4):
                 from lightloom.sequencer.analysis.portrait import portrait
@@ -201,3 +232,98 @@ def write_figures(data, doc: dict[str, Any], est, directory: str) -> list:
     except getattr(plots, "PlotsUnavailable", ImportError) as exc:
         raise UsageError(str(exc)) from None
     return written
+
+
+# ---------------------------------------------------------------- scans and stability
+
+
+def _stability(args: argparse.Namespace, data):
+    """Stability series when asked (--stability) or for a run of the stability protocol, else None."""
+    if not (getattr(args, "stability", False) or data.header.protocol_name == "stability"):
+        return None
+    from lightloom.sequencer.analysis.stability import stability_of_run
+
+    return stability_of_run(data)
+
+
+def _stability_plot(data, stability, directory: str):
+    from pathlib import Path
+
+    from lightloom.sequencer.errors import UsageError
+    from lightloom.sequencer.present.plots import PlotsUnavailable
+    from lightloom.sequencer.present.stability_figures import plot_stability
+
+    try:
+        return plot_stability(stability, Path(directory) / "stability.png",
+                              title=f"{data.header.protocol_name} on {data.header.bench_name}: stability")
+    except PlotsUnavailable as exc:
+        raise UsageError(str(exc)) from None
+
+
+def _scan_document(args: argparse.Namespace, path: str, data, element: str):
+    """The document of a scan run (readings per port against the scanned angle, the calibration
+    model fitted) and the scan report (None while there is nothing to fit)."""
+    from pathlib import Path
+
+    from lightloom.sequencer.analysis.pipeline import run_section
+    from lightloom.sequencer.analysis.scans import run_scan_report, scan_json
+    from lightloom.sequencer.errors import InputError
+
+    bench = None
+    if getattr(args, "bench", None):
+        from lightloom.sequencer.lang.bench import load_bench
+
+        bench = load_bench(args.bench)
+    doc = {"run": run_section(data), "determines": "scan"}
+    # A scan whose operators determine a state (a rotating quarter-wave plate in front of a
+    # polarizer is a polarimeter) also gets the state, its figures and Stokes parameters.
+    from lightloom.sequencer.analysis.pipeline import analyse_run
+
+    state, est, _ = analyse_run(data, rng=np.random.default_rng(getattr(args, "seed", 0)),
+                                n_bootstrap=getattr(args, "bootstrap", 200), normalize=getattr(args, "normalize", False))
+    if est is not None and est.rho is not None:
+        doc = {**state, **doc, "state_determined": state["determines"]}
+    try:
+        report = run_scan_report(data, element, Path(path).stem, bench)
+        doc["scan"] = scan_json(report)
+    except InputError as exc:  # nothing to fit yet (a run just started): say so, exit 0
+        report = None
+        doc["scan"] = None
+        doc["missing"] = exc.message
+    return doc, report
+
+
+def _scan(args: argparse.Namespace, path: str, data, element: str) -> int:
+    """A scan run: readings per port against the scanned angle, the calibration model fitted."""
+    from pathlib import Path
+
+    from lightloom.sequencer.errors import UsageError
+
+    doc, report = _scan_document(args, path, data, element)
+    if args.plots and report is not None:
+        from lightloom.sequencer.present.plots import PlotsUnavailable
+        from lightloom.sequencer.present.scan_figures import plot_scan
+
+        try:
+            doc["plots"] = [str(plot_scan(report, Path(args.plots) / "scan.png",
+                                          title=f"{data.header.protocol_name} on {data.header.bench_name}"))]
+        except PlotsUnavailable as exc:
+            raise UsageError(str(exc)) from None
+    if args.json:
+        print(json.dumps(doc, indent=1))
+    elif args.csv:
+        _print_csv([(path, doc)])
+    else:
+        from rich.console import Console
+
+        from lightloom.sequencer.present.report import print_scan
+
+        console = Console()
+        if "density_matrix" in doc:
+            from lightloom.sequencer.present.report import print_report
+
+            print_report(console, doc)
+        print_scan(console, doc)
+        for p in doc.get("plots", []):
+            console.print(f"  figure: {p}", highlight=False)
+    return 0

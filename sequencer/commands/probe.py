@@ -38,6 +38,8 @@ def add_parser(sub) -> None:
     p.add_argument("--yes", action="store_true",
                    help="open the shutter for the beam checks without asking (scripts); the laser caution is still shown")
     p.add_argument("--step-deg", type=float, default=1.0, help="stage test step, deg (default 1)")
+    p.add_argument("--settle-timeout", type=float, default=10.0, metavar="S",
+                   help="seconds a stage or the converter may take to arrive before its motion check fails (default 10)")
     p.add_argument("--dwell", type=float, default=0.1, metavar="S", help="detector dwell for dark and beam, s (default 0.1)")
     p.add_argument("--json", action="store_true", help="print the results as JSON")
     p.set_defaults(handler=run)
@@ -52,7 +54,7 @@ def run(args: argparse.Namespace) -> int:
         return _list(args)
     if not args.bench:
         raise UsageError("probe needs a BENCH to check, or --list to find instruments")
-    for name in ("step_deg", "dwell", "timeout"):
+    for name in ("step_deg", "dwell", "timeout", "settle_timeout"):
         value = getattr(args, name)
         if not (value > 0 and value < 1e6):
             raise UsageError(f"--{name.replace('_', '-')} must be a number > 0, got {value}")
@@ -161,7 +163,7 @@ def _check(args: argparse.Namespace) -> int:
     bench = load_bench(args.bench)
     assembled = assemble(bench)
     settings = ProbeSettings(
-        step_deg=args.step_deg, dwell_s=args.dwell, shutter_close_s=bench.retry.shutter_close_s,
+        step_deg=args.step_deg, dwell_s=args.dwell, settle_timeout_s=args.settle_timeout, shutter_close_s=bench.retry.shutter_close_s,
         backoff_s=bench.retry.backoff_s, max_backoff_s=bench.retry.max_backoff_s,
     )
     console = Console(stderr=args.json)
