@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import importlib
 import json
 import sys
 from typing import Any
@@ -84,23 +83,15 @@ def driver_options_check(bench: Bench) -> None:
 
     The bench language passes ``options`` through untouched; the driver families own their keys.
     """
-    try:
-        options_module = importlib.import_module("lightloom.drivers.options")
-    except ModuleNotFoundError as exc:
-        if exc.name not in ("lightloom.drivers", "lightloom.drivers.options"):
-            raise
-        return
-    check = getattr(options_module, "check_options", None)
-    error_type = getattr(options_module, "DriverConfigError", None)
-    if check is None or error_type is None:
-        return
+    from lightloom.drivers.options import DriverConfigError, check_options
+
     for spec in bench.devices.values():
         if spec.family not in ("visa", "serial"):
             continue
         try:
-            check(spec.driver, spec.options, *([spec.states] if spec.kind == "actuator" and spec.states else []))
-        except error_type as exc:
-            path = f"devices.{spec.name}" + (f".{exc.key}" if getattr(exc, "key", None) else "")
+            check_options(spec.driver, spec.options, *([spec.states] if spec.kind == "actuator" and spec.states else []))
+        except DriverConfigError as exc:
+            path = f"devices.{spec.name}" + (f".{exc.key}" if exc.key else "")
             file, line = bench.locate(path)
             raise BenchError(f"{path}: {exc.message}", file, line) from None
 
