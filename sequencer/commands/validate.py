@@ -13,7 +13,6 @@ from lightloom.sequencer.errors import BenchError
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.plan.purpose import plan_determination, protocol_determination
-from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
 
 
 def add_parser(subparsers: Any) -> None:
@@ -177,6 +176,8 @@ def run(args: argparse.Namespace) -> int:
         driver_options_check(bench)
     compiled = None
     if bench is not None:
+        from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
+
         plan = compile_protocol(protocol, bench)
         compiled = compile_check(protocol, bench, plan)
         det = plan_determination(protocol, plan, table_model(bench))
