@@ -143,7 +143,7 @@ def refresh_costs(n: int, folder: Path) -> tuple[float, float]:
 
 
 def one_size(n: int, folder: Path) -> dict:
-    passes = max(1, round(n / STEPS_PER_PASS))
+    passes = max(1, min(round(n / STEPS_PER_PASS), (200_000 - 2) // STEPS_PER_PASS))
     protocol = folder / f"night-{n}.yaml"
     protocol.write_text(PROTOCOL.format(n=n, passes=passes))
     out = folder / f"night-{n}.h5"
