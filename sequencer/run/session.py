@@ -31,6 +31,7 @@ from lightloom.sequencer.model.records import FORMAT_VERSION, Event, PortLayout,
 from lightloom.sequencer.storage.store import RunStore
 from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
 from lightloom.sequencer.model.vocabulary import STAGE_ELEMENTS
+from lightloom.sequencer.model.elements import COLUMN
 from lightloom.sequencer.plan.timing import estimate_steps
 
 STATUS_EXIT = {"complete": EXIT_OK, "interrupted": EXIT_INTERRUPTED, "fault": EXIT_FAULT}
@@ -56,7 +57,8 @@ def assemble(bench: Bench, *, continue_at: tuple[float, float] | None = None) ->
     if bench.is_simulated:
         from lightloom.simulators.table import SimulatedTable
 
-        epoch, start_s = continue_at if continue_at is not None else (time.time(), 0.0)
+        # The clock's zero is a whole UNIX second: see simulators.table.READING_GRID_S.
+        epoch, start_s = continue_at if continue_at is not None else (float(math.floor(time.time())), 0.0)
         table = SimulatedTable(bench, start_s=start_s)
         devices = table.devices
         wall0 = epoch
@@ -262,6 +264,8 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
             )
         done = {int(i) for i in store.readings.step_index}
         assembled = assemble(bench, continue_at=_simulated_clock_at(store) if bench.is_simulated else None)
+        if bench.is_simulated and bench.simulation.time_scale == 0:
+            _continue_time_line(plan, bench, store, assembled, done)
     except BaseException:
         # A refused resume changes nothing: the run keeps its status and message (e.g. the fault).
         store.release()
@@ -284,6 +288,87 @@ def _simulated_clock_at(store: RunStore) -> tuple[float, float] | None:
     r = store.readings
     reached = max([e.t for e in store.events] + ([float(np.max(r.t_end))] if len(r) else []))
     return epoch, max(0.0, reached - epoch)
+
+
+class _TransitionMeasured(Exception):
+    """Raised in the stand-in run when the resumed step is about to be read (its clock is known)."""
+
+
+class _NoStore:
+    """A store that keeps nothing: the stand-in run records no reading or event."""
+
+    def event(self, event: Event) -> None:
+        pass
+
+
+def _continue_time_line(plan: StepList, bench: Bench, store: RunStore, assembled: Assembled, done: set[int]) -> None:
+    """On an instant simulated bench, make the resumed run read at the uninterrupted run's times.
+
+    The first step left (k) would have been read, in the uninterrupted run, after step k-1's
+    reading and the transition from k-1 to k (pass wait, shutter, converter, stage moves). A
+    stand-in runner on a second simulated table of the same bench replays exactly that: its
+    stages stand where the journal read them back, it knows what the real runner knew (the
+    targets, converter and shutter of the steps recorded), its table is re-anchored at k-1's
+    recorded start (exact, see READING_GRID_S), it reads, waits for k's pass and moves to k with
+    the runner's own motion logic. Its clock and stages when k's reading begins are where the real
+    table is re-anchored (SimulatedTable.continue_at_step), after the resumed run has closed the
+    shutter and approached every stage as always. Nothing changes when the steps recorded are not
+    the plan's first ones, or the stand-in cannot get there (a bench with faults).
+    """
+    clock_at = _simulated_clock_at(store)
+    if clock_at is None or len(done) >= len(plan.steps):
+        return
+    epoch = clock_at[0]
+    k = next(i for i, s in enumerate(plan.steps) if s.index not in done)
+    if any(s.index in done for s in plan.steps[k:]):
+        return
+    r = store.readings
+    row_of = {int(i): j for j, i in enumerate(np.asarray(r.step_index))}
+    stand_in = assemble(bench, continue_at=(epoch, 0.0))
+    stand_in_table = stand_in.simulated_table
+    reached: list[tuple[float, dict[str, tuple[float, float]]]] = []
+
+    def begin_reading(index: int) -> None:
+        stages = {st.name: (st.motor_angle_deg(), st.optical_angle_deg()) for st in stand_in.rig.stages.values()}
+        reached.append((stand_in_table.clock.now(), stages))
+        raise _TransitionMeasured
+
+    runner = Runner(plan, table_model(bench), stand_in.rig, _NoStore(), policy_for(bench), now=stand_in.now,
+                    sleep=stand_in.sleep, wall=time.monotonic, run_start=_run_start(store, stand_in.now),
+                    parallel_reads=False, begin_reading=begin_reading)
+    try:
+        runner.connect()
+        if k > 0:
+            previous = plan.steps[k - 1]
+            # What the uninterrupted runner knew and where its devices were after step k-1.
+            for role, stage in stand_in.rig.stages.items():
+                last = next((s for s in reversed(plan.steps[:k]) if role in s.settings.stage_angles()), None)
+                if last is not None:
+                    at = float(r.readback[row_of[last.index]][COLUMN[role]])
+                    stage.place(at, at)  # every approach ends moving up: the optic rests on the motor
+                    runner._positions[role] = last.settings.stage_angles()[role]
+            converter = stand_in.rig.converter
+            last = next((s for s in reversed(plan.steps[:k]) if s.settings.mode_converter is not None), None)
+            if converter is not None and last is not None:
+                converter.set_state(last.settings.mode_converter)
+                converter.wait_settled(runner.policy.settle_timeout_s)
+                runner._converter_state = last.settings.mode_converter
+            runner._set_shutter(previous.shutter_open)
+            began = float(r.t_start[row_of[previous.index]]) - epoch
+            stand_in_table.rest_at(began)
+            stand_in_table.begin_step(previous.index)
+            runner._read_all(previous.dwell_s)
+        runner._wait_for_pass(plan.steps[k])
+        runner.measure_step(plan.steps[k])
+    except _TransitionMeasured:
+        at, stages = reached[0]
+        assembled.simulated_table.continue_at_step(plan.steps[k].index, at, stages)
+    except Exception:
+        # A stand-in that cannot get there changes nothing: the resumed run then continues from
+        # the time the run stopped, as a real table would.
+        return
+    finally:
+        runner._pool.shutdown(wait=False)
 
 
 def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
@@ -389,6 +474,10 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
 
 
 def _run_start(store: RunStore, now: Callable[[], float]) -> float:
+    """When the run started (UNIX s): its first event, so a resumed run keeps the passes' start times."""
+    starts = [e.t for e in store.events if e.kind == "start"]
+    if starts:
+        return float(starts[0])
     r = store.readings
     if len(r):
         return float(np.min(r.t_start))
