@@ -17,7 +17,7 @@ from lightloom.sequencer.lang.bench import load_bench
 from lightloom.simulators.dialects import load_dialect
 from lightloom.simulators.scpi_server import LoopbackServer
 from lightloom.simulators.table import SimulatedTable
-from test_run_complete import write_bench
+from helpers.runs import write_bench
 
 
 class Served:

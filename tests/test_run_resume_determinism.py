@@ -17,7 +17,7 @@ from lightloom.sequencer.storage import read_runfile
 from lightloom.sequencer.storage.store import RunStore
 from lightloom.simulators import devices
 from lightloom.simulators.table import READING_GRID_S, SimulatedTable
-from test_run_complete import assert_complete, log_steps, run_cli, spawn, wait_for_log_steps, write_bench
+from helpers.runs import assert_complete, log_steps, run_cli, spawn, wait_for_log_steps, write_bench
 
 # Passes 30 s apart: between passes the runner waits (instantly, on the virtual clock). Steps per
 # pass: 3 points x 2 repeats + 3 references = 9, after one background at the start.

@@ -11,6 +11,7 @@ import math
 import signal
 import sys
 import time
+import uuid
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from pathlib import Path
@@ -21,17 +22,20 @@ from rich.console import Console
 
 from lightloom.sequencer import __version__
 from lightloom.sequencer.lang.bench import Bench, load_bench, parse_bench
-from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, UsageError
+from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, StorageError, UsageError
 from lightloom.sequencer.optics.states import BASIS_LABELS
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
-from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, _complete_product as _complete_ports
+from lightloom.sequencer.run.beam import beam_level, ports_watch_the_beam
+from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, hms
 from lightloom.sequencer.run.safety import LASER_SAFETY_CAUTION
+from lightloom.sequencer.outputs import check_new_output
 from lightloom.sequencer.model.records import FORMAT_VERSION, Event, PortLayout, RunHeader, RunSources
 from lightloom.sequencer.storage.store import RunStore
 from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
 from lightloom.sequencer.model.vocabulary import STAGE_ELEMENTS
 from lightloom.sequencer.model.elements import COLUMN
+from lightloom.sequencer.optics.analyzer import CONVERTER
 from lightloom.sequencer.plan.timing import estimate_steps
 
 STATUS_EXIT = {"complete": EXIT_OK, "interrupted": EXIT_INTERRUPTED, "fault": EXIT_FAULT}
@@ -151,6 +155,7 @@ def make_header(protocol: Protocol, bench: Bench, plan: StepList, units: str, pr
         target_label=protocol.target_label,
         reference_device=bench.roles.reference,
         wavelength_nm=bench.wavelength_nm,
+        run_id=str(uuid.uuid4()),
     )
 
 
@@ -200,14 +205,28 @@ class RunLog:
 
     def __init__(self, path: Path) -> None:
         self.path = path
-        self._f = open(path, "a", encoding="utf-8", buffering=1)
+        try:
+            self._f = open(path, "a", encoding="utf-8", buffering=1)
+        except OSError:
+            self._f = None  # a log that cannot be written must not stop the run (the journal is truth)
 
     def __call__(self, line: str) -> None:
+        if self._f is None:
+            return
         stamp = dt.datetime.now(dt.timezone.utc).isoformat(timespec="milliseconds")
-        self._f.write(f"{stamp} {line}\n")
+        try:
+            self._f.write(f"{stamp} {line}\n")
+        except OSError:
+            self._close_quietly()
 
     def close(self) -> None:
-        self._f.close()
+        self._close_quietly()
+
+    def _close_quietly(self) -> None:
+        f, self._f = self._f, None
+        if f is not None:
+            with suppress(OSError):
+                f.close()
 
 
 def log_path_for(out: Path) -> Path:
@@ -238,10 +257,8 @@ def start_run(protocol_spec: str, bench_spec: str, out: str, *, console: Console
         )
     units = port_units(bench)
     out_path = Path(out)
-    if out_path.exists():
-        raise UsageError(f"{out_path} exists already; lightloom never overwrites a run file (use `lightloom resume {out_path}` or another --out)")
-    if not out_path.parent.exists():
-        raise UsageError(f"the folder {out_path.parent} does not exist; create it or choose another --out")
+    check_new_output(out_path, "--out", f"{out_path} exists already; lightloom never overwrites a run file "
+                     f"(use `lightloom resume {out_path}` or another --out)")
     assembled = assemble(bench)
     header = make_header(protocol, bench, plan, units, protocol_spec, bench_spec)
     store = RunStore.create(out_path, header)
@@ -256,13 +273,13 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
         header = store.header
         protocol, bench = _recover_inputs(header)
         plan = compile_protocol(protocol, bench)
-        if plan.to_json() != header.steps_json:
+        if not _same_steps(plan, header.steps_json):
             raise UsageError(
                 f"{out_path}: the protocol and bench compile to a different plan than the one stored "
                 f"(stored by lightloom {header.tool_version}, this is {__version__}); resume it with the "
                 "version that started it, or start a new run"
             )
-        done = {int(i) for i in store.readings.step_index}
+        done = store.summary.done.copy()
         assembled = assemble(bench, continue_at=_simulated_clock_at(store) if bench.is_simulated else None)
         if bench.is_simulated and bench.simulation.time_scale == 0:
             _continue_time_line(plan, bench, store, assembled, done)
@@ -275,6 +292,17 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
     return _execute(protocol, bench, plan, assembled, store, out_path, done, console, live, resumed=True)
 
 
+def _same_steps(plan: StepList, stored_json: str) -> bool:
+    """True if ``plan`` is the step list stored (compact form, or the verbose one of older runs)."""
+    text = plan.to_json()
+    if text == stored_json:
+        return True
+    try:
+        return StepList.from_json(stored_json).to_json() == text
+    except (ValueError, KeyError, TypeError):
+        return False
+
+
 def _simulated_clock_at(store: RunStore) -> tuple[float, float] | None:
     """(UNIX s of the simulated clock's zero, virtual s the run had reached when it stopped: its
     last recorded reading or event) of a stopped simulated run, or None before its first event.
@@ -285,8 +313,8 @@ def _simulated_clock_at(store: RunStore) -> tuple[float, float] | None:
     if not starts:
         return None
     epoch = starts[0]
-    r = store.readings
-    reached = max([e.t for e in store.events] + ([float(np.max(r.t_end))] if len(r) else []))
+    t_last = store.summary.t_last
+    reached = max([e.t for e in store.events] + ([t_last] if t_last is not None else []))
     return epoch, max(0.0, reached - epoch)
 
 
@@ -301,7 +329,7 @@ class _NoStore:
         pass
 
 
-def _continue_time_line(plan: StepList, bench: Bench, store: RunStore, assembled: Assembled, done: set[int]) -> None:
+def _continue_time_line(plan: StepList, bench: Bench, store: RunStore, assembled: Assembled, done: np.ndarray) -> None:
     """On an instant simulated bench, make the resumed run read at the uninterrupted run's times.
 
     The first step left (k) would have been read, in the uninterrupted run, after step k-1's
@@ -314,16 +342,18 @@ def _continue_time_line(plan: StepList, bench: Bench, store: RunStore, assembled
     table is re-anchored (SimulatedTable.continue_at_step), after the resumed run has closed the
     shutter and approached every stage as always. Nothing changes when the steps recorded are not
     the plan's first ones, or the stand-in cannot get there (a bench with faults).
+    ``done``: one flag per step of the plan.
     """
     clock_at = _simulated_clock_at(store)
-    if clock_at is None or len(done) >= len(plan.steps):
+    done = np.asarray(done, dtype=bool)
+    if clock_at is None or done.all():
         return
     epoch = clock_at[0]
-    k = next(i for i, s in enumerate(plan.steps) if s.index not in done)
-    if any(s.index in done for s in plan.steps[k:]):
+    k = int(np.argmin(done))  # the first step left
+    summary = store.summary
+    if done[k:].any() or (k > 0 and (summary.last_row is None or int(summary.last_row["step_index"]) != k - 1)):
         return
-    r = store.readings
-    row_of = {int(i): j for j, i in enumerate(np.asarray(r.step_index))}
+    settings = plan.columns.settings
     stand_in = assemble(bench, continue_at=(epoch, 0.0))
     stand_in_table = stand_in.simulated_table
     reached: list[tuple[float, dict[str, tuple[float, float]]]] = []
@@ -342,27 +372,28 @@ def _continue_time_line(plan: StepList, bench: Bench, store: RunStore, assembled
             previous = plan.steps[k - 1]
             # What the uninterrupted runner knew and where its devices were after step k-1.
             for role, stage in stand_in.rig.stages.items():
-                last = next((s for s in reversed(plan.steps[:k]) if role in s.settings.stage_angles()), None)
-                if last is not None:
-                    at = float(r.readback[row_of[last.index]][COLUMN[role]])
+                column = COLUMN[role]
+                set_before = np.flatnonzero(~np.isnan(settings[:k, column]))
+                if set_before.size:
+                    at = float(summary.last_readback[column])
                     stage.place(at, at)  # every approach ends moving up: the optic rests on the motor
-                    runner._positions[role] = last.settings.stage_angles()[role]
+                    runner._positions[role] = float(settings[set_before[-1], column])
             converter = stand_in.rig.converter
-            last = next((s for s in reversed(plan.steps[:k]) if s.settings.mode_converter is not None), None)
-            if converter is not None and last is not None:
-                converter.set_state(last.settings.mode_converter)
+            set_before = np.flatnonzero(~np.isnan(settings[:k, CONVERTER]))
+            if converter is not None and set_before.size:
+                state = plan.steps[int(set_before[-1])].settings.mode_converter
+                converter.set_state(state)
                 converter.wait_settled(runner.policy.settle_timeout_s)
-                runner._converter_state = last.settings.mode_converter
+                runner._converter_state = state
             runner._set_shutter(previous.shutter_open)
-            began = float(r.t_start[row_of[previous.index]]) - epoch
-            stand_in_table.rest_at(began)
+            stand_in_table.rest_at(float(summary.last_row["t_start"]) - epoch)
             stand_in_table.begin_step(previous.index)
             runner._read_all(previous.dwell_s)
         runner._wait_for_pass(plan.steps[k])
         runner.measure_step(plan.steps[k])
     except _TransitionMeasured:
         at, stages = reached[0]
-        assembled.simulated_table.continue_at_step(plan.steps[k].index, at, stages)
+        assembled.simulated_table.continue_at_step(k, at, stages)
     except Exception:
         # A stand-in that cannot get there changes nothing: the resumed run then continues from
         # the time the run stopped, as a real table would.
@@ -395,37 +426,30 @@ def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
     return protocol, bench
 
 
-def _initial_beam_level(store: RunStore, table) -> float | None:
-    r = store.readings
-    if len(r) == 0:
-        return None
-    usable = ~r.of_kind("background")
-    if not usable.any():
-        return None
-    i = int(np.flatnonzero(usable)[0])
-    ref = float(r.reference_w[i])
-    if not math.isnan(ref):
-        return ref
-    gains = np.array([p.gain for p in table.ports])
-    return float(np.sum(r.values[i] / gains)) if len(table.ports) > 1 else None
-
-
 def _execute(protocol, bench, plan, assembled, store, out_path, done, console, live, *, resumed) -> int:
     table = table_model(bench)
     log = RunLog(log_path_for(out_path))
     est = estimate_steps(plan, table)
-    left = sum(t for s, t in zip(plan.steps, est.step_seconds) if s.index not in done)
+    done = _as_mask(done, len(plan.steps))
+    n_done = int(np.count_nonzero(done))
+    from lightloom.sequencer.run.display import Schedule
+
+    work_s = np.asarray(est.step_seconds, float) - np.asarray(est.step_wait_seconds, float)
+    pass_index = plan.columns.pass_index.astype(np.int64)
+    run_start = _run_start(store, assembled.now)
+    schedule = Schedule.of(work_s, pass_index, done, plan.passes, run_start, plan.pass_interval_s)
+    left = schedule.seconds_left(assembled.now())
     monitor = None
     try:
         verb = "resume" if resumed else "start"
         log(f"{verb}: protocol {protocol.name} on bench {bench.name} -> {out_path} "
-            f"({len(plan.steps) - len(done)} of {len(plan.steps)} steps to go, about {left:.0f} s)")
-        store.event(Event(assembled.now(), verb, f"lightloom {__version__}; {len(done)} of {len(plan.steps)} steps recorded before"))
+            f"({len(plan.steps) - n_done} of {len(plan.steps)} steps to go, about {hms(left)} h:mm:ss)")
+        store.event(Event(assembled.now(), verb, f"lightloom {__version__}; {n_done} of {len(plan.steps)} steps recorded before"))
         if not bench.is_simulated:
             sys.stderr.write(LASER_SAFETY_CAUTION)
             sys.stderr.flush()
             log("laser-safety caution shown; the shutter will open unattended")
-        if bench.roles.reference is None and not _complete_ports(table):
+        if bench.roles.reference is None and not ports_watch_the_beam(table):
             blind = (
                 "warning: this bench has no beam monitor (no reference meter, and its ports do not "
                 "measure a complete set), so a lost beam cannot be told from a dark projector and "
@@ -434,22 +458,25 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             log(blind)
             _say(console, blind)
         _say(console, f"{'resuming' if resumed else 'running'} {protocol.name} on {bench.name}: "
-                      f"{len(plan.steps) - len(done)} steps, about {left:.0f} s -> {out_path}")
+                      f"{len(plan.steps) - n_done} steps, about {hms(left)} (h:mm:ss) -> {out_path}")
         runner_kwargs = {}
         if live and console is not None:
             from lightloom.sequencer.run.display import TerminalMonitor
 
-            monitor = TerminalMonitor(console, f"lightloom {protocol.name} on {bench.name}", plan.port_names,
-                                      store.header.port_units, left)
+            monitor = TerminalMonitor(
+                console, f"lightloom {protocol.name} on {bench.name}", plan.port_names,
+                store.header.port_units, schedule, steps_done=n_done, steps_total=len(plan.steps),
+                passes=plan.passes, work_s=work_s, now=assembled.now,
+            )
             monitor.__enter__()
             runner_kwargs["monitor"] = monitor
         runner = Runner(plan, table, assembled.rig, store, policy_for(bench), now=assembled.now,
                         sleep=assembled.sleep, wall=time.monotonic, log=log, units=store.header.port_units,
-                        run_start=_run_start(store, assembled.now),
+                        run_start=run_start,
                         parallel_reads=not (bench.is_simulated and bench.simulation.time_scale == 0),
                         begin_reading=getattr(assembled.simulated_table, "begin_step", None),
+                        beam_baseline=_initial_beam_level(store, table),
                         **runner_kwargs)
-        runner._beam.baseline = _initial_beam_level(store, table)
         with stop_on_sigterm():
             status, message = runner.execute(done)
     except BaseException as exc:
@@ -458,6 +485,8 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
         resume = f"`lightloom resume {out_path}` continues the run"
         if isinstance(exc, (KeyboardInterrupt, StopRequested)):
             status, message = "interrupted", f"stopped by Ctrl-C or SIGTERM; {resume}"
+        elif isinstance(exc, StorageError):
+            status, message = "fault", f"{exc.one_line()}"
         else:
             status, message = "fault", f"internal error {exc!r}; please report this; {resume}"
         with suppress(Exception):
@@ -473,12 +502,26 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
     return STATUS_EXIT[status]
 
 
+def _initial_beam_level(store: RunStore, table) -> float | None:
+    """The beam baseline of a resumed run, from its first shutter-open reading (None if none)."""
+    row = store.summary.first_beam_row
+    if row is None:
+        return None
+    return beam_level("measure", row["values"], float(row["reference_w"]), table)
+
+
+def _as_mask(done, total: int) -> np.ndarray:
+    if isinstance(done, np.ndarray) and done.dtype == bool:
+        return done[:total]
+    mask = np.zeros(total, dtype=bool)
+    mask[[i for i in done if 0 <= i < total]] = True
+    return mask
+
+
 def _run_start(store: RunStore, now: Callable[[], float]) -> float:
     """When the run started (UNIX s): its first event, so a resumed run keeps the passes' start times."""
     starts = [e.t for e in store.events if e.kind == "start"]
     if starts:
         return float(starts[0])
-    r = store.readings
-    if len(r):
-        return float(np.min(r.t_start))
-    return now()
+    t_first = store.summary.t_first
+    return t_first if t_first is not None else now()
