@@ -13,7 +13,7 @@ import numpy as np
 def add_parser(sub) -> None:
     p = sub.add_parser(
         "analyze",
-        help="reconstruct the state of a run (complete, interrupted or still running)",
+        help="reconstruct the state of a run (complete, interrupted or still running); several runs: one summary table",
         description=(
             "Reconstruct the state measured in a run file (finished, stopped or still running) with error"
             " bars: density matrix, purity, concurrence, Stokes parameters and fidelity to the protocol's"
