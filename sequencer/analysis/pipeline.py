@@ -40,6 +40,7 @@ from lightloom.sequencer.analysis.background import BackgroundModel, background_
 from lightloom.sequencer.analysis.drift import DriftModel, fit_drift, no_drift
 from lightloom.sequencer.analysis.intervals import figure_bounds
 from lightloom.sequencer.analysis.propagation import CorrectionNoise, correction_noise
+from lightloom.sequencer.analysis.spread import fit_spread
 from lightloom.sequencer.optics.analyzer import complete_port_set
 from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS, partial_trace
 from lightloom.sequencer.model.steps import StepList
@@ -121,9 +122,10 @@ def _complete_ports(run: RunData) -> bool:
 def _spread_model(values: np.ndarray, groups: np.ndarray, bg_std: float) -> tuple[float, float, str]:
     """(a, b) of sigma^2 = a^2 + (b v)^2 from repeated readings (groups), else fall-backs.
 
-    With repeats both terms are fitted (non-negative least squares on the unbiased variances),
-    the background spread entering as one more observation of a^2: a few background readings
-    alone estimate the absolute noise, which dominates at low power, too poorly.
+    With repeats both terms are fitted by maximum likelihood (sequencer.analysis.spread), the
+    background spread entering as one more observation of a^2 (weighted as 4 degrees of freedom,
+    two backgrounds on four ports): a few background readings alone estimate the absolute noise,
+    which dominates at low power, too poorly.
     """
     a = float(bg_std)
     uniq, inverse, counts = np.unique(groups, return_inverse=True, return_counts=True)
@@ -131,25 +133,13 @@ def _spread_model(values: np.ndarray, groups: np.ndarray, bg_std: float) -> tupl
     if rep.sum() >= 4:
         means = np.bincount(inverse, weights=values) / counts
         dev = values - means[inverse]
-        corr = counts[inverse] / np.maximum(counts[inverse] - 1, 1)  # unbiased variance per reading
-        var = (dev**2 * corr)[rep]
-        v2 = (means[inverse] ** 2)[rep]
-        from scipy.optimize import nnls
-
-        # var = a^2 + b^2 v^2, weighted by 1 / model variance^2 (the spread of a variance estimate
-        # grows with the variance), with the background spread as one more observation of a^2.
-        v_scale = max(float(np.median(v2)), 1e-300)
-        design = np.column_stack([np.ones(var.size), v2 / v_scale])
-        rhs = var
-        if a > 0:
-            design = np.vstack([design, [1.0, 0.0]])
-            rhs = np.concatenate([var, [a * a]])
-        model_var = np.full(rhs.size, max(float(rhs.mean()), 1e-300))
-        for _ in range(3):
-            w = 1.0 / model_var
-            sol, _ = nnls(design * w[:, None], rhs * w)
-            model_var = np.maximum(design @ sol, 1e-3 * max(float(rhs.mean()), 1e-300))
-        a2, b2 = float(sol[0]), float(sol[1]) / v_scale
+        # Maximum likelihood of the groups' chi-square variances (sequencer.analysis.spread), the
+        # background spread counting as one more observation of a^2.
+        ss = np.bincount(inverse, weights=dev**2, minlength=len(uniq))
+        ok = counts >= 2
+        a_fit, b_fit = fit_spread(ss[ok], counts[ok] - 1, means[ok], bg_ss=a * a * 4 if a > 0 else 0.0,
+                                  bg_dof=4 if a > 0 else 0)
+        a2, b2 = a_fit**2, b_fit**2
         return math.sqrt(max(a2, 0.0)), math.sqrt(max(b2, 0.0)), f"from {int(rep.sum())} repeated readings"
     return a, MIN_RELATIVE_SPREAD, "no repeats: background spread and a relative floor, rescaled by the fit residuals"
 
