@@ -12,9 +12,8 @@ from rich.console import Console
 DEFAULT_FOLDER = "lightloom-demo"
 RUN_NAME = "demo-run.h5"
 FIGURES = "figures"
-# Everything a demo writes in its folder; a new demo replaces exactly these and nothing else.
+# Everything a demo writes in its folder (and the PNG files in figures/); a new demo replaces these only.
 DEMO_FILES = (RUN_NAME, RUN_NAME + ".journal", "demo-run.log")
-DEMO_FIGURES = ("density_matrix.png", "poincare.png", "reference.png")
 
 
 def add_parser(sub) -> None:
@@ -51,8 +50,10 @@ def prepare_folder(folder: Path) -> None:
         folder.mkdir(parents=True, exist_ok=True)
         for name in DEMO_FILES:
             (folder / name).unlink(missing_ok=True)
-        for name in DEMO_FIGURES:
-            (folder / FIGURES / name).unlink(missing_ok=True)
+        figures = folder / FIGURES
+        if figures.is_dir():
+            for png in figures.glob("*.png"):  # the figures folder is the demo's own
+                png.unlink()
     except OSError as exc:
         raise UsageError(f"cannot prepare the demo folder {folder}: {exc.strerror or exc}; choose another --out") from None
 
@@ -95,9 +96,9 @@ def run(args: argparse.Namespace) -> int:
             highlight=False,
         )
     try:
-        from lightloom.sequencer.commands.analyze import _plots
+        from lightloom.sequencer.commands.analyze import write_figures
 
-        figures = list(_plots(data, est, str(folder / FIGURES)))
+        figures = list(write_figures(data, doc, est, str(folder / FIGURES)))
     except UsageError as exc:
         figures = []
         console.print(f"  (no figures: {exc})", highlight=False, markup=False)
