@@ -117,6 +117,8 @@ class SimulatedTable:
                                switch_s=spec.switch_s + spec.settle_s, faults=self.faults)
         if kind == "shutter":
             return SimShutter(name, self.clock, switch_s=spec.switch_s + spec.settle_s, faults=self.faults)
+        if kind == "camera":
+            return self._camera(name, spec, rng)
         light = self._light_for(name)
         if kind == "power_meter":
             return SimPowerMeter(
@@ -129,6 +131,25 @@ class SimulatedTable:
                 dark_counts_per_s=sim.noise.dark_counts_per_s, faults=self.faults,
             )
         raise ValueError(f"device '{name}': no simulated device of kind {kind!r}")
+
+    def _camera(self, name, spec, rng) -> Device:
+        from lightloom.simulators.camera import CameraLight, make_sim_camera, polarization_povm
+
+        j = self.port_index[name]
+
+        def povm() -> np.ndarray:
+            s = self.optical_settings()
+            return polarization_povm(port_operators(self.model, self.ports, s[None, :])[0][j])
+
+        def hwp_deg() -> float:
+            stage = self.stage_of.get(HWP)
+            return stage.optical_angle_deg() if stage is not None else 0.0
+
+        light = CameraLight(
+            power_w=lambda: self.source_power_w() * (1.0 - self.reference_fraction),
+            povm=povm, hwp_deg=hwp_deg, state=self.rho, wavelength_nm=self.bench.wavelength_nm,
+        )
+        return make_sim_camera(name, spec.options, self.clock, light, rng, self.faults)
 
     # ------------------------------------------------------------------ physics
     def optical_settings(self, t_s: float | None = None) -> np.ndarray:

@@ -18,6 +18,7 @@ def add_parser(sub) -> None:
     p.add_argument("--normalize", action="store_true", help="normalise each setting over its complementary ports (cancels drift without a reference meter)")
     p.add_argument("--bootstrap", type=int, default=200, metavar="N", help="bootstrap resamples for the error bars (default 200)")
     p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
+    p.add_argument("--maps", metavar="FILE.h5", help="imaging runs: write the Stokes, DOP, orientation and ellipticity maps to this new HDF5 file")
     p.set_defaults(handler=run)
 
 
@@ -38,10 +39,27 @@ def run(args: argparse.Namespace) -> int:
     except AnalysisError as exc:
         raise UsageError(f"{args.file}: {exc}") from None
     doc = result_json(data, est)
+    from lightloom.sequencer.commands import imaging_report
+
+    imaging = imaging_report.imaging_result(args.file, data, rng=np.random.default_rng(args.seed),
+                                            replicates=args.bootstrap)
+    if imaging is not None:
+        imaging_report.add_to_document(doc, imaging)
+        if args.maps:
+            doc["imaging"]["maps"] = str(imaging_report.write_maps(imaging, args.maps))
+    elif args.maps:
+        raise UsageError(f"{args.file}: --maps needs an imaging run (a camera behind the analyzer); this run has no frames")
     if args.bench:
         doc["corrections"]["operators"] = f"recomputed from read-back positions with the calibration of {args.bench}"
     if args.plots:
         doc["plots"] = [str(p) for p in _plots(data, est, args.plots)]
+        if imaging is not None:
+            from pathlib import Path
+
+            from lightloom.sequencer.present.imaging_figures import plot_ellipses
+
+            doc["plots"].append(str(plot_ellipses(imaging.maps.stokes, Path(args.plots) / "stokes_ellipses.png",
+                                                  title=f"{data.header.protocol_name}: polarization map")))
     if args.json:
         print(json.dumps(doc, indent=1))
     else:

@@ -32,6 +32,7 @@ def run(args: argparse.Namespace) -> int:
     table = table_model(bench)
     est = estimate_steps(plan, table)
     measure = [s for s in plan.steps if s.kind == "measure"]
+    exposures = _exposure_checks(bench, plan)
     if args.json:
         out = {
             "protocol": protocol.name,
@@ -46,6 +47,10 @@ def run(args: argparse.Namespace) -> int:
             "travel_deg": {k: round(v, 3) for k, v in est.travel_deg.items()},
             "converter_switches": est.converter_switches,
             "limit_violations": list(plan.violations),
+            **({"camera_exposures": [
+                {"setting": c.label, "exposure_s": c.exposure_s, "peak_adu": round(c.peak_adu, 1),
+                 "saturation_adu": c.saturation_adu, "saturates": c.saturates,
+                 "max_exposure_s": c.max_exposure_s} for c in exposures]} if exposures else {}),
             "steps": [
                 {
                     "index": s.index, "kind": s.kind, "pass": s.pass_index, "point": s.point_index,
@@ -87,9 +92,26 @@ def run(args: argparse.Namespace) -> int:
         console.print(f"  {name}: {deg:.1f} deg travelled, {est.stage_seconds[name]:.1f} s moving")
     if est.converter_switches:
         console.print(f"  mode converter: {est.converter_switches} switches")
+    for c in exposures:
+        fill = c.peak_adu / c.saturation_adu
+        if c.saturates:
+            console.print(f"[red]would saturate:[/red] {c.label}: brightest pixel about {c.peak_adu:.0f} ADU at "
+                          f"{c.exposure_s * 1e3:g} ms, saturation {c.saturation_adu:.0f} ADU; use dwell_s <= "
+                          f"{c.max_exposure_s * 1e3:.3g} ms")
+        else:
+            console.print(f"camera: {c.label}: brightest pixel about {c.peak_adu:.0f} ADU ({fill:.0%} of saturation)")
     if plan.violations:
         for v in plan.violations:
             console.print(f"[red]limit violation:[/red] {v}")
         return 2
     console.print("limits: all moves inside the travel limits")
     return 0
+
+
+def _exposure_checks(bench, plan) -> list:
+    """On a simulated bench with a camera: the expected brightest pixel of every setting."""
+    if bench.simulation is None or not any(d.kind == "camera" for d in bench.devices.values()):
+        return []
+    from lightloom.simulators.camera import check_exposures
+
+    return check_exposures(bench, plan.steps)

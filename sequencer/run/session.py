@@ -21,7 +21,7 @@ from rich.console import Console
 
 from lightloom.sequencer import __version__
 from lightloom.sequencer.lang.bench import Bench, load_bench, parse_bench
-from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, UsageError
+from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, BenchError, StorageError, UsageError
 from lightloom.sequencer.optics.states import BASIS_LABELS
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
@@ -97,8 +97,10 @@ def port_units(bench: Bench) -> str:
         return "W"
     if kinds == {"photon_counter"}:
         return "counts"
+    if kinds == {"camera"}:
+        return "ADU"
     file, line = bench.locate("roles.detectors")
-    raise BenchError("detectors mix power meters and photon counters; use one kind for all ports", file, line)
+    raise BenchError("detectors mix power meters, photon counters or cameras; use one kind for all ports", file, line)
 
 
 def make_header(protocol: Protocol, bench: Bench, plan: StepList, units: str, protocol_spec: str, bench_spec: str) -> RunHeader:
@@ -312,6 +314,7 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
     est = estimate_steps(plan, table)
     left = sum(t for s, t in zip(plan.steps, est.step_seconds) if s.index not in done)
     monitor = None
+    frames = None
     try:
         verb = "resume" if resumed else "start"
         log(f"{verb}: protocol {protocol.name} on bench {bench.name} -> {out_path} "
@@ -339,6 +342,9 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
                                       store.header.port_units, left)
             monitor.__enter__()
             runner_kwargs["monitor"] = monitor
+        frames = _frame_journal(bench, out_path)
+        if frames is not None:
+            runner_kwargs.update(frames=frames, frames_averaged=protocol.frames_averaged)
         runner = Runner(plan, table, assembled.rig, store, policy_for(bench), now=assembled.now,
                         sleep=assembled.sleep, wall=time.monotonic, log=log, units=store.header.port_units,
                         run_start=_run_start(store, assembled.now),
@@ -363,9 +369,31 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             monitor.__exit__(None, None, None)
         log.close()
     store.close(status, message)
+    if frames is not None:
+        _publish_frames(frames, store, out_path, console)
     _say(console, f"{status}: {message}")
     _say(console, f"data: {out_path}   log: {log_path_for(out_path)}")
     return STATUS_EXIT[status]
+
+
+def _frame_journal(bench: Bench, out_path: Path):
+    """The frame journal of a run on a bench with a camera (None without one)."""
+    if not any(bench.devices[d.device].kind == "camera" for d in bench.roles.detectors):
+        return None
+    from lightloom.sequencer.storage.frames import FrameJournal, frames_path_for
+
+    return FrameJournal(frames_path_for(out_path))
+
+
+def _publish_frames(frames, store: RunStore, out_path: Path, console: Console | None) -> None:
+    """Copy the reported frames into the closed run file (the frame journal stays the record)."""
+    from lightloom.sequencer.storage.frames import publish
+
+    frames.close()
+    try:
+        publish(out_path, store.readings)
+    except (OSError, StorageError) as exc:
+        _say(console, f"warning: the frames stay in {out_path.name}.frames only: {exc}")
 
 
 def _run_start(store: RunStore, now: Callable[[], float]) -> float:

@@ -1,0 +1,87 @@
+"""The imaging part of ``lightloom analyze``: frames of a camera run -> Stokes maps, integrated
+Stokes parameters, non-separability (JSON keys), the maps file (``--maps``) and the figure."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from lightloom.sequencer.analysis.imaging import ImagingResult, analyze_frames, polarization_povms
+from lightloom.sequencer.errors import UsageError
+
+MAP_NAMES = ("S0", "S1", "S2", "S3", "dop", "orientation_deg", "ellipticity_deg")
+
+
+def setting_groups(commanded: np.ndarray) -> np.ndarray:
+    """One label per distinct commanded setting (repeats of a setting share it)."""
+    key = np.round(np.nan_to_num(np.asarray(commanded, dtype=float), nan=-999.0), 6)
+    return np.unique(key, axis=0, return_inverse=True)[1].reshape(-1)
+
+
+def imaging_result(path: str, data, *, rng: np.random.Generator, replicates: int) -> ImagingResult | None:
+    """The imaging analysis of a run's frames (None for a run without a camera). Frames of the
+    first camera port are used; a run whose measurement frames do not yet determine S0..S3 gives
+    None too (partial runs are analysed with what they hold)."""
+    from lightloom.sequencer.storage.frames import load_frames
+
+    frames = load_frames(path, data.readings)
+    if frames is None:
+        return None
+    port = frames.port == frames.port.min()
+    measure = port & (frames.kind == 0)
+    dark = port & (frames.kind == 1)
+    if not measure.any():
+        return None
+    try:
+        return analyze_frames(
+            frames.data[measure], polarization_povms(frames.operators[measure]),
+            setting_groups(frames.commanded[measure]), frames.data[dark] if dark.any() else None,
+            frames.saturated[measure], rng=rng, replicates=replicates,
+        )
+    except ValueError:
+        return None
+
+
+def add_to_document(doc: dict, result: ImagingResult) -> None:
+    """``nonseparability`` and ``stokes.polarization`` (of the whole beam, from the frames)."""
+    doc["nonseparability"] = result.nonseparability.to_json()
+    stokes = []
+    for j in range(4):
+        value, std = float(result.integrated[j]), float(result.integrated_std[j])
+        if j == 0:
+            stokes.append({"value": 1.0, "std": 0.0, "interval": [1.0, 1.0]})
+            continue
+        lo, hi = value - 1.96 * std, value + 1.96 * std
+        stokes.append({"value": value, "std": std, "interval": [max(-1.0, lo), min(1.0, hi)]})
+    doc.setdefault("stokes", {})["polarization"] = stokes
+    doc["imaging"] = {
+        "pixels": list(result.maps.stokes.shape[1:]),
+        "saturated_pixels": result.masked_pixels,
+        "stokes_from": "spatially integrated Stokes maps (dark subtracted, saturated pixels left out)",
+    }
+
+
+def write_maps(result: ImagingResult, out: str) -> Path:
+    """The maps as an HDF5 file: datasets S0..S3 (ADU), dop, orientation_deg, ellipticity_deg
+    (NaN where saturated or dark) and saturated (1 where a frame saturated)."""
+    import h5py
+
+    path = Path(out)
+    if path.exists():
+        raise UsageError(f"{path} exists already; choose another --maps file (lightloom never overwrites)")
+    if not path.parent.exists():
+        raise UsageError(f"the folder {path.parent} does not exist; create it or choose another --maps file")
+    maps = result.maps
+    values = dict(zip(MAP_NAMES[:4], maps.stokes))
+    values.update(dop=maps.dop, orientation_deg=maps.orientation_deg, ellipticity_deg=maps.ellipticity_deg)
+    units = {"S0": "ADU", "S1": "ADU", "S2": "ADU", "S3": "ADU", "dop": "1",
+             "orientation_deg": "deg", "ellipticity_deg": "deg"}
+    with h5py.File(path, "w-") as f:
+        for name in MAP_NAMES:
+            d = f.create_dataset(name, data=np.asarray(values[name], dtype=np.float64), compression="gzip")
+            d.attrs["units"] = units[name]
+        f.create_dataset("saturated", data=maps.saturated.astype(np.uint8))
+        f.attrs["conventions"] = "S1 = H - V, S2 = D - A, S3 = R - L (sympy handedness); rows = y, columns = x"
+        f.attrs["nonseparability"] = result.nonseparability.value
+    return path
