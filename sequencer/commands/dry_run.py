@@ -5,24 +5,83 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import sys
+from typing import Any
 
-from rich.console import Console
-from rich.table import Table
+DESCRIPTION = (
+    "Compile a protocol for a bench and show, without touching hardware, every step (setting, element"
+    " positions, estimated seconds), the total time in h:mm:ss, the travel of each stage, any move"
+    " outside the travel limits (exit status 2) and what the protocol determines on this bench"
+    " (joint-state, polarization-state, spatial-state, partial with what is missing, or scan)."
+)
+
+SHORT_NAMES = {"quarter_wave_plate": "qwp", "half_wave_plate": "hwp", "mode_converter": "conv",
+               "converter_angle": "conv deg", "image_rotator": "rot"}
+SHOWN_STEPS = 60
 
 
 def add_parser(sub) -> None:
-    p = sub.add_parser("dry-run", help="show the compiled steps, motion, limit checks and a time estimate")
+    p = sub.add_parser("dry-run", help="show the compiled steps, motion, limit checks and a time estimate",
+                       description=DESCRIPTION)
     p.add_argument("protocol", help="protocol file or built-in name")
     p.add_argument("--bench", required=True, help="bench file or built-in name")
-    p.add_argument("--json", action="store_true", help="print JSON (points, estimated_seconds, ...)")
-    p.add_argument("--all", action="store_true", help="list every step, not only the first 60")
+    p.add_argument("--json", action="store_true",
+                   help="print JSON (points, estimated_seconds, determines, missing, steps, ...)")
+    p.add_argument("--all", action="store_true", help=f"list every step, not only the first {SHOWN_STEPS}")
     p.set_defaults(handler=run)
 
 
+def hms(seconds: float) -> str:
+    """A duration as h:mm:ss (``0:00:22``, ``11:30:21``), rounded to the second."""
+    total = int(round(max(seconds, 0.0)))
+    h, rest = divmod(total, 3600)
+    m, s = divmod(rest, 60)
+    return f"{h}:{m:02d}:{s:02d}"
+
+
+def determination_json(det: Any) -> dict[str, Any]:
+    """``determines``, ``missing`` and which Stokes components each factor's readings determine."""
+    return {
+        "determines": det.kind,
+        "missing": list(det.missing),
+        "stokes_determined": {
+            factor: [f"S{i}" for i, ok in enumerate(flags) if ok] for factor, flags in det.stokes.items()
+        },
+    }
+
+
+def determination_lines(det: Any, protocol_determines: str | None, where: str = "") -> list[str]:
+    """The determination in words, one short line each (for validate and dry-run); ``where`` follows the kind."""
+    stated = f" (the protocol says determines: {protocol_determines})" if protocol_determines else ""
+    if det.kind != "partial":
+        words = {"joint-state": "the joint 4x4 state", "polarization-state": "the 2x2 polarization state",
+                 "spatial-state": "the 2x2 spatial-mode state", "scan": "no state, a scan"}[det.kind]
+        return [f"determines {det.kind}{where}: {words}{stated}"]
+    return [f"determines partial{where}{stated}, missing:"] + [
+        f"  - {m}" for m in det.missing
+    ]
+
+
+def partial_warning(det: Any, protocol: Any, where: str) -> str | None:
+    """The one-line warning for an incomplete set in a protocol without ``determines:``, or None."""
+    if det.kind != "partial" or protocol.determines is not None:
+        return None
+    return (
+        f"lightloom: warning: {protocol.source_path}: protocol '{protocol.name}' does not determine"
+        f" the state {where}: {'; '.join(det.missing)}; add settings, or say `determines: scan`"
+        " if no state is wanted"
+    )
+
+
 def run(args: argparse.Namespace) -> int:
+    from rich import box
+    from rich.console import Console
+    from rich.table import Table
+
     from lightloom.sequencer.lang.bench import load_bench
-    from lightloom.sequencer.optics.analyzer import CONVERTER
     from lightloom.sequencer.lang.protocol import load_protocol
+    from lightloom.sequencer.optics.analyzer import CONVERTER
+    from lightloom.sequencer.plan.purpose import plan_determination
     from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
     from lightloom.sequencer.plan.timing import estimate_steps
 
@@ -31,6 +90,10 @@ def run(args: argparse.Namespace) -> int:
     plan = compile_protocol(protocol, bench)
     table = table_model(bench)
     est = estimate_steps(plan, table)
+    det = plan_determination(protocol, plan, table)
+    warning = partial_warning(det, protocol, f"on bench '{bench.name}'")
+    if warning:
+        print(warning, file=sys.stderr)
     measure = [s for s in plan.steps if s.kind == "measure"]
     exposures = _exposure_checks(bench, plan)
     if args.json:
@@ -44,6 +107,7 @@ def run(args: argparse.Namespace) -> int:
             "motion_seconds": round(est.motion_seconds, 3),
             "dwell_seconds": round(est.dwell_seconds, 3),
             "wait_seconds": round(est.wait_seconds, 3),
+            **determination_json(det),
             "travel_deg": {k: round(v, 3) for k, v in est.travel_deg.items()},
             "converter_switches": est.converter_switches,
             "limit_violations": list(plan.violations),
@@ -63,46 +127,58 @@ def run(args: argparse.Namespace) -> int:
         }
         print(json.dumps(out, indent=1))
         return 2 if plan.violations else 0
-    console = Console()
-    t = Table(title=f"{protocol.name} on {bench.name} ({plan.order} order)")
-    short = {"quarter_wave_plate": "qwp", "half_wave_plate": "hwp", "mode_converter": "conv",
-             "converter_angle": "conv deg", "image_rotator": "rot"}
-    for col in ("step", "kind", "setting", *[short.get(n, n) for n in plan.element_names], "s"):
-        t.add_column(col, justify="right" if col not in ("kind", "setting") else "left", no_wrap=True)
-    shown = plan.steps if args.all else plan.steps[:60]
+    console = Console(highlight=False)
+    # Only the elements this bench has get a column, so that the table fits 80 columns.
+    present = [i for i in range(len(plan.element_names))
+               if any(not math.isnan(s.settings[i]) for s in plan.steps)]
+    t = Table(title=f"{protocol.name} on {bench.name} ({plan.order} order)", box=box.SIMPLE_HEAD,
+              pad_edge=False, title_justify="left")
+    t.add_column("step", justify="right", no_wrap=True)
+    t.add_column("setting", justify="left", no_wrap=True)
+    for i in present:
+        name = plan.element_names[i]
+        t.add_column(SHORT_NAMES.get(name, name), justify="right", no_wrap=True)
+    t.add_column("s", justify="right", no_wrap=True)
+    shown = plan.steps if args.all else plan.steps[:SHOWN_STEPS]
     for s, dt in zip(shown, est.step_seconds):
         vals = []
-        for i, v in enumerate(s.settings):
+        for i in present:
+            v = s.settings[i]
             if math.isnan(v):
                 vals.append("-")
             elif i == CONVERTER:
                 vals.append("in" if v == 1.0 else "out")
             else:
                 vals.append(f"{v:.2f}")
-        t.add_row(str(s.index), s.kind, s.label, *vals, f"{dt:.2f}")
+        t.add_row(str(s.index), s.label, *vals, f"{dt:.2f}")
     console.print(t)
     if len(shown) < len(plan.steps):
         console.print(f"... {len(plan.steps) - len(shown)} more steps (--all lists them)")
     console.print(
-        f"{len(plan.steps)} steps ({plan.n_settings} settings, {len(measure)} measurements), "
-        f"estimated {est.total_seconds:.1f} s: motion {est.motion_seconds:.1f} s, dwell {est.dwell_seconds:.1f} s"
-        + (f", waiting for passes {est.wait_seconds:.1f} s" if est.wait_seconds else "")
+        f"{len(plan.steps)} steps: {plan.n_settings} settings, {len(measure)} measurements,"
+        f" {plan.passes} pass{'es' if plan.passes != 1 else ''}"
     )
+    console.print(f"estimated {hms(est.total_seconds)} (h:mm:ss)")
+    console.print(f"  motion {hms(est.motion_seconds)}, dwell {hms(est.dwell_seconds)}"
+                  + (f", waiting for passes {hms(est.wait_seconds)}" if est.wait_seconds else ""))
     for name, deg in est.travel_deg.items():
-        console.print(f"  {name}: {deg:.1f} deg travelled, {est.stage_seconds[name]:.1f} s moving")
+        console.print(f"  {SHORT_NAMES.get(name, name)}: {deg:.1f} deg travelled,"
+                      f" {hms(est.stage_seconds[name])} moving")
     if est.converter_switches:
-        console.print(f"  mode converter: {est.converter_switches} switches")
+        console.print(f"  conv: {est.converter_switches} switches in and out")
+    for line in determination_lines(det, protocol.determines):
+        console.print(line, markup=False)
     for c in exposures:
         fill = c.peak_adu / c.saturation_adu
         if c.saturates:
-            console.print(f"[red]would saturate:[/red] {c.label}: brightest pixel about {c.peak_adu:.0f} ADU at "
+            console.print(f"would saturate: {c.label}: brightest pixel about {c.peak_adu:.0f} ADU at "
                           f"{c.exposure_s * 1e3:g} ms, saturation {c.saturation_adu:.0f} ADU; use dwell_s <= "
                           f"{c.max_exposure_s * 1e3:.3g} ms")
         else:
             console.print(f"camera: {c.label}: brightest pixel about {c.peak_adu:.0f} ADU ({fill:.0%} of saturation)")
     if plan.violations:
         for v in plan.violations:
-            console.print(f"[red]limit violation:[/red] {v}")
+            console.print(f"limit violation: {v}", markup=False)
         return 2
     console.print("limits: all moves inside the travel limits")
     return 0

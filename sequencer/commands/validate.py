@@ -5,11 +5,16 @@ from __future__ import annotations
 import argparse
 import importlib
 import json
+import sys
 from typing import Any
 
+from lightloom.sequencer.commands.dry_run import determination_json, determination_lines, partial_warning
 from lightloom.sequencer.lang.bench import Bench, load_bench
 from lightloom.sequencer.errors import BenchError
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol
+from lightloom.sequencer.model.steps import StepList
+from lightloom.sequencer.plan.purpose import plan_determination, protocol_determination
+from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
 
 
 def add_parser(subparsers: Any) -> None:
@@ -19,7 +24,9 @@ def add_parser(subparsers: Any) -> None:
         description=(
             "Read a protocol (a file or a built-in name such as joint-36) and, with --bench, a bench"
             " (a file or a built-in name such as sim); report the first problem as FILE:LINE: message"
-            " (exit status 2) or print a summary (exit status 0). Nothing is written."
+            " (exit status 2) or print a summary (exit status 0), with what the protocol determines"
+            " (joint-state, polarization-state, spatial-state, partial with what is missing, or scan)."
+            " Nothing is written."
         ),
     )
     parser.add_argument("protocol", metavar="PROTOCOL", help="protocol YAML file or built-in protocol name")
@@ -51,6 +58,7 @@ def protocol_summary(protocol: Protocol) -> dict[str, Any]:
         "reference": {"every_points": protocol.reference.every_points, "dwell_s": protocol.reference.dwell_s},
         "sweep": {"passes": protocol.sweep.passes, "interval_s": protocol.sweep.interval_s},
         "target_state": protocol.target_label,
+        "stated_determines": protocol.determines,
     }
 
 
@@ -97,43 +105,16 @@ def driver_options_check(bench: Bench) -> None:
             raise BenchError(f"{path}: {exc.message}", file, line) from None
 
 
-def _find_compiler() -> Any:
-    # The compiler may live in either module; a missing one means this version cannot compile yet.
-    for module_name in ("lightloom.sequencer.plan.tablemodel", "lightloom.sequencer.plan.compiler"):
-        try:
-            module = importlib.import_module(module_name)
-        except ModuleNotFoundError as exc:
-            if exc.name != module_name:
-                raise
-            continue
-        compile_protocol = getattr(module, "compile_protocol", None)
-        if compile_protocol is not None:
-            return compile_protocol
-    return None
-
-
-def compile_check(protocol: Protocol, bench: Bench) -> dict[str, Any]:
-    """Compile against the bench when the compiler is present, to catch settings the table cannot reach.
-
-    Compile errors propagate (they are LightloomErrors: one line, exit status 2); moves outside the
-    travel limits are a BenchError.
-    """
-    compile_protocol = _find_compiler()
-    if compile_protocol is None:
-        return {"checked": False, "reason": "the compiler is not available in this version"}
-    plan = compile_protocol(protocol, bench)
-    violations = list(getattr(plan, "violations", ()) or ())
+def compile_check(protocol: Protocol, bench: Bench, plan: StepList) -> dict[str, Any]:
+    """The compiled plan's size; moves outside the travel limits are a BenchError (exit status 2)."""
+    violations = list(plan.violations)
     if violations:
         more = f" (and {len(violations) - 1} more)" if len(violations) > 1 else ""
         raise BenchError(
             f"protocol '{protocol.name}' needs moves outside the travel limits of bench '{bench.name}':"
             f" {violations[0]}{more}; widen devices.*.limits or change the protocol"
         )
-    steps = getattr(plan, "steps", plan)
-    result: dict[str, Any] = {"checked": True}
-    if hasattr(steps, "__len__"):
-        result["steps"] = len(steps)
-    return result
+    return {"checked": True, "steps": len(plan.steps)}
 
 
 def _join(items: list[str]) -> str:
@@ -181,13 +162,21 @@ def render_text(summary: dict[str, Any]) -> str:
             _row("roles", _join([f"{r}={d}" for r, d in b["roles"].items()])),
             _row("detectors", _join(detectors)),
         ]
-        c = summary["compile"]
-        if c["checked"]:
-            lines.append(_row("compile", "ok" + (f", {c['steps']} steps" if "steps" in c else "")))
-        else:
-            lines.append(_row("compile", f"not checked: {c['reason']}"))
+        lines.append(_row("compile", f"ok, {summary['compile']['steps']} steps"))
+    where = f" on bench {b['name']}" if b is not None else " on one detector per projector (no --bench)"
+    first, *rest = determination_lines(_Shown(summary), p["stated_determines"], where)
+    lines.append(_row("determines", first.removeprefix("determines ")))
+    lines += [" " * 12 + line for line in rest]
     lines.append("ok")
     return "\n".join(lines)
+
+
+class _Shown:
+    """The determination as ``determination_lines`` reads it, rebuilt from the summary's JSON keys."""
+
+    def __init__(self, summary: dict[str, Any]) -> None:
+        self.kind = summary["determines"]
+        self.missing = tuple(summary["missing"])
 
 
 def run(args: argparse.Namespace) -> int:
@@ -195,10 +184,23 @@ def run(args: argparse.Namespace) -> int:
     bench = load_bench(args.bench) if args.bench else None
     if bench is not None:
         driver_options_check(bench)
+    compiled = None
+    if bench is not None:
+        plan = compile_protocol(protocol, bench)
+        compiled = compile_check(protocol, bench, plan)
+        det = plan_determination(protocol, plan, table_model(bench))
+        where = f"on bench '{bench.name}'"
+    else:
+        det = protocol_determination(protocol)
+        where = "on one detector per projector (give --bench to check your table)"
+    warning = partial_warning(det, protocol, where)
+    if warning:
+        print(warning, file=sys.stderr)
     summary: dict[str, Any] = {
         "protocol": protocol_summary(protocol),
         "bench": bench_summary(bench) if bench is not None else None,
-        "compile": compile_check(protocol, bench) if bench is not None else None,
+        "compile": compiled,
+        **determination_json(det),
         "ok": True,
     }
     if args.json:

@@ -93,8 +93,12 @@ _TOP_KEYS = (
     "sweep",
     "target_state",
     "frames_averaged",
+    "determines",
 )
 MAX_FRAMES_AVERAGED = 10_000
+
+PURPOSES: tuple[str, ...] = ("joint-state", "polarization-state", "spatial-state", "scan")
+"""What a protocol may say it is for (``determines:``); checked against the bench before a run."""
 
 
 @dataclass(frozen=True)
@@ -193,6 +197,8 @@ class Protocol:
     sha256: str = field(compare=False)
     frames_averaged: int | None = None
     """Camera frames averaged into one reading (None: the camera's own setting)."""
+    determines: str | None = None
+    determines_line: int = field(default=0, compare=False)
 
     @property
     def dimension(self) -> int:
@@ -564,6 +570,10 @@ def _protocol_from_tree(root: YNode, source_path: str, source_text: str) -> Prot
     if ts is not None:
         target_state, target_label = _target_state(ts, analyzes)
 
+    determines = sec.choice("determines", PURPOSES, None)
+    if determines is not None:
+        _check_purpose(determines, analyzes, sec)
+
     return Protocol(
         name=name,
         description=description,
@@ -584,7 +594,22 @@ def _protocol_from_tree(root: YNode, source_path: str, source_text: str) -> Prot
         source_text=source_text,
         sha256=hashlib.sha256(source_text.encode("utf-8")).hexdigest(),
         frames_averaged=frames_averaged,
+        determines=determines,
+        determines_line=sec.key_line("determines") if determines is not None else 0,
     )
+
+
+def _check_purpose(determines: str, analyzes: tuple[str, ...], sec: Section) -> None:
+    """A stated purpose must fit the analysed factors (the bench check comes at compile time)."""
+    needs = {"joint-state": ("polarization", "spatial"), "polarization-state": ("polarization",),
+             "spatial-state": ("spatial",)}.get(determines, ())
+    lacking = [f for f in needs if f not in analyzes]
+    if lacking:
+        fail(
+            f"determines: {determines} needs analyzes to include {' and '.join(lacking)},"
+            f" but the protocol analyzes only {', '.join(analyzes)}",
+            sec.node.get("determines"),  # type: ignore[arg-type]
+        )
 
 
 def parse_protocol(text: str, path: str) -> Protocol:

@@ -17,6 +17,7 @@ from lightloom.sequencer.optics.analyzer import (
 )
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol
+from lightloom.sequencer.plan.purpose import plan_determination, require_purpose
 
 
 def analyzer_model(bench: Bench, truth: bool = False) -> AnalyzerModel:
@@ -119,10 +120,12 @@ def compile_protocol(protocol: Protocol, bench: Bench) -> StepList:
     ------
     BenchError
         ``PROTOCOL:LINE: ...`` when the bench cannot measure what a point asks for.
+    ProtocolError
+        At the ``determines:`` line when the bench cannot deliver what the protocol says it is for.
     """
     table = table_model(bench)
     try:
-        return compile_requests(
+        plan = compile_requests(
             table,
             protocol_requests(protocol),
             protocol_name=protocol.name,
@@ -148,3 +151,6 @@ def compile_protocol(protocol: Protocol, bench: Bench) -> StepList:
                 exc.line if exc.line is not None else 1,
             ) from None
         raise
+    if protocol.determines not in (None, "scan"):
+        require_purpose(protocol, plan_determination(protocol, plan, table), bench.name)
+    return plan

@@ -1,0 +1,189 @@
+"""What a set of measurement operators determines: the joint state, one factor's state, or which parts.
+
+A reading of a port estimates tr(rho E) for its operator E; linear combinations of readings give
+tr(rho M) for every M in the real span of the operators, and nothing else. The state of a factor
+(polarization or spatial mode) is determined when the span holds sigma_i (x) 1 for its four Stokes
+operators (sigma_0 = 1, sigma_1 = Z, sigma_2 = X, sigma_3 = Y, as in optics.stokes), the joint
+state when the span is the whole space of Hermitian operators (informationally complete sets; e.g.
+James, Kwiat, Munro, White, Phys. Rev. A 64, 052312 (2001), section II). With S0 included, the
+absolute power is determined too, so a complete set needs d^2 independent operators, not d^2 - 1.
+"""
+
+from __future__ import annotations
+
+import itertools
+from dataclasses import dataclass
+from types import MappingProxyType
+from typing import Mapping, Sequence
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from lightloom.sequencer.optics.stokes import PAULI
+
+KINDS: tuple[str, ...] = ("joint-state", "polarization-state", "spatial-state", "partial", "scan")
+"""What a protocol determines on a bench (the ``determines`` of validate and dry-run)."""
+
+STATE_KIND: Mapping[tuple[str, ...], str] = MappingProxyType(
+    {
+        ("polarization", "spatial"): "joint-state",
+        ("polarization",): "polarization-state",
+        ("spatial",): "spatial-state",
+    }
+)
+
+# Per factor, the pair of projectors and the physicist's name of each Stokes basis (S1, S2, S3).
+BASES: Mapping[str, tuple[tuple[str, str, str], ...]] = MappingProxyType(
+    {
+        "polarization": (
+            ("H", "V", "horizontal/vertical (H/V)"), ("D", "A", "diagonal (D/A)"), ("R", "L", "circular (R/L)"),
+        ),
+        "spatial": (("h", "v", "h/v"), ("d", "a", "diagonal (d/a)"), ("l+", "l-", "orbital (l+/l-)")),
+    }
+)
+
+RANK_TOLERANCE = 1e-6
+"""Singular values below this fraction of the largest count as zero (operators are normalised first)."""
+
+
+@dataclass(frozen=True)
+class Determination:
+    """What the operators determine.
+
+    ``kind``: one of KINDS. ``missing``: what lacks, one phrase each ("polarization: no circular
+    (R/L) projection"), empty unless ``kind`` is partial. ``stokes``: per factor of the space, which
+    of S0..S3 of that factor's reduced state the operators determine. ``rank``: dimension of the real
+    span of the operators, out of ``full_rank`` = d^2.
+    """
+
+    kind: str
+    missing: tuple[str, ...]
+    stokes: Mapping[str, tuple[bool, bool, bool, bool]]
+    rank: int
+    full_rank: int
+
+    @property
+    def complete(self) -> bool:
+        """True when the analysed state is fully determined."""
+        return self.kind in STATE_KIND.values()
+
+
+def _pauli_products(n_factors: int) -> tuple[tuple[tuple[int, ...], ...], NDArray[np.complex128]]:
+    indices = tuple(itertools.product(range(4), repeat=n_factors))
+    mats = []
+    for idx in indices:
+        m = np.ones((1, 1), dtype=np.complex128)
+        for i in idx:
+            m = np.kron(m, PAULI[i])
+        mats.append(m)
+    return indices, np.array(mats)
+
+
+def _span_basis(operators: NDArray[np.complex128], paulis: NDArray[np.complex128]) -> NDArray[np.float64]:
+    """Orthonormal rows spanning the operators' real span, in Pauli-product coordinates."""
+    coords = np.einsum("kji,nij->nk", paulis, operators).real  # tr(E P_k), real for Hermitian E
+    norms = np.linalg.norm(coords, axis=1)
+    coords = coords[norms > 0] / norms[norms > 0, None]
+    if coords.shape[0] == 0:
+        return np.zeros((0, paulis.shape[0]))
+    _, s, vt = np.linalg.svd(coords, full_matrices=False)
+    return vt[s > RANK_TOLERANCE * s[0]]
+
+
+def _in_span(basis: NDArray[np.float64], vector: NDArray[np.float64]) -> bool:
+    v = vector / np.linalg.norm(vector)
+    residual = v - basis.T @ (basis @ v)
+    return bool(np.linalg.norm(residual) < 1e-6)
+
+
+def determination(
+    operators: ArrayLike,
+    factors: Sequence[str],
+    analyzes: Sequence[str],
+    *,
+    scan: bool = False,
+) -> Determination:
+    """What readings of ``operators`` determine about the ``analyzes`` factors.
+
+    Parameters
+    ----------
+    operators
+        Measurement operators (n, d, d), Hermitian, d = 2 ** len(factors), in the basis order of
+        ``factors`` (polarization (x) spatial).
+    factors
+        The factors of the space, e.g. ("polarization", "spatial") for 4x4 operators.
+    analyzes
+        The factors whose state is wanted (a subset of ``factors``).
+    scan
+        The readings are a scan (against an angle or time), not meant to give a state: ``kind`` is
+        ``scan`` whatever the span; ``stokes`` still says what the operators determine.
+
+    Returns
+    -------
+    Determination
+    """
+    factors = tuple(factors)
+    wanted = tuple(f for f in factors if f in analyzes)
+    if not wanted or len(wanted) != len(set(analyzes)):
+        raise ValueError(f"analyzes {tuple(analyzes)} must be a non-empty subset of the factors {factors}")
+    n = len(factors)
+    d = 2**n
+    ops = np.asarray(operators, dtype=np.complex128).reshape(-1, d, d)
+    indices, paulis = _pauli_products(n)
+    basis = _span_basis(ops, paulis)
+    position = {idx: k for k, idx in enumerate(indices)}
+
+    def determined(idx: tuple[int, ...]) -> bool:
+        e = np.zeros(len(indices))
+        e[position[idx]] = 1.0
+        return _in_span(basis, e)
+
+    def local(f: int, i: int) -> tuple[int, ...]:
+        return tuple(i if g == f else 0 for g in range(n))
+
+    stokes = {
+        factor: tuple(determined(local(f, i)) for i in range(4)) for f, factor in enumerate(factors)
+    }
+    missing: list[str] = []
+    for f, factor in enumerate(factors):
+        if factor not in wanted:
+            continue
+        s = stokes[factor]
+        if not s[0]:
+            missing.append(f"{factor}: no total power (no complete basis such as "
+                           f"{BASES[factor][0][0]} with {BASES[factor][0][1]})")
+        for i, (plus, minus, name) in enumerate(BASES[factor], start=1):
+            if s[i]:
+                continue
+            p_plus = _projector_determined(basis, position, local(f, 0), local(f, i), +1)
+            p_minus = _projector_determined(basis, position, local(f, 0), local(f, i), -1)
+            if p_plus and not p_minus:
+                missing.append(f"{factor}: {plus} without {minus}")
+            elif p_minus and not p_plus:
+                missing.append(f"{factor}: {minus} without {plus}")
+            else:
+                missing.append(f"{factor}: no {name} projection")
+    if len(wanted) > 1 and not missing:
+        for idx in indices:
+            if all(idx) and not determined(idx):
+                pairs = [f"{BASES[factors[g]][i - 1][0]}/{BASES[factors[g]][i - 1][1]}" for g, i in enumerate(idx)]
+                missing.append(f"joint: no {' x '.join(pairs)} correlation")
+    rank = int(basis.shape[0])
+    if scan:
+        kind = "scan"
+    elif missing:
+        kind = "partial"
+    else:
+        kind = STATE_KIND[wanted]
+    return Determination(kind, tuple(missing) if kind == "partial" else (), MappingProxyType(stokes), rank, d * d)
+
+
+def _projector_determined(
+    basis: NDArray[np.float64], position: Mapping[tuple[int, ...], int],
+    identity: tuple[int, ...], axis: tuple[int, ...], sign: int,
+) -> bool:
+    """True when (1 + sign * sigma_axis) / 2 lies in the span (the projector onto one basis state)."""
+    v = np.zeros(len(position))
+    v[position[identity]] = 1.0
+    v[position[axis]] = float(sign)
+    return _in_span(basis, v)

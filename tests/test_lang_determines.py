@@ -1,0 +1,129 @@
+"""`validate` and `dry-run` say what a protocol determines on a bench; `determines:` makes a shortfall bad input."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from lightloom.sequencer import cli
+
+HV_ONLY = """\
+protocol: hv-only
+analyzes: [polarization]
+measure:
+  targets:
+    polarization: [H, V]
+dwell_s: 0.1
+"""
+
+
+def write(tmp_path: Path, name: str, text: str) -> Path:
+    path = tmp_path / name
+    path.write_text(text)
+    return path
+
+
+def json_of(capsys, *argv: str) -> dict:
+    assert cli.main(list(argv)) == 0
+    return json.loads(capsys.readouterr().out)
+
+
+def test_h_and_v_only_is_partial_with_diagonal_and_circular_missing(tmp_path, capsys) -> None:
+    path = write(tmp_path, "hv.yaml", HV_ONLY)
+    doc = json_of(capsys, "dry-run", str(path), "--bench", "sim", "--json")
+    assert doc["determines"] == "partial"
+    assert doc["missing"] == [
+        "polarization: no diagonal (D/A) projection",
+        "polarization: no circular (R/L) projection",
+    ]
+    assert doc["stokes_determined"]["polarization"] == ["S0", "S1"]
+
+
+@pytest.mark.parametrize("verb", [["validate"], ["dry-run"]])
+def test_an_incomplete_set_without_the_key_is_a_one_line_warning_never_silent(tmp_path, capsys, verb) -> None:
+    path = write(tmp_path, "hv.yaml", HV_ONLY)
+    assert cli.main([*verb, str(path), "--bench", "sim"]) == 0
+    captured = capsys.readouterr()
+    lines = captured.err.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("lightloom: warning: ")
+    assert "no diagonal (D/A) projection" in lines[0] and "no circular (R/L) projection" in lines[0]
+    assert "partial" in captured.out
+
+
+def test_validate_without_a_bench_judges_the_requested_projectors(tmp_path, capsys) -> None:
+    path = write(tmp_path, "hv.yaml", HV_ONLY)
+    doc = json_of(capsys, "validate", str(path), "--json")
+    assert doc["determines"] == "partial"
+    assert "polarization: no circular (R/L) projection" in doc["missing"]
+    assert json_of(capsys, "validate", "polarization-4", "--json")["determines"] == "polarization-state"
+
+
+@pytest.mark.parametrize(
+    "protocol, bench, expected",
+    [
+        ("polarization-6", "sim", "polarization-state"),
+        ("polarization-6", "sim-single", "polarization-state"),
+        ("spatial-4", "sim", "spatial-state"),
+        ("joint-16", "sim", "joint-state"),
+        ("joint-36", "sim", "joint-state"),
+        ("spatial-6", "sim-single", "spatial-state"),
+        ("waveplate-calibration-hwp", "sim", "scan"),
+        ("calibration-rotator", "sim-uncalibrated", "scan"),
+    ],
+)
+def test_built_in_protocols_determine_what_they_are_for(capsys, protocol, bench, expected) -> None:
+    for verb in ("validate", "dry-run"):
+        doc = json_of(capsys, verb, protocol, "--bench", bench, "--json")
+        assert (doc["determines"], doc["missing"]) == (expected, [])
+
+
+def test_determines_joint_state_on_a_polarization_only_protocol_is_refused_at_its_line(tmp_path, capsys) -> None:
+    path = write(tmp_path, "p.yaml", HV_ONLY + "determines: joint-state\n")
+    assert cli.main(["validate", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "Traceback" not in err
+    assert err.startswith(f"lightloom: {path}:7: determines: joint-state needs analyzes to include spatial")
+
+
+POLARIZATION_ONLY_JOINT = """\
+protocol: pol-only-joint
+analyzes: [polarization, spatial]
+determines: joint-state
+measure:
+  settings:
+    - {polarization: H, spatial: h}
+    - {polarization: D, spatial: h}
+    - {polarization: R, spatial: h}
+dwell_s: 0.1
+"""
+
+
+@pytest.mark.parametrize("verb", [["validate"], ["dry-run"], ["dry-run", "--json"]])
+def test_determines_joint_state_with_a_polarization_only_set_is_bad_input_naming_what_lacks(
+    tmp_path, capsys, verb
+) -> None:
+    path = write(tmp_path, "p.yaml", POLARIZATION_ONLY_JOINT)
+    assert cli.main([verb[0], str(path), "--bench", "sim", *verb[1:]]) == 2
+    captured = capsys.readouterr()
+    assert captured.out == ""
+    line = captured.err.strip()
+    assert "\n" not in line and line.startswith(f"lightloom: {path}:3: determines: joint-state")
+    assert "spatial: no diagonal (d/a) projection" in line
+    assert "spatial: no orbital (l+/l-) projection" in line
+
+
+def test_run_refuses_a_protocol_that_cannot_deliver_its_stated_purpose(tmp_path, capsys) -> None:
+    path = write(tmp_path, "p.yaml", HV_ONLY + "determines: polarization-state\n")
+    out = tmp_path / "run.h5"
+    assert cli.main(["run", str(path), "--bench", "sim", "--out", str(out)]) == 2
+    assert f"{path}:7: determines: polarization-state" in capsys.readouterr().err
+    assert list(tmp_path.iterdir()) == [path]
+
+
+def test_determines_scan_silences_the_warning_for_a_drift_run(tmp_path, capsys) -> None:
+    path = write(tmp_path, "p.yaml", HV_ONLY + "determines: scan\n")
+    doc = json_of(capsys, "dry-run", str(path), "--bench", "sim", "--json")
+    assert doc["determines"] == "scan"
+    assert capsys.readouterr().err == ""
