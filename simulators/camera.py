@@ -193,6 +193,8 @@ class CameraLight:
     hwp_deg: Callable[[], float]
     state: NDArray[np.complex128]
     wavelength_nm: float
+    epoch_s: float = 0.0
+    """UNIX time of the simulated clock's zero (frame timestamps are UNIX seconds)."""
 
 
 class SimCamera(SimDevice, Camera):
@@ -243,7 +245,7 @@ class SimCamera(SimDevice, Camera):
             self.clock.advance_to(t0 + (k + 0.5) * settings.exposure_s)
             raws.append(digitize(self.expected_electrons(settings.exposure_s), self.model, settings, self._rng))
             self.clock.advance_to(t0 + (k + 1) * settings.exposure_s)
-        return average_frames(raws, settings, t0)
+        return average_frames(raws, settings, self.light.epoch_s + t0)
 
 
 def make_sim_camera(

@@ -11,6 +11,7 @@ meters add their offset and noise. The physics lives in sequencer.optics, once.
 from __future__ import annotations
 
 import math
+import time
 from dataclasses import dataclass
 from typing import Callable
 
@@ -56,11 +57,14 @@ class SimulatedTable:
         *,
         wall_sleep: Callable[[float], None] | None = None,
         time_scale: float | None = None,
+        epoch_s: float | None = None,
     ) -> None:
         sim = bench.simulation
         if sim is None:
             raise ValueError(f"bench '{bench.name}' has no simulation section")
         self.bench = bench
+        # UNIX time of virtual time 0: what the runner's clock and the camera's timestamps add.
+        self.epoch_s = time.time() if epoch_s is None else float(epoch_s)
         kwargs = {} if wall_sleep is None else {"wall_sleep": wall_sleep}
         self.clock = SimClock(sim.time_scale if time_scale is None else time_scale, **kwargs)
         seeds = np.random.SeedSequence(sim.seed)
@@ -148,6 +152,7 @@ class SimulatedTable:
         light = CameraLight(
             power_w=lambda: self.source_power_w() * (1.0 - self.reference_fraction),
             povm=povm, hwp_deg=hwp_deg, state=self.rho, wavelength_nm=self.bench.wavelength_nm,
+            epoch_s=self.epoch_s,
         )
         return make_sim_camera(name, spec.options, self.clock, light, rng, self.faults)
 

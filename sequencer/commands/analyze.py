@@ -18,6 +18,10 @@ def add_parser(sub) -> None:
     p.add_argument("--normalize", action="store_true", help="normalise each setting over its complementary ports (cancels drift without a reference meter)")
     p.add_argument("--bootstrap", type=int, default=200, metavar="N", help="bootstrap resamples for the error bars (default 200)")
     p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
+    p.add_argument("--series", action="store_true", help="imaging runs: per-pass integrated Stokes, non-separability and pattern drift, out of core with dask")
+    p.add_argument("--series-maps", metavar="FILE.h5", help="imaging runs: Stokes maps per window of passes to this new HDF5 file (out of core)")
+    p.add_argument("--series-window", type=int, default=1, metavar="N", help="passes per window of --series-maps (default 1: a map per pass)")
+    p.add_argument("--dask", metavar="ADDRESS", help="run the --series analysis on the dask.distributed scheduler at ADDRESS (default: local threads)")
     p.add_argument("--maps", metavar="FILE.h5", help="imaging runs: write the Stokes, DOP, orientation and ellipticity maps to this new HDF5 file")
     p.set_defaults(handler=run)
 
@@ -47,8 +51,13 @@ def run(args: argparse.Namespace) -> int:
         imaging_report.add_to_document(doc, imaging)
         if args.maps:
             doc["imaging"]["maps"] = str(imaging_report.write_maps(imaging, args.maps))
-    elif args.maps:
-        raise UsageError(f"{args.file}: --maps needs an imaging run (a camera behind the analyzer); this run has no frames")
+    if (args.series or args.series_maps) and imaging is not None:
+        if args.series_window < 1:
+            raise UsageError("--series-window needs at least 1 pass")
+        doc["imaging_series"] = imaging_report.imaging_series(
+            args.file, address=args.dask, maps_out=args.series_maps, passes_per_window=args.series_window)
+    if (args.maps or args.series or args.series_maps) and imaging is None:
+        raise UsageError(f"{args.file}: --maps and --series need an imaging run (a camera behind the analyzer); this run has no frames")
     if args.bench:
         doc["corrections"]["operators"] = f"recomputed from read-back positions with the calibration of {args.bench}"
     if args.plots:

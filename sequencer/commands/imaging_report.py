@@ -85,3 +85,73 @@ def write_maps(result: ImagingResult, out: str) -> Path:
         f.attrs["conventions"] = "S1 = H - V, S2 = D - A, S3 = R - L (sympy handedness); rows = y, columns = x"
         f.attrs["nonseparability"] = result.nonseparability.value
     return path
+
+
+def imaging_series(path: str, *, address: str | None = None, maps_out: str | None = None,
+                   passes_per_window: int = 1, frames_per_chunk: int = 8) -> dict:
+    """The night of an imaging run, out of core with dask: per pass its integrated Stokes
+    parameters, non-separability and S0 centroid (the drift of the pattern); with ``maps_out``,
+    Stokes maps per window of ``passes_per_window`` passes written to that new HDF5 file one window
+    at a time. On the local threaded scheduler, or on the dask.distributed cluster at ``address``."""
+    import contextlib
+
+    import dask
+
+    from lightloom.sequencer.analysis import imaging_dask as night
+    from lightloom.sequencer.storage.frames import frame_columns, frame_stack
+
+    columns = frame_columns(path)
+    if len(set(columns.port.tolist())) > 1:
+        raise UsageError(f"{path}: the series analysis takes runs with one camera")
+    if maps_out is not None and Path(maps_out).exists():
+        raise UsageError(f"{maps_out} exists already; choose another file (lightloom never overwrites)")
+    layout = night.pass_weights(columns.kind, columns.pass_index, columns.operators)
+    stack = frame_stack(path, frames_per_chunk)
+    keep = ~night.saturated_anywhere(frame_stack(path, frames_per_chunk, "frames/saturated"))
+    if address:
+        try:
+            from distributed import Client
+        except ImportError:
+            raise UsageError("--dask needs dask.distributed: pip install 'lightloom[imaging]'") from None
+        try:
+            where = Client(address, timeout=10)
+        except (OSError, TimeoutError) as exc:
+            raise UsageError(f"cannot reach the dask scheduler at {address}: {exc}") from None
+    else:
+        where = contextlib.nullcontext()
+    with where, dask.config.set(scheduler="threads") if not address else contextlib.nullcontext():
+        moments = night.frame_moments(stack, keep).compute()
+        series = night.series_from_moments(moments, columns.kind, layout)
+        written = None
+        if maps_out is not None:
+            written = _write_window_maps(night.window_maps(night.pass_maps(stack, columns.kind, layout),
+                                                           passes_per_window), maps_out, passes_per_window)
+    rows = []
+    t = columns.t_s
+    for p, s, v, c in zip(series.passes, series.normalised, series.nonseparability, series.centroid_px):
+        mine = columns.pass_index == p
+        rows.append({"pass": int(p), "t_start": float(t[mine].min()), "t_end": float(t[mine].max()),
+                     "stokes": [float(x) for x in s], "nonseparability": float(v),
+                     "centroid_px": [float(c[0]), float(c[1])]})
+    drift = series.centroid_px - series.centroid_px[:1]
+    out = {"passes": rows, "drift_px": float(np.nanmax(np.hypot(drift[:, 0], drift[:, 1]))) if len(rows) else 0.0,
+           "scheduler": address or "local threads"}
+    if written:
+        out["maps"] = written
+    return out
+
+
+def _write_window_maps(maps, out: str, passes_per_window: int) -> str:
+    """Write (W, 4, rows, cols) window maps to ``out``/stokes, one window in memory at a time."""
+    import h5py
+
+    n, _, rows, cols = maps.shape
+    with h5py.File(out, "w-") as f:
+        d = f.create_dataset("stokes", shape=maps.shape, dtype="f8", chunks=(1, 1, rows, cols),
+                             compression="gzip")
+        d.attrs["units"] = "ADU"
+        d.attrs["axes"] = "window, Stokes parameter S0..S3, row (y), column (x)"
+        d.attrs["passes_per_window"] = passes_per_window
+        for i in range(n):
+            d[i] = maps[i].compute()
+    return out

@@ -52,7 +52,7 @@ def assemble(bench: Bench) -> Assembled:
 
         table = SimulatedTable(bench)
         devices = table.devices
-        wall0 = time.time()
+        wall0 = table.epoch_s
         now = lambda: wall0 + table.clock.now()  # noqa: E731
         sleep = table.clock.sleep
     else:

@@ -292,3 +292,69 @@ def load_frames(h5_path: str | os.PathLike[str], readings) -> FrameSet | None:
         commanded=np.array([readings.commanded[r] for r in rows]),
         operators=np.array([readings.operators[r, p] for r, p in zip(rows, ports)]),
     )
+
+
+class H5Slices:
+    """A dataset of an HDF5 file as a picklable array-like: every ``[...]`` opens the file, reads
+    the slice and closes it, so dask tasks can run in other processes (dask.distributed workers)
+    and memory holds only the slices in flight."""
+
+    def __init__(self, path: str | os.PathLike[str], dataset: str) -> None:
+        import h5py
+
+        self.path = str(path)
+        self.dataset = dataset
+        with h5py.File(self.path, "r") as f:
+            d = f[dataset]
+            self.shape = tuple(d.shape)
+            self.dtype = d.dtype
+        self.ndim = len(self.shape)
+
+    def __getitem__(self, key):
+        import h5py
+
+        with h5py.File(self.path, "r") as f:
+            return f[self.dataset][key]
+
+
+@dataclass(frozen=True, eq=False)
+class FrameColumns:
+    """The per-frame columns of ``/frames`` (everything but the pixels), in memory."""
+
+    step_index: np.ndarray
+    port: np.ndarray
+    kind: np.ndarray
+    pass_index: np.ndarray
+    t_s: np.ndarray
+    exposure_s: np.ndarray
+    n_averaged: np.ndarray
+    saturation_level: np.ndarray
+    commanded: np.ndarray
+    operators: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.step_index)
+
+
+def frame_columns(h5_path: str | os.PathLike[str]) -> FrameColumns:
+    """The small per-frame columns of a run file's published ``/frames``."""
+    import h5py
+
+    if not has_published_frames(h5_path):
+        raise StorageError(
+            f"{h5_path}: no complete /frames group; the frames are published when the run closes "
+            "(`lightloom resume` a killed run first)"
+        )
+    with h5py.File(h5_path, "r") as f:
+        g = f["frames"]
+        return FrameColumns(**{k: g[k][()] for k in _COLUMNS})
+
+
+def frame_stack(h5_path: str | os.PathLike[str], frames_per_chunk: int | tuple[int, ...] = 8,
+                dataset: str = "frames/data"):
+    """The frames of a run file as a lazy dask array (n, rows, cols), read from the file only when
+    computed: ``frames_per_chunk`` frames per task, or the given chunk sizes along the frames."""
+    import dask.array as da
+
+    source = H5Slices(h5_path, dataset)
+    return da.from_array(source, chunks=(frames_per_chunk,) + source.shape[1:], lock=False, asarray=True)
