@@ -17,6 +17,7 @@ VERBS: dict[str, str] = {
     "run": "run",
     "resume": "resume",
     "analyze": "analyze",
+    "advise": "advise",
     "calibrate": "calibrate",
     "sim": "sim",
     "demo": "demo",

@@ -23,6 +23,8 @@ def add_parser(sub) -> None:
     p.add_argument("--series-window", type=int, default=1, metavar="N", help="passes per window of --series-maps (default 1: a map per pass)")
     p.add_argument("--dask", metavar="ADDRESS", help="run the --series analysis on the dask.distributed scheduler at ADDRESS (default: local threads)")
     p.add_argument("--maps", metavar="FILE.h5", help="imaging runs: write the Stokes, DOP, orientation and ellipticity maps to this new HDF5 file")
+    p.add_argument("--field-maps", action="store_true",
+                   help="add the transverse polarization maps of a joint state to the JSON (key field_maps)")
     p.set_defaults(handler=run)
 
 
@@ -60,6 +62,12 @@ def run(args: argparse.Namespace) -> int:
         raise UsageError(f"{args.file}: --maps and --series need an imaging run (a camera behind the analyzer); this run has no frames")
     if args.bench:
         doc["corrections"]["operators"] = f"recomputed from read-back positions with the calibration of {args.bench}"
+    if args.field_maps:
+        if est.rho.shape != (4, 4):
+            raise UsageError(f"{args.file}: --field-maps needs a joint (polarization and spatial) run")
+        from lightloom.sequencer.analysis.portrait import portrait, portrait_json
+
+        doc["field_maps"] = portrait_json(portrait(est.rho))
     if args.plots:
         doc["plots"] = [str(p) for p in _plots(data, est, args.plots)]
         if imaging is not None:
@@ -114,6 +122,12 @@ def _plots(data, est, directory: str) -> list:
         points = {f: np.array([v for v, _ in s]) for f, s in est.stokes.items()}
         unc = {f: float(np.sqrt(sum(sd**2 for _, sd in s[1:]))) for f, s in est.stokes.items()}
         written.append(plots.plot_poincare(points, out / "poincare.png", title="reduced states", uncertainties=unc))
+        if est.rho.shape == (4, 4):
+            from lightloom.sequencer.analysis.portrait import portrait
+            from lightloom.sequencer.present.portrait import plot_portrait
+
+            written.append(plot_portrait(portrait(est.rho), out / "portrait.png",
+                                         title=f"{data.header.protocol_name}: polarization portrait"))
         r = data.readings
         lit = ~r.of_kind("background")
         ref = r.reference_w[lit]
