@@ -56,6 +56,10 @@ def test_integrated_series_is_the_sum_of_the_pass_maps(series_run):
     series = night.series_from_moments(night.frame_moments(stack, keep).compute(), columns.kind, layout)
     maps = night.pass_maps(stack, columns.kind, layout).compute()
     np.testing.assert_allclose(series.stokes, maps.sum(axis=(2, 3)), rtol=1e-9)
+    windows = [w.compute() for w in night.window_maps(stack, columns.kind, layout, 2)]
+    assert len(windows) == 2
+    np.testing.assert_allclose(windows[0], maps[:2].mean(axis=0), rtol=1e-12)
+    np.testing.assert_allclose(windows[1], maps[2], rtol=1e-12)
     assert np.all(np.abs(series.normalised[:, 1:]) < 0.1)  # the sim source is nearly unpolarized overall
     assert np.all(series.nonseparability > 0.99)
 

@@ -122,29 +122,44 @@ def series_from_moments(moments: NDArray[np.float64], kind: NDArray, layout: Pas
     return Series(layout.passes, out[:, :, 0], centroid)
 
 
-def pass_maps(stack, kind: NDArray, layout: PassWeights):
-    """Lazy per-pass Stokes maps (P, 4, rows, cols): per-pixel Stokes parameters against time.
-    ``stack`` is rechunked so that each pass is one chunk (one task reads one image set)."""
+def mean_dark_frame(stack, kind: NDArray):
+    """Lazy mean of the run's dark frames (rows, cols), zeros without any."""
     import dask.array as da
 
     darks = np.flatnonzero(np.asarray(kind) == DARK)
+    if len(darks) == 0:
+        return da.zeros(stack.shape[1:])
+    return stack[darks].astype(np.float64).mean(axis=0)
+
+
+def pass_maps(stack, kind: NDArray, layout: PassWeights, passes: slice = slice(None), mean_dark=None):
+    """Lazy Stokes maps (P, 4, rows, cols) of the passes ``passes`` (positions in ``layout``):
+    per-pixel Stokes parameters against time. Each pass is built from its own frames only, so a
+    graph for a few passes stays small however long the night. ``mean_dark`` (rows, cols; numpy
+    or dask) is used by passes without a dark frame of their own; computed here when needed."""
+    import dask.array as da
+
     rows, cols = stack.shape[1:]
-    mean_dark = stack[darks].astype(np.float64).mean(axis=0) if len(darks) else da.zeros((rows, cols))
+    chosen = range(len(layout.bounds))[passes]
     pieces = []
-    for (a, b), w, coef in zip(layout.bounds, layout.weights, layout.global_dark):
-        block = stack[a:b].astype(np.float64)
-        maps = da.tensordot(da.from_array(w, chunks=w.shape), block, axes=(1, 0))
+    for p in chosen:
+        (a, b), w, coef = layout.bounds[p], layout.weights[p], layout.global_dark[p]
+        maps = da.tensordot(da.from_array(w, chunks=w.shape), stack[a:b].astype(np.float64), axes=(1, 0))
         if np.any(coef):
+            if mean_dark is None:
+                mean_dark = mean_dark_frame(stack, kind)
             maps = maps + da.from_array(coef, chunks=4)[:, None, None] * mean_dark[None]
         pieces.append(maps)
     return da.stack(pieces) if pieces else da.zeros((0, 4, rows, cols))
 
 
-def window_maps(maps, passes_per_window: int):
-    """Mean Stokes maps over consecutive windows of ``passes_per_window`` passes (W, 4, rows, cols)."""
-    import dask.array as da
-
-    n = maps.shape[0]
+def window_maps(stack, kind: NDArray, layout: PassWeights, passes_per_window: int, mean_dark=None) -> list:
+    """Lazy mean Stokes maps (4, rows, cols) of every window of ``passes_per_window`` consecutive
+    passes, one small graph per window (compute them one at a time to bound memory)."""
     if passes_per_window < 1:
         raise ValueError("a window holds at least one pass")
-    return da.stack([maps[i: i + passes_per_window].mean(axis=0) for i in range(0, n, passes_per_window)])
+    n = len(layout.bounds)
+    if mean_dark is None and np.any(layout.global_dark):
+        mean_dark = mean_dark_frame(stack, kind).compute()
+    return [pass_maps(stack, kind, layout, slice(i, i + passes_per_window), mean_dark).mean(axis=0)
+            for i in range(0, n, passes_per_window)]

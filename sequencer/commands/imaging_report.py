@@ -124,8 +124,8 @@ def imaging_series(path: str, *, address: str | None = None, maps_out: str | Non
         series = night.series_from_moments(moments, columns.kind, layout)
         written = None
         if maps_out is not None:
-            written = _write_window_maps(night.window_maps(night.pass_maps(stack, columns.kind, layout),
-                                                           passes_per_window), maps_out, passes_per_window)
+            written = _write_window_maps(night.window_maps(stack, columns.kind, layout, passes_per_window),
+                                         maps_out, passes_per_window, stack.shape[1:])
     rows = []
     t = columns.t_s
     for p, s, v, c in zip(series.passes, series.normalised, series.nonseparability, series.centroid_px):
@@ -141,13 +141,15 @@ def imaging_series(path: str, *, address: str | None = None, maps_out: str | Non
     return out
 
 
-def _write_window_maps(maps, out: str, passes_per_window: int) -> str:
-    """Write (W, 4, rows, cols) window maps to ``out``/stokes, one window in memory at a time."""
+def _write_window_maps(maps: list, out: str, passes_per_window: int, shape: tuple[int, int]) -> str:
+    """Write the window maps (each lazy (4, rows, cols)) to ``out``/stokes, one window in memory at
+    a time."""
     import h5py
 
-    n, _, rows, cols = maps.shape
+    rows, cols = shape
+    n = len(maps)
     with h5py.File(out, "w-") as f:
-        d = f.create_dataset("stokes", shape=maps.shape, dtype="f8", chunks=(1, 1, rows, cols),
+        d = f.create_dataset("stokes", shape=(n, 4, rows, cols), dtype="f8", chunks=(1, 1, rows, cols),
                              compression="gzip")
         d.attrs["units"] = "ADU"
         d.attrs["axes"] = "window, Stokes parameter S0..S3, row (y), column (x)"
