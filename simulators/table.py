@@ -20,19 +20,17 @@ import numpy as np
 from lightloom.drivers.interfaces import Device
 from lightloom.sequencer.lang.bench import Bench
 from lightloom.sequencer.optics.analyzer import (
-    CONVERTER, CONVERTER_ANGLE, CONVERTER_IN, CONVERTER_OUT, HWP, QWP, ROTATOR,
+    CONVERTER, CONVERTER_IN, CONVERTER_OUT,
     park_settings, port_operators, probabilities,
 )
 from lightloom.sequencer.plan.tablemodel import analyzer_model, port_models
+from lightloom.sequencer.model.elements import COLUMN
+from lightloom.sequencer.model.vocabulary import STAGE_ELEMENTS
 from lightloom.simulators.clock import SimClock
 from lightloom.simulators.devices import (
     SimActuator, SimPhotonCounter, SimPowerMeter, SimRotationStage, SimShutter,
 )
 from lightloom.simulators.faults import FaultInjector
-
-ROLE_INDEX = {"quarter_wave_plate": QWP, "half_wave_plate": HWP, "converter_angle": CONVERTER_ANGLE,
-              "image_rotator": ROTATOR}
-
 
 @dataclass(frozen=True)
 class Drift:
@@ -92,7 +90,7 @@ class SimulatedTable:
         self.converter: SimActuator | None = None
         self.shutter: SimShutter | None = None
         roles = bench.roles
-        by_role = {getattr(roles, r): i for r, i in ROLE_INDEX.items() if getattr(roles, r)}
+        by_role = {getattr(roles, r): COLUMN[r] for r in STAGE_ELEMENTS if getattr(roles, r)}
         for (name, spec), seed in zip(bench.devices.items(), device_seeds):
             rng = np.random.default_rng(seed)
             self.devices[name] = self._make(name, spec, rng, sim)

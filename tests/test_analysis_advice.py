@@ -164,6 +164,20 @@ def test_spatial_element_angles_change_the_fidelity_no_faster_than_the_lipschitz
             assert slope.max() <= adv.LIPSCHITZ_PER_RAD + 1e-6
 
 
+def test_coset_angles_change_the_fidelity_no_faster_than_half_per_radian() -> None:
+    # The best-local certificate searches two Poincare-sphere rotation angles with |dF/d angle| <= 1/2.
+    for _ in range(4):
+        rho, t = random_density(1), random_ket()
+        r, tt = adv.bloch_coefficients(rho), adv.bloch_coefficients(density(t))
+        base = adv._align_s1_to(adv._spatial_schmidt_axis(t))
+        a = np.linspace(0, 2 * np.pi, 4001)
+        fixed = np.full_like(a, RNG.uniform(0, np.pi))
+        for rows in (np.column_stack([a / 2, fixed * 2]), np.column_stack([fixed, a])):
+            f = adv._best_polarization_value(r, tt, adv._coset_rotations(base, rows))
+            step = np.abs(np.diff(rows, axis=0)).sum(axis=1)
+            assert (np.abs(np.diff(f)) / step).max() <= 0.5 + 1e-6
+
+
 def test_elements_that_cannot_reach_the_local_optimum_say_so_with_a_certified_bound() -> None:
     # Target H (x) l+, source H (x) an elliptical spatial mode: a rotator can turn the mode but the
     # converter-then-rotator pair only brings linear modes to l+, so the lab falls short of 1.

@@ -16,6 +16,7 @@ from lightloom.sequencer.cli import main
 from lightloom.sequencer.optics.states import JOINT_KETS, partial_trace
 from lightloom.sequencer.optics.stokes import stokes_from_density
 from lightloom.sequencer.storage.store import load_run
+from legacy_files import make_legacy_runfile
 
 
 def _run(tmp_path: Path, protocol: str, bench: str, name: str = "run.h5") -> Path:
@@ -158,3 +159,18 @@ def test_a_run_stopped_part_way_is_analysed_from_what_it_recorded(tmp_path: Path
     truth = load_bench("sim").simulation.source.density()
     rho = np.array(doc["density_matrix"]["real"]) + 1j * np.array(doc["density_matrix"]["imag"])
     assert qutip.fidelity(qutip.Qobj(rho), qutip.Qobj(truth)) ** 2 > 0.999  # qutip root fidelity, squared
+
+
+def test_a_run_file_in_the_earlier_layout_analyses_the_same(tmp_path: Path, capsys) -> None:
+    # Earlier versions kept the port layout and gains in an untyped `extra_json` and the steps in
+    # /plan: such a file alone (no journal) must give the same analysis.
+    path = _run(tmp_path, "joint-16", "sim")
+    capsys.readouterr()
+    assert main(["analyze", str(path), "--json", "--bootstrap", "20"]) == 0
+    now = json.loads(capsys.readouterr().out)
+    header = load_run(path).header
+    assert len(set(header.port_gains)) > 1  # the sim bench calibrates unequal gains: they matter here
+    path.with_name(path.name + ".journal").unlink()
+    make_legacy_runfile(path, header)
+    assert main(["analyze", str(path), "--json", "--bootstrap", "20"]) == 0
+    assert json.loads(capsys.readouterr().out) == now

@@ -90,7 +90,7 @@ def polarization_projections(bench: Bench) -> np.ndarray:
     for step in plan.steps:
         if step.kind != "measure" or step.repeat_index:
             continue
-        u = polarization_unitary(truth, np.array(step.settings)[None])[0]
+        u = polarization_unitary(truth, step.settings.as_vector()[None])[0]
         for label, port in zip(step.port_labels[:2], "HV"):
             out.append(np.linalg.norm(kraus["HV".index(port)] @ u @ POLARIZATION_KETS[label]) ** 2)
     return np.array(out)
@@ -106,7 +106,7 @@ def spatial_projections(bench: Bench) -> np.ndarray:
     for step in plan.steps:
         if step.kind != "measure" or step.repeat_index:
             continue
-        u = spatial_unitary(truth, np.array(step.settings)[None])[0]
+        u = spatial_unitary(truth, step.settings.as_vector()[None])[0]
         for label, port in zip(step.port_labels, ports):
             out.append(np.linalg.norm(kraus["hv".index(port)] @ u @ SPATIAL_KETS[label]) ** 2)
     return np.array(out)

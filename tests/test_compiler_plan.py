@@ -21,10 +21,13 @@ K = StageKinematics(20.0, 50.0, 0.2, 0.05, -360.0, 360.0, 0.002)
 MODEL = AnalyzerModel(PlateModel(90, 0.3), PlateModel(180, -0.2), ConverterModel(90, 45, 0.1, False),
                       RotatorModel(0.1), 0.0, 1.0)
 FOUR = tuple(PortModel(f"pm_{s}{p}", s, p) for s in "hv" for p in "HV")
+# A table with both plates, a fixed mode converter and an image rotator (no converter_angle stage).
+STAGES = ("quarter_wave_plate", "half_wave_plate", "image_rotator")
+PRESENT = frozenset(STAGES + ("mode_converter",))
 
 
 def _table(ports=FOUR, name="four") -> TableModel:
-    return TableModel(name, MODEL, ports, (True, True, True, False, True), {0: K, 1: K, 4: K}, 0.4, 0.05, 0.002)
+    return TableModel(name, MODEL, ports, PRESENT, {e: K for e in STAGES}, 0.4, 0.05, 0.002)
 
 
 def _joint(pols="HVDARL", sps=("h", "v", "d", "a", "l+", "l-")) -> list[Request]:
@@ -64,7 +67,7 @@ def test_every_port_measures_the_projector_its_label_names() -> None:
     kets = {f"{p},{s}": np.kron(POLARIZATION_KETS[p], SPATIAL_KETS[s]) for p in "HVDARL" for s in SPATIAL_KETS}
     seen = set()
     for step in _measure(plan):
-        ops = port_operators(MODEL, FOUR, np.array([step.settings]))[0]
+        ops = port_operators(MODEL, FOUR, step.settings.as_vector()[None])[0]
         for label, op in zip(step.port_labels, ops):
             assert abs(probabilities(kets[label], op) - 1.0) < 1e-9
             seen.add(label)
@@ -120,7 +123,7 @@ def test_negative_moves_approach_from_the_positive_side() -> None:
 
 def test_limit_violations_are_reported() -> None:
     tight = StageKinematics(20.0, 50.0, 0.2, 0.05, 0.0, 10.0, 0.0)
-    table = TableModel("tight", MODEL, FOUR, (True, True, True, False, True), {0: tight, 1: tight, 4: tight}, 0.4)
+    table = TableModel("tight", MODEL, FOUR, PRESENT, {e: tight for e in STAGES}, 0.4)
     plan = _compile(table, _joint())
     assert plan.violations and "outside its travel" in plan.violations[0]
 

@@ -248,9 +248,19 @@ def test_rotation_stage_without_limits_is_refused(tmp_path: Path) -> None:
     assert "missing key 'limits' in devices.stage" in err.message and err.line == 6
 
 
-def test_every_bench_file_names_itself_even_when_extending(tmp_path: Path) -> None:
-    err = bench_error("extends: sim\nwavelength_nm: 800\n", tmp_path)
-    assert (err.line, err.message) == (1, "missing key 'bench' in the bench file; expected the bench's name")
+def test_a_bench_that_extends_another_takes_its_name_unless_it_gives_one(tmp_path: Path) -> None:
+    overlay = tmp_path / "brighter.yaml"
+    overlay.write_text("extends: sim\nsimulation:\n  source: {power: 2.0e-3}\n")
+    bench = load_bench(overlay)
+    assert bench.name == "sim" and bench.simulation.source.power_w == 2.0e-3
+    assert bench.extends and bench.source_path == str(overlay)
+    overlay.write_text("bench: brighter\nextends: sim\nsimulation:\n  source: {power: 2.0e-3}\n")
+    assert load_bench(overlay).name == "brighter"
+
+
+def test_a_bench_without_extends_must_name_itself(tmp_path: Path) -> None:
+    err = bench_error("wavelength_nm: 800\n", tmp_path)
+    assert err.line == 1 and err.message.startswith("missing key 'bench' in the bench file; expected the bench's name")
 
 
 def test_a_protocol_given_as_bench_is_recognised(tmp_path: Path) -> None:

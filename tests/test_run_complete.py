@@ -87,7 +87,7 @@ def assert_each_step_once(data: RunData) -> None:
     for row, index in enumerate(r.step_index):
         step = plan.steps[int(index)]
         assert r.kind[row] == step.kind
-        np.testing.assert_array_equal(r.commanded[row], np.array(step.settings))
+        np.testing.assert_array_equal(r.commanded[row], step.settings.as_vector())
 
 
 def assert_operators_psd(data: RunData, n_ports: int) -> None:

@@ -37,13 +37,14 @@ def test_mean_readings_match_port_probabilities_times_power(tmp_path: Path) -> N
     power = bench.simulation.source.power_w * (1 - bench.simulation.table.reference_fraction)
     for step in [s for s in plan.steps if s.kind == "measure"][::4]:
         for i, stage in table.stage_of.items():
-            for angle in (step.settings[i] - 1.0, step.settings[i]):  # approach from below (backlash)
+            target = step.settings.as_vector()[i]
+            for angle in (target - 1.0, target):  # approach from below (backlash)
                 stage.move_to_deg(angle)
                 stage.wait_settled(60)
-        table.converter.set_state("in" if step.settings[2] == 1.0 else "out")
+        table.converter.set_state(step.settings.mode_converter)
         table.converter.wait_settled(60)
         # independent computation: the optics model at the commanded settings with the true table
-        expected = power * probabilities(rho, port_operators(truth, ports, np.array([step.settings]))[0])
+        expected = power * probabilities(rho, port_operators(truth, ports, step.settings.as_vector()[None])[0])
         readings = np.array([[table.devices[p.name].read_power_w(0.2) for p in ports] for _ in range(60)])
         mean, sem = readings.mean(axis=0), readings.std(axis=0, ddof=1) / np.sqrt(len(readings))
         assert np.all(np.abs(mean - expected) < 5 * sem + 1e-12), (step.label, mean, expected)

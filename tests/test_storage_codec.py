@@ -16,6 +16,7 @@ from lightloom.sequencer.storage.codec import (
     decode_header, decode_rows, encode_event, encode_header, encode_reading, frame, scan_frames,
     table_from_rows,
 )
+from legacy_files import legacy_header_json
 from test_storage_records import ELEMENTS, PORTS, make_header, make_reading
 
 LAYOUT = ReadingLayout(len(ELEMENTS), len(PORTS), 4)
@@ -133,9 +134,9 @@ def test_scan_of_garbage_after_records_is_a_tail():
     assert scan.end == len(raw) and scan.damage.intact_after == 0
 
 
-def test_journal_header_written_with_the_old_step_list_key_still_decodes():
-    # Earlier versions named the header's step list "plan_json"; their journals must stay readable.
-    payload = json.loads(encode_header(make_header()))
-    payload["header"]["plan_json"] = payload["header"].pop("steps_json")
+def test_journal_header_written_by_an_earlier_version_still_decodes():
+    # Earlier versions named the header's step list "plan_json" and kept the set-up in "extra".
+    payload = {"journal_format": 1, "header": legacy_header_json(make_header())}
+    assert "plan_json" in payload["header"] and "extra" in payload["header"]
     fmt, header = decode_header(json.dumps(payload).encode("utf-8"))
     assert header == make_header() and fmt == 1

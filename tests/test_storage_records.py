@@ -12,6 +12,7 @@ import pytest
 from lightloom.sequencer.storage import (
     FLAG_DRIFT, FLAG_RETRIED, Event, Reading, ReadingTable, RunHeader,
 )
+from lightloom.sequencer.model.records import PortLayout, RunSources
 
 ELEMENTS = ("quarter_wave_plate", "half_wave_plate", "mode_converter", "converter_angle",
             "image_rotator")
@@ -35,7 +36,10 @@ def make_header(steps_total: int = 100, *, target: bool = True, ports=PORTS, nam
         simulated=True, analyzes=("polarization", "spatial"), element_names=ELEMENTS,
         port_names=tuple(ports), port_units="W", dimension=4, basis_labels=BASIS,
         steps_total=steps_total, steps_json=json.dumps([{"step": i} for i in range(3)]),
-        target_state=target_state, extra={"port_labels": {"det_hh": "H,h"}, "note": "ünïcode"},
+        ports=tuple(PortLayout(BASIS[i % 4], "hv"[i % 4 // 2], "HV"[i % 2], 1.0 + 0.01 * i)
+                    for i in range(len(ports))),
+        sources=RunSources("joint16", "/data/ünïcode/joint16.yaml", "sim", "sim"),
+        target_state=target_state, target_label="Φ+ ünïcode", reference_device="ref", wavelength_nm=808.0,
     )
 
 
@@ -94,9 +98,14 @@ def test_header_rejects_unknown_analyzer():
         replace(make_header(), analyzes=("orbital",))
 
 
-def test_header_rejects_extra_that_is_not_json():
-    with pytest.raises(ValueError, match="JSON"):
-        replace(make_header(), extra={"x": object()})
+def test_header_rejects_a_port_layout_that_does_not_match_the_ports():
+    with pytest.raises(ValueError, match="port layouts"):
+        replace(make_header(), ports=make_header().ports[:2])
+
+
+def test_header_rejects_a_single_factor_target_that_is_not_2x2():
+    with pytest.raises(ValueError, match="factor_target_state"):
+        replace(make_header(), factor_target_state=np.eye(4))
 
 
 def test_header_json_dict_round_trips_exactly():

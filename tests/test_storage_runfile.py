@@ -16,6 +16,7 @@ import pytest
 import lightloom.sequencer.storage.runfile as runfile_module
 from lightloom.sequencer.errors import StorageError
 from lightloom.sequencer.storage import Event, ReadingTable, read_runfile, write_runfile
+from legacy_files import make_legacy_runfile
 from test_storage_records import ELEMENTS, PORTS, make_header, make_reading
 
 REPO = Path(__file__).resolve().parents[1]
@@ -58,7 +59,7 @@ def test_file_describes_itself_in_attributes(tmp_path):
         assert f.attrs["steps_done"] == 12 and f.attrs["steps_total"] == 100
         assert f.attrs["updated_utc"] == "2026-03-04T06:00:00+00:00"
         assert list(f.attrs["basis_labels"]) == ["H,h", "H,v", "V,h", "V,v"]
-        assert json.loads(f.attrs["extra_json"])["note"] == "ünïcode"
+        assert json.loads(f.attrs["setup_json"])["target_label"] == "Φ+ ünïcode"
         r = f["readings"]
         assert list(r["commanded"].attrs["element_names"]) == list(ELEMENTS)
         assert list(r["commanded"].attrs["units"])[1:3] == [
@@ -189,3 +190,24 @@ def test_file_written_with_the_old_step_list_name_still_opens(tmp_path):
         f.move("steps", "plan")
     data = read_runfile(path)
     assert data.header == make_header() and data.status == "complete"
+
+
+def test_file_written_with_the_old_untyped_header_still_opens(tmp_path):
+    path = tmp_path / "run.h5"
+    _write(path, status="complete")
+    make_legacy_runfile(path, make_header())
+    with h5py.File(path, "r") as f:
+        assert "extra_json" in f.attrs and "plan" in f and "steps" not in f
+    assert read_runfile(path).header == make_header()
+
+
+def test_old_header_without_its_port_layout_is_refused_not_guessed(tmp_path):
+    path = tmp_path / "run.h5"
+    _write(path)
+    make_legacy_runfile(path, make_header())
+    with h5py.File(path, "r+") as f:
+        extra = json.loads(f.attrs["extra_json"])
+        del extra["port_gain"]
+        f.attrs["extra_json"] = json.dumps(extra)
+    with pytest.raises(StorageError, match="port_gain"):
+        read_runfile(path)

@@ -136,8 +136,7 @@ def _drift_factor(run: RunData, ref_bg: np.ndarray, use_complete_sum: bool, gain
 
 
 def _complete_ports(run: RunData) -> bool:
-    extra = run.header.extra
-    return complete_port_set(list(zip(extra.get("port_sorter", []), extra.get("port_splitter", []))))
+    return complete_port_set([(p.sorter_port, p.splitter_port) for p in run.header.ports])
 
 
 def _spread_model(values: np.ndarray, groups: np.ndarray, bg_std: float) -> tuple[float, float, str]:
@@ -169,7 +168,7 @@ def prepare(run: RunData, *, normalize: bool = False, operators: np.ndarray | No
     if not meas.any():
         raise AnalysisError("the run has no measure readings yet; wait for the first setting to be measured")
     counts = h.port_units == "counts"
-    gains = np.asarray(h.extra.get("port_gain") or [1.0] * len(h.port_names), dtype=float)
+    gains = h.port_gains
     complete = _complete_ports(run)
     bg, bg_std, ref_bg, bg_info = _background(run)
     drift, drift_info = _drift_factor(run, ref_bg, complete, gains)
@@ -354,10 +353,7 @@ def target_of(run: RunData) -> np.ndarray | None:
     h = run.header
     if len(h.analyzes) == 2:
         return None if h.target_state is None else np.asarray(h.target_state)
-    t2 = h.extra.get("target_state_2x2")
-    if t2:
-        return np.asarray(t2["real"]) + 1j * np.asarray(t2["imag"])
-    return None
+    return None if h.factor_target_state is None else np.asarray(h.factor_target_state)
 
 
 def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
@@ -389,7 +385,7 @@ def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
         out["fully_entangled_fraction"] = vs(est.figures["fully_entangled_fraction"])
     if "fidelity" in est.figures:
         out["fidelity"] = vs(est.figures["fidelity"])
-        out["target"] = run.header.extra.get("target_label")
+        out["target"] = run.header.target_label
     if est.closest_mode is not None:
         name, f, s = est.closest_mode
         out["closest_vector_mode"] = {"name": name, "fidelity": {"value": f, "std": s}}

@@ -10,7 +10,14 @@ from rich.console import Console
 
 
 def add_parser(sub) -> None:
-    p = sub.add_parser("analyze", help="reconstruct the state of a run (complete, interrupted or still running)")
+    p = sub.add_parser(
+        "analyze", help="reconstruct the state of a run (complete, interrupted or still running)",
+        description=(
+            "Reconstruct the state measured in a run file (finished, stopped or still running) with error"
+            " bars: density matrix, purity, concurrence, Stokes parameters and fidelity to the protocol's"
+            " target, as tables, as JSON (--json) or as figures (--plots DIR)."
+        ),
+    )
     p.add_argument("file", help="run file (FILE.h5) or its journal")
     p.add_argument("--json", action="store_true", help="print the result as JSON")
     p.add_argument("--plots", metavar="DIR", help="write PNG figures into DIR")

@@ -101,7 +101,7 @@ def _read_run(path: Path) -> _Run:
     except Exception as exc:  # h5py and numpy raise many kinds on a file that is not ours
         raise InputError(f"not a lightloom run file ({type(exc).__name__}: {exc})", str(path), None) from None
     header = data.header
-    where = header.extra.get("protocol_path") or f"<protocol stored in {path}>"
+    where = header.sources.protocol_path or f"<protocol stored in {path}>"
     protocol = parse_protocol(header.protocol_text, where)
     if protocol.scan is None:
         raise InputError(
@@ -149,7 +149,7 @@ def _base_bench(option: str | None, first: _Run, out: Path):
     header = first.data.header
     spec = option
     if spec is None:
-        spec = header.extra.get("bench_spec") or header.extra.get("bench_path")
+        spec = header.sources.bench_spec or header.sources.bench_path
         if not spec:
             raise UsageError(f"{first.path} does not say which bench it ran on; give --bench")
     try:

@@ -3,20 +3,58 @@
 from __future__ import annotations
 
 import argparse
-import tempfile
 import time
 from pathlib import Path
 
 import numpy as np
 from rich.console import Console
 
+DEFAULT_FOLDER = "lightloom-demo"
+RUN_NAME = "demo-run.h5"
+FIGURES = "figures"
+# Everything a demo writes in its folder; a new demo replaces exactly these and nothing else.
+DEMO_FILES = (RUN_NAME, RUN_NAME + ".journal", "demo-run.log")
+DEMO_FIGURES = ("density_matrix.png", "poincare.png", "reference.png")
+
 
 def add_parser(sub) -> None:
-    p = sub.add_parser("demo", help="simulate a joint spin-orbit tomography of a vector beam and analyse it (under a minute)")
-    p.add_argument("--out", metavar="DIR", help="folder for the run file, log and figures (default: a new temporary folder)")
+    p = sub.add_parser(
+        "demo",
+        help="simulate a joint spin-orbit tomography of a vector beam and analyse it (under a minute)",
+        description=(
+            "Run a complete measurement on a simulated table (a radially polarized vector beam with small"
+            f" errors, protocol joint-36 on bench sim) and analyse it. The run file, its journal and log and"
+            f" the figures go to one folder, ./{DEFAULT_FOLDER}/ unless --out says otherwise; a new demo"
+            " replaces the previous demo's files there and touches nothing else."
+        ),
+    )
+    p.add_argument("--out", metavar="DIR", default=DEFAULT_FOLDER,
+                   help=f"folder for the run file, log and figures (default ./{DEFAULT_FOLDER}/, reused by every demo)")
     p.add_argument("--protocol", default="joint-36", help="built-in protocol to run (default joint-36)")
     p.add_argument("--bench", default="sim", help="simulated bench (default sim)")
     p.set_defaults(handler=run)
+
+
+def prepare_folder(folder: Path) -> None:
+    """Create ``folder``, or clear the previous demo's files from it (only those: other files stay).
+
+    Raises
+    ------
+    UsageError
+        When ``folder`` is an existing file, or a previous demo file cannot be removed.
+    """
+    from lightloom.sequencer.errors import UsageError
+
+    if folder.exists() and not folder.is_dir():
+        raise UsageError(f"{folder} is a file, not a folder; give the demo a folder with --out DIR")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        for name in DEMO_FILES:
+            (folder / name).unlink(missing_ok=True)
+        for name in DEMO_FIGURES:
+            (folder / FIGURES / name).unlink(missing_ok=True)
+    except OSError as exc:
+        raise UsageError(f"cannot prepare the demo folder {folder}: {exc.strerror or exc}; choose another --out") from None
 
 
 def run(args: argparse.Namespace) -> int:
@@ -32,11 +70,10 @@ def run(args: argparse.Namespace) -> int:
     bench = load_bench(args.bench)
     if not bench.is_simulated:
         raise UsageError(f"the demo runs on a simulated bench; '{args.bench}' has no simulation section")
-    folder = Path(args.out) if args.out else Path(tempfile.mkdtemp(prefix="lightloom-demo-"))
-    folder.mkdir(parents=True, exist_ok=True)
-    out = folder / "demo-run.h5"
-    if out.exists():
-        raise UsageError(f"{out} exists already; choose another --out folder")
+    folder = Path(args.out)
+    prepare_folder(folder)
+    out = folder / RUN_NAME
+    console.print(f"files go to {folder.resolve()}/ (a new demo replaces them)", highlight=False, markup=False)
     console.print(
         "[bold]lightloom demo[/bold]: a radially polarized vector beam from a segmented wave plate with small "
         f"errors, analysed on the simulated table '{bench.name}' with protocol {args.protocol}."
@@ -60,9 +97,14 @@ def run(args: argparse.Namespace) -> int:
     try:
         from lightloom.sequencer.commands.analyze import _plots
 
-        for p in _plots(data, est, str(folder / "figures")):
-            console.print(f"  figure: {p}", highlight=False)
+        figures = list(_plots(data, est, str(folder / FIGURES)))
     except UsageError as exc:
+        figures = []
         console.print(f"  (no figures: {exc})", highlight=False, markup=False)
-    console.print(f"done in {time.monotonic() - t0:.1f} s; files in {folder}", highlight=False)
+    console.print(f"done in {time.monotonic() - t0:.1f} s; wrote in {folder.resolve()}/:", highlight=False,
+                  markup=False)
+    written = [folder / name for name in DEMO_FILES if (folder / name).exists()] + [Path(p) for p in figures]
+    for path in written:
+        console.print(f"  {path}", highlight=False, markup=False)
+    console.print(f"next: lightloom analyze {out} --json", highlight=False, markup=False)
     return 0

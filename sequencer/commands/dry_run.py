@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import sys
 from typing import Any
 
@@ -80,7 +79,6 @@ def run(args: argparse.Namespace) -> int:
 
     from lightloom.sequencer.lang.bench import load_bench
     from lightloom.sequencer.lang.protocol import load_protocol
-    from lightloom.sequencer.optics.analyzer import CONVERTER
     from lightloom.sequencer.plan.purpose import plan_determination
     from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
     from lightloom.sequencer.plan.timing import estimate_steps
@@ -119,7 +117,7 @@ def run(args: argparse.Namespace) -> int:
                 {
                     "index": s.index, "kind": s.kind, "pass": s.pass_index, "point": s.point_index,
                     "repeat": s.repeat_index, "label": s.label, "port_labels": list(s.port_labels),
-                    "settings": {n: (None if math.isnan(v) else v) for n, v in zip(plan.element_names, s.settings)},
+                    "settings": dict(zip(plan.element_names, s.settings.as_list())),
                     "dwell_s": s.dwell_s, "seconds": round(t, 4),
                 }
                 for s, t in zip(plan.steps, est.step_seconds)
@@ -129,8 +127,9 @@ def run(args: argparse.Namespace) -> int:
         return 2 if plan.violations else 0
     console = Console(highlight=False)
     # Only the elements this bench has get a column, so that the table fits 80 columns.
-    present = [i for i in range(len(plan.element_names))
-               if any(not math.isnan(s.settings[i]) for s in plan.steps)]
+    used = {n for s in plan.steps for n in s.settings.stage_angles()}
+    used |= {"mode_converter" for s in plan.steps if s.settings.mode_converter is not None}
+    present = [i for i, name in enumerate(plan.element_names) if name in used]
     t = Table(title=f"{protocol.name} on {bench.name} ({plan.order} order)", box=box.SIMPLE_HEAD,
               pad_edge=False, title_justify="left")
     t.add_column("step", justify="right", no_wrap=True)
@@ -141,15 +140,12 @@ def run(args: argparse.Namespace) -> int:
     t.add_column("s", justify="right", no_wrap=True)
     shown = plan.steps if args.all else plan.steps[:SHOWN_STEPS]
     for s, dt in zip(shown, est.step_seconds):
-        vals = []
-        for i in present:
-            v = s.settings[i]
-            if math.isnan(v):
-                vals.append("-")
-            elif i == CONVERTER:
-                vals.append("in" if v == 1.0 else "out")
-            else:
-                vals.append(f"{v:.2f}")
+        angles = s.settings.stage_angles()
+        vals = [
+            (s.settings.mode_converter or "-") if plan.element_names[i] == "mode_converter"
+            else (f"{angles[plan.element_names[i]]:.2f}" if plan.element_names[i] in angles else "-")
+            for i in present
+        ]
         t.add_row(str(s.index), s.label, *vals, f"{dt:.2f}")
     console.print(t)
     if len(shown) < len(plan.steps):

@@ -22,7 +22,14 @@ SERVED_HEADER = "# Written by `lightloom sim serve`"
 
 
 def add_parser(sub) -> None:
-    p = sub.add_parser("sim", help="simulated instruments (sim serve)")
+    p = sub.add_parser(
+        "sim", help="simulated instruments (sim serve)",
+        description=(
+            "Simulated instruments. `sim serve --bench BENCH` serves the devices of a simulated bench on"
+            " 127.0.0.1 through a SCPI-style text protocol and writes a bench file that reaches them with"
+            " the real VISA or serial drivers."
+        ),
+    )
     verbs = p.add_subparsers(dest="sim_verb", metavar="VERB")
     verbs.required = True
     s = verbs.add_parser("serve", help="serve a simulated bench's instruments on 127.0.0.1")

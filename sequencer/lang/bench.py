@@ -861,9 +861,11 @@ def _resolve(root: YNode, directory: Path | None, chain: tuple[tuple[str, str], 
     if "protocol" in sec.node and "bench" not in sec.node:
         raise InputError("this is a protocol file, not a bench; give it as PROTOCOL, and a bench with --bench",
                          sec.node.file, sec.key_line("protocol"))
-    # Every file names itself, so that an extending bench is never recorded under its base's name.
-    read_text(sec.require("bench", "the bench's name"), "bench")
+    # A bench that extends another inherits its name unless it gives one (an overlay can be three lines).
     node = sec.get("extends")
+    if node is None or sec.has("bench"):
+        read_text(sec.require("bench", "the bench's name (or extends: a base bench whose name it takes)"),
+                  "bench")
     if node is None:
         return _without(sec.node, "extends"), ()
     spec = read_text(node, "extends")

@@ -143,7 +143,11 @@ def number(
     value = node.value if isinstance(node, YScalar) else None
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         fail(f"{what}: expected a number{unit_phrase(unit)}, got {described(node)}", node)
-    x = float(value)
+    try:
+        x = float(value)
+    except OverflowError:
+        fail(f"{what}: {clip(str(value))} is beyond the range of numbers (about 1.8e308);"
+             f" expected an ordinary number{unit_phrase(unit)}", node)
     if not math.isfinite(x):
         fail(f"{what}: expected a finite number{unit_phrase(unit)}, got {described(node)}", node)
     bad = (
@@ -153,7 +157,7 @@ def number(
         or (le is not None and not x <= le)
     )
     if bad:
-        fail(f"{what} must be {range_phrase(unit, gt, ge, lt, le)}, got {node.text or fmt(x)}", node)
+        fail(f"{what} must be {range_phrase(unit, gt, ge, lt, le)}, got {clip(node.text) or fmt(x)}", node)
     return x
 
 
@@ -165,7 +169,7 @@ def integer(node: YNode, what: str, *, ge: int | None = None, le: int | None = N
     if isinstance(value, bool) or not isinstance(value, int):
         fail(f"{what}: expected a whole number, got {described(node)}", node)
     if (ge is not None and value < ge) or (le is not None and value > le):
-        fail(f"{what} must be a whole number {range_phrase('', ge=ge, le=le)}, got {value}", node)
+        fail(f"{what} must be a whole number {range_phrase('', ge=ge, le=le)}, got {clip(str(value))}", node)
     return value
 
 

@@ -289,11 +289,12 @@ def factor_target(node: YNode, factor: str, what: str) -> FactorTarget:
                 s_node,
             )
         ket = ket_from_stokes(s / length)
-        label = "stokes(" + ",".join(_written(item) for item in expect_seq(s_node, "stokes").items) + ")"
+        # Labels join factors with "," and bases with "/", so the components are separated by spaces.
+        label = "s(" + " ".join(_written(item) for item in expect_seq(s_node, "stokes").items) + ")"
     else:
         k_node = sec.require("ket", "[a, b]")
         ket = np.array(normalized_ket(k_node, sec.name("ket"), 2))
-        label = "ket(" + ",".join(_written(item) for item in expect_seq(k_node, "ket").items) + ")"
+        label = "ket(" + " ".join(_written(item) for item in expect_seq(k_node, "ket").items) + ")"
     if sec.has("label"):
         label = sec.text("label")
     return FactorTarget(factor, label, (complex(ket[0]), complex(ket[1])))
@@ -422,9 +423,10 @@ def _measure_scan(sec: Section, analyzes: tuple[str, ...]) -> tuple[list[Measure
     start = sec.number("from_deg", "deg", ge=-MAX_ANGLE_DEG, le=MAX_ANGLE_DEG)
     stop = sec.number("to_deg", "deg", ge=-MAX_ANGLE_DEG, le=MAX_ANGLE_DEG)
     step = sec.number("step_deg", "deg", gt=0.0, le=2 * MAX_ANGLE_DEG)
-    count = int(math.floor(abs(stop - start) / step + 1e-9)) + 1
+    span_steps = abs(stop - start) / step  # inf for a step below the smallest float ratio
+    count = int(math.floor(span_steps + 1e-9)) + 1 if span_steps < MAX_POINTS else MAX_POINTS + 1
     if count > MAX_POINTS:
-        fail(f"{sec.name('step_deg')}: the scan has {count} points, more than {MAX_POINTS}; use a larger step",
+        fail(f"{sec.name('step_deg')}: the scan has more than {MAX_POINTS} points; use a larger step",
              sec.node.entry("step_deg").value)  # type: ignore[union-attr]
     fixed: dict[str, float | str] = {}
     if sec.has("fixed"):

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 import re
+import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterator, Union
@@ -20,6 +21,14 @@ MAX_ALIASES = 20
 
 MAX_NODES = 10_000
 """Most nodes in the tree after alias expansion: stops "billion laughs" files early."""
+
+_LARGEST_FLOAT = int(sys.float_info.max)
+
+TOO_MANY_VALUES = (
+    f"too many values: this file holds more than {MAX_NODES} (keys and list items included), the most"
+    " lightloom reads; shorten the list (a protocol measures at most 10000 points: for long series use"
+    " measure.scan or sweep.passes)"
+)
 
 MAX_DEPTH = 50
 """Deepest nesting of mappings and sequences."""
@@ -122,10 +131,15 @@ class _Loader(yaml.SafeLoader):
         self.file = file
         self.alias_uses = 0
         self.depth = 0
+        self.composed = 0
 
     def compose_node(self, parent: Any, index: Any) -> Any:
         event = self.peek_event()
         line = event.start_mark.line + 1
+        self.composed += 1
+        if self.composed > MAX_NODES:
+            # Stop a huge file while composing, before PyYAML builds every node of it.
+            raise InputError(TOO_MANY_VALUES, self.file, line)
         if isinstance(event, yaml.AliasEvent):
             self.alias_uses += 1
             if self.alias_uses > MAX_ALIASES:
@@ -161,11 +175,11 @@ class _Converter:
         line = node.start_mark.line + 1
         self.nodes += 1
         if self.nodes > MAX_NODES:
-            raise InputError(
-                f"more than {MAX_NODES} values after expanding aliases; write the file without aliases",
-                self.file,
-                line,
-            )
+            if self.loader.alias_uses:
+                message = f"more than {MAX_NODES} values after expanding aliases; write the file without aliases"
+            else:
+                message = TOO_MANY_VALUES
+            raise InputError(message, self.file, line)
         if depth > MAX_DEPTH:
             raise InputError(
                 f"nesting deeper than {MAX_DEPTH} levels (a recursive alias?); write the values out",
@@ -236,6 +250,14 @@ class _Converter:
                 self.file,
                 line,
             ) from None
+        if isinstance(value, int) and not isinstance(value, bool) and abs(value) > _LARGEST_FLOAT:
+            digits = len(text.lstrip("+-").replace("_", ""))
+            raise InputError(
+                f"{clip(text)!r} ({digits} digits) is beyond the range of numbers lightloom can use"
+                " (about 1.8e308); write a value of ordinary size",
+                self.file,
+                line,
+            )
         if isinstance(value, float) and not math.isfinite(value):
             raise InputError(
                 f"{clip(text)!r} is not a finite number; NaN and infinities are not allowed, write a finite value",

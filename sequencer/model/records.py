@@ -2,16 +2,15 @@
 
 from __future__ import annotations
 
-import json
 import math
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass, field, fields
+from dataclasses import asdict, dataclass, fields
 from typing import Any
 
 import numpy as np
 
 from lightloom.sequencer.model.vocabulary import (
-    ANALYZERS, EVENT_KINDS, PORT_UNITS, READING_KINDS, RUN_STATUSES,
+    ANALYZERS, EVENT_KINDS, PORT_UNITS, READING_KINDS, RUN_STATUSES, SORTER_PORTS, SPLITTER_PORTS,
 )
 
 FORMAT_VERSION = 1
@@ -29,8 +28,6 @@ FLAG_NAMES: dict[int, str] = {
     FLAG_AFTER_BEAM_WAIT: "after beam wait",
 }
 
-MODE_CONVERTER_IN = 1.0
-MODE_CONVERTER_OUT = 0.0
 ELEMENT_UNITS: dict[str, str] = {
     "quarter_wave_plate": "deg",
     "half_wave_plate": "deg",
@@ -72,13 +69,52 @@ def _fields_equal(left: Any, right: Any) -> bool:
     return all(_same(getattr(left, f.name), getattr(right, f.name)) for f in fields(left))
 
 
+@dataclass(frozen=True)
+class PortLayout:
+    """One detector port: the projector it nominally measures, the outputs it sits behind, its gain.
+
+    ``label`` names the projector of the first setting (e.g. "H,h"); ``sorter_port`` (h | v) and
+    ``splitter_port`` (H | V) are None where the bench has no sorter or splitter in front of it;
+    ``gain`` is the calibrated relative port gain (1 = nominal).
+    """
+
+    label: str
+    sorter_port: str | None
+    splitter_port: str | None
+    gain: float = 1.0
+
+    def __post_init__(self) -> None:
+        if self.sorter_port not in (None, *SORTER_PORTS):
+            raise ValueError(f"sorter_port is {self.sorter_port!r}; expected one of {SORTER_PORTS} or None")
+        if self.splitter_port not in (None, *SPLITTER_PORTS):
+            raise ValueError(f"splitter_port is {self.splitter_port!r}; expected one of {SPLITTER_PORTS} or None")
+        object.__setattr__(self, "gain", float(self.gain))
+
+
+@dataclass(frozen=True)
+class RunSources:
+    """Where the protocol and the bench of a run came from.
+
+    ``*_spec`` as given on the command line (a built-in name or a path), ``*_path`` the file read,
+    made absolute when it was a file (so resume and calibrate work from any folder).
+    """
+
+    protocol_spec: str
+    protocol_path: str
+    bench_spec: str
+    bench_path: str
+
+
 @dataclass(frozen=True, eq=False)
 class RunHeader:
     """What a run is: written once when the run starts, checked again when it resumes.
 
     ``dimension`` is the joint polarization (x) spatial dimension (4) on which the
     measurement operators of every reading act, in the order of ``basis_labels``.
-    ``target_state`` is an optional d x d density matrix, ``extra`` any JSON-able dict.
+    ``ports`` describes each of ``port_names``; ``target_state`` is the protocol's joint
+    d x d target, ``factor_target_state`` its 2 x 2 target when it analyses one factor only,
+    ``target_label`` how the protocol named it. ``reference_device`` names the pick-off meter
+    (None without one), ``wavelength_nm`` is the bench's wavelength.
     """
 
     format_version: int
@@ -99,12 +135,18 @@ class RunHeader:
     basis_labels: tuple[str, ...]
     steps_total: int
     steps_json: str
+    ports: tuple[PortLayout, ...]
+    sources: RunSources
     target_state: np.ndarray | None = None
-    extra: dict[str, Any] = field(default_factory=dict)
+    factor_target_state: np.ndarray | None = None
+    target_label: str | None = None
+    reference_device: str | None = None
+    wavelength_nm: float | None = None
 
     def __post_init__(self) -> None:
         for name in ("analyzes", "element_names", "port_names", "basis_labels"):
             object.__setattr__(self, name, tuple(str(v) for v in getattr(self, name)))
+        object.__setattr__(self, "ports", tuple(self.ports))
         object.__setattr__(self, "simulated", bool(self.simulated))
         for name in ("format_version", "dimension", "steps_total"):
             object.__setattr__(self, name, int(getattr(self, name)))
@@ -115,48 +157,126 @@ class RunHeader:
             raise ValueError(f"port_units is {self.port_units!r}; expected one of {PORT_UNITS}")
         if not self.port_names:
             raise ValueError("port_names is empty; a run needs at least one detector port")
+        if len(self.ports) != len(self.port_names) or not all(isinstance(p, PortLayout) for p in self.ports):
+            raise ValueError(
+                f"ports holds {len(self.ports)} port layouts for {len(self.port_names)} port names; "
+                "expected one PortLayout per port"
+            )
+        if not isinstance(self.sources, RunSources):
+            raise ValueError(f"sources is {type(self.sources).__name__}; expected RunSources")
         if len(self.basis_labels) != self.dimension:
             raise ValueError(
                 f"basis_labels has {len(self.basis_labels)} labels for dimension {self.dimension}"
             )
-        if self.target_state is not None:
-            target = _frozen_array(self.target_state, np.complex128, 2, "target_state")
-            if target.shape != (self.dimension, self.dimension):
-                raise ValueError(
-                    f"target_state has shape {target.shape}; expected "
-                    f"({self.dimension}, {self.dimension})"
-                )
-            object.__setattr__(self, "target_state", target)
-        try:
-            object.__setattr__(self, "extra", json.loads(json.dumps(dict(self.extra))))
-        except (TypeError, ValueError) as exc:
-            raise ValueError(f"extra must be a JSON-able dict: {exc}") from exc
+        for name, size in (("target_state", self.dimension), ("factor_target_state", 2)):
+            value = getattr(self, name)
+            if value is None:
+                continue
+            target = _frozen_array(value, np.complex128, 2, name)
+            if target.shape != (size, size):
+                raise ValueError(f"{name} has shape {target.shape}; expected ({size}, {size})")
+            object.__setattr__(self, name, target)
+        if self.wavelength_nm is not None:
+            object.__setattr__(self, "wavelength_nm", float(self.wavelength_nm))
 
     __eq__ = _fields_equal
 
+    @property
+    def port_gains(self) -> np.ndarray:
+        """The calibrated gain of every port, in port order."""
+        return np.array([p.gain for p in self.ports], dtype=float)
+
+    def setup_json_dict(self) -> dict[str, Any]:
+        """The run set-up beyond the file's fixed attributes, as JSON-able plain data."""
+        return {
+            "ports": [asdict(p) for p in self.ports],
+            "sources": asdict(self.sources),
+            "target_label": self.target_label,
+            "factor_target_state": _complex_json(self.factor_target_state),
+            "reference_device": self.reference_device,
+            "wavelength_nm": self.wavelength_nm,
+        }
+
+    @staticmethod
+    def setup_from_json_dict(data: dict[str, Any]) -> dict[str, Any]:
+        """Inverse of :meth:`setup_json_dict`: the typed fields, as keyword arguments."""
+        return {
+            "ports": tuple(PortLayout(**p) for p in data["ports"]),
+            "sources": RunSources(**data["sources"]),
+            "target_label": data.get("target_label"),
+            "factor_target_state": _complex_array(data.get("factor_target_state")),
+            "reference_device": data.get("reference_device"),
+            "wavelength_nm": data.get("wavelength_nm"),
+        }
+
     def to_json_dict(self) -> dict[str, Any]:
-        """The header as JSON-able plain data (complex target as ``{"real", "imag"}`` lists)."""
-        out: dict[str, Any] = {f.name: getattr(self, f.name) for f in fields(self)}
+        """The header as JSON-able plain data (complex targets as ``{"real", "imag"}`` lists)."""
+        out: dict[str, Any] = {f.name: getattr(self, f.name) for f in fields(self) if f.name not in _SETUP_FIELDS}
         for name in ("analyzes", "element_names", "port_names", "basis_labels"):
             out[name] = list(out[name])
-        if self.target_state is not None:
-            out["target_state"] = {
-                "real": self.target_state.real.tolist(),
-                "imag": self.target_state.imag.tolist(),
-            }
+        out["target_state"] = _complex_json(self.target_state)
+        if out["target_state"] is None:
+            del out["target_state"]
+        out["setup"] = self.setup_json_dict()
         return out
 
     @classmethod
     def from_json_dict(cls, data: dict[str, Any]) -> RunHeader:
-        """Inverse of :meth:`to_json_dict`; raises KeyError or ValueError on a bad dict."""
+        """Inverse of :meth:`to_json_dict`, also for headers written before the set-up was typed
+        (an ``extra`` dict, a ``plan_json`` step list); raises KeyError or ValueError on a bad dict."""
         data = dict(data)
-        if "steps_json" not in data and "plan_json" in data:  # journals written before the rename
+        if "steps_json" not in data and "plan_json" in data:
             data["steps_json"] = data.pop("plan_json")
-        values = {f.name: data[f.name] for f in fields(cls) if f.name in data}
-        target = values.get("target_state")
-        if target is not None:
-            values["target_state"] = np.asarray(target["real"]) + 1j * np.asarray(target["imag"])
+        values = {f.name: data[f.name] for f in fields(cls) if f.name in data and f.name not in _SETUP_FIELDS}
+        values["target_state"] = _complex_array(values.get("target_state"))
+        if "setup" in data:
+            values.update(cls.setup_from_json_dict(data["setup"]))
+        else:
+            values.update(setup_from_legacy_extra(data["extra"], values["port_names"]))
         return cls(**values)
+
+
+_SETUP_FIELDS = frozenset(
+    {"ports", "sources", "factor_target_state", "target_label", "reference_device", "wavelength_nm"}
+)
+
+
+def _complex_json(value: np.ndarray | None) -> dict[str, Any] | None:
+    return None if value is None else {"real": value.real.tolist(), "imag": value.imag.tolist()}
+
+
+def _complex_array(value: Any) -> np.ndarray | None:
+    if value is None or isinstance(value, np.ndarray):
+        return value
+    return np.asarray(value["real"]) + 1j * np.asarray(value["imag"])
+
+
+def setup_from_legacy_extra(extra: dict[str, Any], port_names: Sequence[str]) -> dict[str, Any]:
+    """The typed set-up of a header written before it was typed (an untyped ``extra`` dict).
+
+    Such headers always carry the port layout (``port_labels``, ``port_sorter``,
+    ``port_splitter``, ``port_gain``); a missing key raises KeyError rather than guess.
+    """
+    n = len(port_names)
+    labels, sorter, splitter, gain = (
+        list(extra[k]) for k in ("port_labels", "port_sorter", "port_splitter", "port_gain")
+    )
+    if not (len(labels) == len(sorter) == len(splitter) == len(gain) == n):
+        raise ValueError(f"the stored port layout does not describe the {n} ports of the run")
+    target = extra.get("target_state_2x2")
+    return {
+        "ports": tuple(PortLayout(labels[i], sorter[i], splitter[i], gain[i]) for i in range(n)),
+        "sources": RunSources(
+            protocol_spec=str(extra.get("protocol_spec") or extra.get("protocol_path") or ""),
+            protocol_path=str(extra.get("protocol_path") or ""),
+            bench_spec=str(extra.get("bench_spec") or extra.get("bench_path") or ""),
+            bench_path=str(extra.get("bench_path") or ""),
+        ),
+        "target_label": extra.get("target_label"),
+        "factor_target_state": _complex_array(target) if target else None,
+        "reference_device": extra.get("reference_device"),
+        "wavelength_nm": extra.get("wavelength_nm"),
+    }
 
 
 @dataclass(frozen=True, eq=False)

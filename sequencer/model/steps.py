@@ -3,8 +3,9 @@
 from __future__ import annotations
 
 import json
-import math
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field, fields
+
+from lightloom.sequencer.model.elements import ElementSettings
 
 
 
@@ -12,9 +13,9 @@ from dataclasses import asdict, dataclass, field
 class Step:
     """One reading of every detector at one analyzer setting.
 
-    ``settings`` are the commanded element positions in ELEMENT_NAMES order (deg; the mode
-    converter 1.0 = in, 0.0 = out; NaN = element not on this bench). ``port_labels`` says which
-    projector each detector port nominally measures (the file stores the exact operators).
+    ``settings`` are the commanded element positions (unset where the bench has no such
+    element). ``port_labels`` says which projector each detector port nominally measures (the
+    file stores the exact operators).
     """
 
     index: int
@@ -22,7 +23,7 @@ class Step:
     pass_index: int
     point_index: int
     repeat_index: int
-    settings: tuple[float, ...]
+    settings: ElementSettings
     dwell_s: float
     label: str
     port_labels: tuple[str, ...]
@@ -49,10 +50,8 @@ class StepList:
 
     def to_json(self) -> str:
         """A canonical JSON text (NaN written as null), identical for identical step lists."""
-        d = asdict(self)
-        d["steps"] = [
-            {**s, "settings": [None if math.isnan(x) else x for x in s["settings"]]} for s in d["steps"]
-        ]
+        d = {f.name: getattr(self, f.name) for f in fields(self)}
+        d["steps"] = [{**_shallow(s), "settings": s.settings.as_list()} for s in self.steps]
         return json.dumps(d, sort_keys=True, separators=(",", ":"))
 
     @staticmethod
@@ -62,7 +61,7 @@ class StepList:
             Step(
                 **{
                     **s,
-                    "settings": tuple(math.nan if x is None else float(x) for x in s["settings"]),
+                    "settings": ElementSettings.from_vector(s["settings"]),
                     "port_labels": tuple(s["port_labels"]),
                 }
             )
@@ -77,3 +76,7 @@ class StepList:
                 "violations": tuple(d.get("violations", ())),
             }
         )
+
+
+def _shallow(step: Step) -> dict:
+    return {f.name: getattr(step, f.name) for f in fields(step)}

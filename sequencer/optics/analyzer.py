@@ -15,13 +15,15 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from lightloom.sequencer.model.elements import COLUMN, CONVERTER_IN_CODE, CONVERTER_OUT_CODE
 from lightloom.sequencer.model.vocabulary import ELEMENT_NAMES
 from lightloom.sequencer.optics import jones
 
 Complex = NDArray[np.complex128]
 
-QWP, HWP, CONVERTER, CONVERTER_ANGLE, ROTATOR = range(5)
-CONVERTER_IN, CONVERTER_OUT = 1.0, 0.0
+# Columns of a settings vector (n, 5) and the converter's codes, as model.elements defines them.
+QWP, HWP, CONVERTER, CONVERTER_ANGLE, ROTATOR = (COLUMN[name] for name in ELEMENT_NAMES)
+CONVERTER_IN, CONVERTER_OUT = CONVERTER_IN_CODE, CONVERTER_OUT_CODE
 
 
 @dataclass(frozen=True)

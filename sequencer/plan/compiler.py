@@ -29,9 +29,9 @@ from lightloom.sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, O
 from lightloom.sequencer.optics.stokes import stokes_from_density
 from lightloom.sequencer.optics.states import density
 from lightloom.sequencer.plan.ordering import PERIOD_DEG, order_settings
+from lightloom.sequencer.model.elements import COLUMN, ElementSettings
 from lightloom.sequencer.model.steps import StepList, Step
 
-STAGE_ELEMENTS = (QWP, HWP, CONVERTER_ANGLE, ROTATOR)
 # A run file holds its whole plan; beyond this a series belongs in several runs.
 MAX_STEPS = 200_000
 
@@ -43,8 +43,8 @@ class TableModel:
     name: str
     analyzer: AnalyzerModel
     ports: tuple[PortModel, ...]
-    present: tuple[bool, ...]  # per element of ELEMENT_NAMES: a device plays that role
-    kinematics: Mapping[int, StageKinematics]  # per stage element index
+    present: frozenset[str]  # the elements (ELEMENT_NAMES) a device plays on this bench
+    kinematics: Mapping[str, StageKinematics]  # per stage element present
     converter_switch_s: float = 0.0
     shutter_s: float = 0.0
     read_overhead_s: float = 0.0
@@ -90,6 +90,11 @@ class _FactorRegistry:
 
 
 def _partner(label: str) -> str | None:
+    """The orthogonal state's label: a named one (H -> V), or a Stokes target's negated vector."""
+    if label.startswith("s(") and label.endswith(")"):
+        parts = label[2:-1].split()
+        flipped = [p[1:] if p.startswith("-") else p if p.strip("0.+") == "" else "-" + p.lstrip("+") for p in parts]
+        return "s(" + " ".join(flipped) + ")"
     return ORTHOGONAL_NAME.get(label)
 
 
@@ -227,7 +232,7 @@ def _explicit_settings(table: TableModel, req: Request) -> np.ndarray:
         if name not in ELEMENT_NAMES:
             raise ProtocolError(f"unknown element '{key}'; expected one of {', '.join(ELEMENT_NAMES)}", None, req.line)
         i = ELEMENT_NAMES.index(name)
-        if not table.present[i]:
+        if name not in table.present:
             raise BenchError(f"the protocol sets {key} but bench '{table.name}' has no {name} role", None, req.line)
         if i == CONVERTER:
             s[i] = CONVERTER_IN if str(value) == "in" else CONVERTER_OUT
@@ -248,9 +253,8 @@ def _explicit_label(elements: Mapping[str, float | str]) -> str:
 
 def _park(table: TableModel) -> np.ndarray:
     s = np.full(len(ELEMENT_NAMES), math.nan)
-    for i in range(len(ELEMENT_NAMES)):
-        if table.present[i]:
-            s[i] = CONVERTER_OUT if i == CONVERTER else 0.0
+    for name in table.present:
+        s[COLUMN[name]] = CONVERTER_OUT if name == "mode_converter" else 0.0
     return s
 
 
@@ -261,7 +265,7 @@ def _target_settings(table, pp, spp, pol_reg, sp_reg, pol_port, sp_port) -> list
     if spp is not None:
         b = sp_reg.bases[spp[0]]
         ss = spatial_setting(b.ket, sp_port, model)
-        if model.mode_converter is not None and table.present[CONVERTER]:
+        if model.mode_converter is not None and "mode_converter" in table.present:
             base[CONVERTER] = CONVERTER_IN if ss.converter_in else CONVERTER_OUT
         elif ss.converter_in:
             raise OpticsError("this target needs the mode converter in the beam, but the bench has no mode_converter role")
@@ -334,21 +338,21 @@ def _expand_steps(
     def resolve(target: np.ndarray) -> np.ndarray:
         nonlocal position
         out = target.copy()
-        for i in STAGE_ELEMENTS:
-            if math.isnan(target[i]) or i not in table.kinematics:
+        for name, k in table.kinematics.items():
+            i = COLUMN[name]
+            if math.isnan(target[i]):
                 continue
-            k = table.kinematics[i]
-            out[i] = nearest_equivalent_deg(target[i], position[i], PERIOD_DEG[i], k)
+            out[i] = nearest_equivalent_deg(target[i], position[i], PERIOD_DEG[name], k)
             if not (k.min_deg - 1e-9 <= out[i] <= k.max_deg + 1e-9):
                 violations.append(
-                    f"{ELEMENT_NAMES[i]} at {out[i]:.3f} deg is outside its travel {k.min_deg:g}..{k.max_deg:g} deg"
+                    f"{name} at {out[i]:.3f} deg is outside its travel {k.min_deg:g}..{k.max_deg:g} deg"
                 )
         position = out
         return out
 
     def add(kind, pass_index, point_index, repeat_index, s, dwell, label, port_labels):
         steps.append(Step(len(steps), kind, pass_index, point_index, repeat_index,
-                          tuple(float(x) for x in s), float(dwell), label, tuple(port_labels)))
+                          ElementSettings.from_vector(s), float(dwell), label, tuple(port_labels)))
 
     n_ports = len(table.ports)
     for p in range(passes):

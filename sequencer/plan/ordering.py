@@ -13,7 +13,8 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from lightloom.sequencer.plan.kinematics import leg_times_s, nearest_equivalent_deg
-from lightloom.sequencer.optics.analyzer import CONVERTER, CONVERTER_ANGLE, HWP, QWP, ROTATOR
+from lightloom.sequencer.optics.analyzer import CONVERTER
+from lightloom.sequencer.model.elements import COLUMN
 from lightloom.sequencer.model.vocabulary import ORDERS
 
 if TYPE_CHECKING:
@@ -21,7 +22,9 @@ if TYPE_CHECKING:
 
 # Angles that give the same operator: plates and the converter stage repeat every 180 deg whatever
 # their retardance; the image rotator (a reflection) every 90 deg.
-PERIOD_DEG: dict[int, float] = {QWP: 180.0, HWP: 180.0, CONVERTER_ANGLE: 180.0, ROTATOR: 90.0}
+PERIOD_DEG: dict[str, float] = {
+    "quarter_wave_plate": 180.0, "half_wave_plate": 180.0, "converter_angle": 180.0, "image_rotator": 90.0,
+}
 
 
 def transition_time_s(a: np.ndarray, b: np.ndarray, table: "TableModel") -> float:
@@ -31,10 +34,11 @@ def transition_time_s(a: np.ndarray, b: np.ndarray, table: "TableModel") -> floa
     stages move.
     """
     legs: list[float] = []
-    for i, k in table.kinematics.items():
+    for name, k in table.kinematics.items():
+        i = COLUMN[name]
         if math.isnan(a[i]) or math.isnan(b[i]):
             continue
-        target = nearest_equivalent_deg(b[i], a[i], PERIOD_DEG[i], k)
+        target = nearest_equivalent_deg(b[i], a[i], PERIOD_DEG[name], k)
         for j, leg in enumerate(leg_times_s(a[i], target, k)):
             if j == len(legs):
                 legs.append(leg)

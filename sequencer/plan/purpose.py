@@ -8,6 +8,7 @@ from numpy.typing import NDArray
 from lightloom.sequencer.errors import ProtocolError
 from lightloom.sequencer.lang.protocol import Protocol
 from lightloom.sequencer.model.steps import StepList
+from lightloom.sequencer.model.vocabulary import ANALYZERS
 from lightloom.sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, AnalyzerModel, ConverterModel, PlateModel,
     PortModel, RotatorModel, port_operators,
@@ -16,12 +17,12 @@ from lightloom.sequencer.optics.determination import Determination, determinatio
 from lightloom.sequencer.optics.states import density
 from lightloom.sequencer.plan.compiler import TableModel
 
-FACTORS: tuple[str, str] = ("polarization", "spatial")
+FACTORS = ANALYZERS
 
 
 def plan_operators(plan: StepList, table: TableModel) -> NDArray[np.complex128]:
     """The per-port measurement operators (n, 4, 4) of the distinct settings of the plan's measure steps."""
-    rows = [step.settings for step in plan.steps if step.kind == "measure"]
+    rows = [step.settings.as_vector() for step in plan.steps if step.kind == "measure"]
     if not rows:
         return np.zeros((0, 4, 4), dtype=np.complex128)
     settings = np.unique(np.nan_to_num(np.array(rows, dtype=float), nan=0.0), axis=0)

@@ -16,6 +16,7 @@ from lightloom.sequencer.optics.analyzer import (
     ELEMENT_NAMES, AnalyzerModel, ConverterModel, PlateModel, PortModel, RotatorModel,
 )
 from lightloom.sequencer.model.steps import StepList
+from lightloom.sequencer.model.vocabulary import STAGE_ELEMENTS
 from lightloom.sequencer.lang.protocol import Protocol
 from lightloom.sequencer.plan.purpose import plan_determination, require_purpose
 
@@ -52,23 +53,20 @@ def port_models(bench: Bench, truth: bool = False) -> tuple[PortModel, ...]:
     )
 
 
-STAGE_ROLES = {0: "quarter_wave_plate", 1: "half_wave_plate", 3: "converter_angle", 4: "image_rotator"}
-
-
 def table_model(bench: Bench, truth: bool = False) -> TableModel:
     """Everything the compiler, the estimator of times and the runner need to know of ``bench``."""
     roles = bench.roles
     role_of = {name: getattr(roles, name) for name in ELEMENT_NAMES}
-    present = tuple(role_of[name] is not None for name in ELEMENT_NAMES)
-    kinematics: dict[int, StageKinematics] = {}
-    for index, role in STAGE_ROLES.items():
+    present = frozenset(name for name in ELEMENT_NAMES if role_of[name] is not None)
+    kinematics: dict[str, StageKinematics] = {}
+    for role in STAGE_ELEMENTS:
         device_name = role_of[role]
         if device_name is None:
             continue
         spec = bench.devices[device_name]
         lim = spec.limits
         assert lim is not None, "the bench loader guarantees limits for rotation stages"
-        kinematics[index] = StageKinematics(
+        kinematics[role] = StageKinematics(
             speed_deg_per_s=lim.speed_deg_per_s,
             acceleration_deg_per_s2=lim.acceleration_deg_per_s2,
             backlash_deg=spec.backlash_deg,

@@ -10,6 +10,7 @@ import numpy as np
 from lightloom.sequencer.plan.compiler import TableModel
 from lightloom.sequencer.plan.kinematics import nearest_equivalent_deg, path_time_s, path_travel_deg
 from lightloom.sequencer.optics.analyzer import CONVERTER, ELEMENT_NAMES
+from lightloom.sequencer.model.elements import COLUMN
 from lightloom.sequencer.plan.ordering import PERIOD_DEG, transition_time_s
 from lightloom.sequencer.model.steps import StepList
 
@@ -42,10 +43,10 @@ def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
     """
     times: list[float] = []
     motion = dwell = overhead = wait = 0.0
-    travel = {ELEMENT_NAMES[i]: 0.0 for i in table.kinematics}
-    stage_t = {ELEMENT_NAMES[i]: 0.0 for i in table.kinematics}
+    travel = {name: 0.0 for name in ELEMENT_NAMES if name in table.kinematics}
+    stage_t = dict(travel)
     switches = 0
-    prev = np.array(plan.steps[0].settings) if plan.steps else np.array([])
+    prev = plan.steps[0].settings.as_vector() if plan.steps else np.array([])
     shutter_open = False
     elapsed = 0.0
     pass_start_due = 0.0
@@ -59,7 +60,7 @@ def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
                 w = pass_start_due - elapsed
                 t += w
                 wait += w
-        cur = np.array(step.settings)
+        cur = step.settings.as_vector()
         if step.shutter_open != shutter_open:
             t += table.shutter_s
             overhead += table.shutter_s
@@ -67,12 +68,13 @@ def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
         m = transition_time_s(prev, cur, table)
         t += m
         motion += m
-        for i, k in table.kinematics.items():
+        for name, k in table.kinematics.items():
+            i = COLUMN[name]
             if math.isnan(prev[i]) or math.isnan(cur[i]):
                 continue
-            tgt = nearest_equivalent_deg(cur[i], prev[i], PERIOD_DEG[i], k)
-            travel[ELEMENT_NAMES[i]] += path_travel_deg(prev[i], tgt, k.backlash_deg)
-            stage_t[ELEMENT_NAMES[i]] += path_time_s(prev[i], tgt, k)
+            tgt = nearest_equivalent_deg(cur[i], prev[i], PERIOD_DEG[name], k)
+            travel[name] += path_travel_deg(prev[i], tgt, k.backlash_deg)
+            stage_t[name] += path_time_s(prev[i], tgt, k)
         if not (math.isnan(prev[CONVERTER]) or math.isnan(cur[CONVERTER])) and prev[CONVERTER] != cur[CONVERTER]:
             switches += 1
         t += step.dwell_s + table.read_overhead_s

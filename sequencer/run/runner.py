@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from typing import Callable, Protocol, Sequence, TypeVar
+from typing import Callable, Protocol, TypeVar
 
 import numpy as np
 
@@ -23,9 +23,8 @@ from lightloom.drivers.interfaces import Device, DiscreteActuator, PhotonCounter
 from lightloom.sequencer.plan.compiler import TableModel
 from lightloom.sequencer.errors import RunFault
 from lightloom.sequencer.plan.kinematics import approach_path
-from lightloom.sequencer.optics.analyzer import (
-    CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, complete_port_set, port_operators,
-)
+from lightloom.sequencer.optics.analyzer import complete_port_set, port_operators
+from lightloom.sequencer.model.elements import ElementSettings
 from lightloom.sequencer.model.steps import StepList, Step
 from lightloom.sequencer.model.records import (
     FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT, FLAG_RETRIED, Event, Reading,
@@ -50,7 +49,7 @@ class StopRequested(BaseException):
 class Rig:
     """The devices of a bench, by the part they play."""
 
-    stages: dict[int, RotationStage]
+    stages: dict[str, RotationStage]  # by the element each stage sets (STAGE_ELEMENTS)
     converter: DiscreteActuator | None
     shutter: Shutter
     detectors: tuple[PowerMeter | PhotonCounter, ...]
@@ -165,7 +164,7 @@ class Runner:
         self.frames_averaged = frames_averaged
         self._taken: dict[int, Frame] = {}
         self._beam = _BeamWatch()
-        self._positions: dict[int, float] = {}
+        self._positions: dict[str, float] = {}
         self._converter_state: str | None = None
         self._shutter_open: bool | None = None
         self._retried = False
@@ -262,8 +261,8 @@ class Runner:
             self._call(sh, "closing the shutter", sh.close_beam)
         self._shutter_open = open_
 
-    def _move(self, settings: Sequence[float]) -> None:
-        targets = {i: float(settings[i]) for i in self.rig.stages if not math.isnan(settings[i])}
+    def _move(self, settings: ElementSettings) -> None:
+        targets = {name: angle for name, angle in settings.stage_angles().items() if name in self.rig.stages}
         paths = {}
         for i, target in targets.items():
             here = self._positions.get(i)
@@ -274,8 +273,8 @@ class Runner:
             start = here if here is not None else math.inf
             paths[i] = approach_path(start, target, backlash)
         conv_target = None
-        if self.rig.converter is not None and not math.isnan(settings[CONVERTER]):
-            conv_target = "in" if settings[CONVERTER] == CONVERTER_IN else "out"
+        if self.rig.converter is not None and settings.mode_converter is not None:
+            conv_target = settings.mode_converter
             if conv_target == self._converter_state:
                 conv_target = None
         if conv_target is not None:
@@ -307,29 +306,32 @@ class Runner:
                 raise RunFault(f"device '{c.name}' reports state {state!r} after being set {conv_target!r}; check the actuator")
             self._converter_state = conv_target
 
-    def _readback(self, commanded: Sequence[float]) -> np.ndarray | None:
-        rb = np.full(len(ELEMENT_NAMES), math.nan)
-        for i, stage in self.rig.stages.items():
-            if math.isnan(commanded[i]):
+    def _readback(self, settings: ElementSettings) -> np.ndarray | None:
+        """Where the elements are, as a settings vector (None: a device restarted, move again)."""
+        angles: dict[str, float] = {}
+        for name, commanded in settings.stage_angles().items():
+            stage = self.rig.stages.get(name)
+            if stage is None:
                 continue
             pos = self._call(stage, f"reading the position of {stage.name}", stage.position_deg)
-            if abs(pos - commanded[i]) > POSITION_TOLERANCE_DEG and (self._state_lost or self._may_remove):
+            if abs(pos - commanded) > POSITION_TOLERANCE_DEG and (self._state_lost or self._may_remove):
                 # The instrument may have restarted under us (a restarted controller forgets its
                 # position): command everything again once before calling the axis stuck.
-                self.log(f"{stage.name} reads {pos:.3f} deg instead of {commanded[i]:.3f} deg; moving again")
+                self.log(f"{stage.name} reads {pos:.3f} deg instead of {commanded:.3f} deg; moving again")
                 self._forget_all()
                 return None
-            if abs(pos - commanded[i]) > POSITION_TOLERANCE_DEG:
+            if abs(pos - commanded) > POSITION_TOLERANCE_DEG:
                 raise RunFault(
-                    f"device '{stage.name}' is at {pos:.3f} deg, not at the commanded {commanded[i]:.3f} deg: "
+                    f"device '{stage.name}' is at {pos:.3f} deg, not at the commanded {commanded:.3f} deg: "
                     "the axis may be stuck or blocked; check it, then `lightloom resume`"
                 )
-            rb[i] = pos
-        if self.rig.converter is not None and not math.isnan(commanded[CONVERTER]):
+            angles[f"{name}_deg"] = pos
+        converter = None
+        if self.rig.converter is not None and settings.mode_converter is not None:
             c = self.rig.converter
             state = self._call(c, f"reading the state of {c.name}", c.state)
-            rb[CONVERTER] = CONVERTER_IN if state == "in" else CONVERTER_OUT
-        return rb
+            converter = "in" if state == "in" else "out"
+        return ElementSettings(mode_converter=converter, **angles).as_vector()
 
     # ------------------------------------------------------------------ reading
     def _read_one(self, device: PowerMeter | PhotonCounter | Camera, dwell_s: float) -> float:
@@ -453,7 +455,7 @@ class Runner:
             return Reading(
                 step_index=step.index, kind=step.kind, pass_index=step.pass_index,
                 point_index=step.point_index, repeat_index=step.repeat_index,
-                commanded=np.array(step.settings), readback=readback, values=values,
+                commanded=step.settings.as_vector(), readback=readback, values=values,
                 reference_w=ref, operators=operators, dwell_s=step.dwell_s,
                 t_start=t_start, t_end=t_end, flags=flags,
             )

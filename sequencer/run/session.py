@@ -27,9 +27,10 @@ from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
 from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, _complete_product as _complete_ports
 from lightloom.sequencer.run.safety import LASER_SAFETY_CAUTION
-from lightloom.sequencer.model.records import FORMAT_VERSION, Event, RunHeader
+from lightloom.sequencer.model.records import FORMAT_VERSION, Event, PortLayout, RunHeader, RunSources
 from lightloom.sequencer.storage.store import RunStore
-from lightloom.sequencer.plan.tablemodel import STAGE_ROLES, compile_protocol, table_model
+from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
+from lightloom.sequencer.model.vocabulary import STAGE_ELEMENTS
 from lightloom.sequencer.plan.timing import estimate_steps
 
 STATUS_EXIT = {"complete": EXIT_OK, "interrupted": EXIT_INTERRUPTED, "fault": EXIT_FAULT}
@@ -79,7 +80,7 @@ def assemble(bench: Bench) -> Assembled:
         table = None
         now, sleep = time.time, time.sleep
     roles = bench.roles
-    stages = {i: devices[getattr(roles, role)] for i, role in STAGE_ROLES.items() if getattr(roles, role)}
+    stages = {role: devices[getattr(roles, role)] for role in STAGE_ELEMENTS if getattr(roles, role)}
     rig = Rig(
         stages=stages,  # type: ignore[arg-type]
         converter=devices[roles.mode_converter] if roles.mode_converter else None,  # type: ignore[arg-type]
@@ -104,27 +105,14 @@ def port_units(bench: Bench) -> str:
 
 
 def make_header(protocol: Protocol, bench: Bench, plan: StepList, units: str, protocol_spec: str, bench_spec: str) -> RunHeader:
-    target = None
+    target = factor_target = None
     if protocol.target_state is not None:
         t = np.array(protocol.target_state, dtype=np.complex128)
-        target = t if t.shape == (4, 4) else None  # 2x2 targets go in extra
-    extra = {
-        "protocol_spec": protocol_spec,
-        "bench_spec": bench_spec,
-        "protocol_path": _absolute(protocol.source_path),
-        "bench_path": _absolute(bench.source_path),
-        "target_label": protocol.target_label,
-        "target_state_2x2": (
-            {"real": np.real(protocol.target_state).tolist(), "imag": np.imag(protocol.target_state).tolist()}
-            if protocol.target_state is not None and np.array(protocol.target_state).shape == (2, 2) else None
-        ),
-        "port_labels": [d.label for d in bench.roles.detectors],
-        "port_sorter": [d.sorter_port for d in bench.roles.detectors],
-        "port_splitter": [d.splitter_port for d in bench.roles.detectors],
-        "port_gain": [float(bench.calibration.port_gain.get(d.device, 1.0)) for d in bench.roles.detectors],
-        "reference_device": bench.roles.reference,
-        "wavelength_nm": bench.wavelength_nm,
-    }
+        if t.shape == (4, 4):
+            target = t
+        else:
+            factor_target = t
+    gains = bench.calibration.port_gain
     return RunHeader(
         format_version=FORMAT_VERSION,
         tool_version=__version__,
@@ -144,8 +132,19 @@ def make_header(protocol: Protocol, bench: Bench, plan: StepList, units: str, pr
         basis_labels=BASIS_LABELS,
         steps_total=len(plan.steps),
         steps_json=plan.to_json(),
+        ports=tuple(
+            PortLayout(d.label, d.sorter_port, d.splitter_port, float(gains.get(d.device, 1.0)))
+            for d in bench.roles.detectors
+        ),
+        sources=RunSources(
+            protocol_spec=protocol_spec, protocol_path=_absolute(protocol.source_path),
+            bench_spec=bench_spec, bench_path=_absolute(bench.source_path),
+        ),
         target_state=target,
-        extra=extra,
+        factor_target_state=factor_target,
+        target_label=protocol.target_label,
+        reference_device=bench.roles.reference,
+        wavelength_nm=bench.wavelength_nm,
     )
 
 
@@ -269,9 +268,8 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
 
 def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
     """The protocol and bench of a run, refusing ones that changed on disk since it started."""
-    extra = header.extra
-    protocol = parse_protocol(header.protocol_text, extra.get("protocol_path", "<stored protocol>"))
-    ppath = extra.get("protocol_path")
+    ppath, bpath = header.sources.protocol_path, header.sources.bench_path
+    protocol = parse_protocol(header.protocol_text, ppath or "<stored protocol>")
     if ppath and Path(ppath).is_file():
         now = load_protocol(ppath)
         if now.sha256 != header.protocol_sha256:
@@ -279,7 +277,6 @@ def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
                 f"{ppath} changed since the run started; resuming would mix two protocols. Restore "
                 "the file (the original is stored in the run file under /protocol) or start a new run"
             )
-    bpath = extra.get("bench_path")
     bench = None
     if bpath and Path(bpath).is_file():
         bench = load_bench(bpath)
@@ -289,7 +286,7 @@ def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
                 "two benches. Restore it (the resolved original is stored under /bench) or start a new run"
             )
     if bench is None:
-        bench = parse_bench(header.bench_text, extra.get("bench_path", "<stored bench>"))
+        bench = parse_bench(header.bench_text, bpath or "<stored bench>")
     return protocol, bench
 
 

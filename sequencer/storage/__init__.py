@@ -15,7 +15,7 @@ from lightloom.sequencer.storage.errors import JournalDamagedError, RunExistsErr
 from lightloom.sequencer.storage.journal import Journal, JournalContents, read_journal, writer_active
 from lightloom.sequencer.model.records import (
     EVENT_KINDS, FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT, FLAG_RETRIED, FORMAT_VERSION,
-    MODE_CONVERTER_IN, MODE_CONVERTER_OUT, READING_KINDS, RUN_STATUSES, Event, Reading,
+    READING_KINDS, RUN_STATUSES, Event, Reading,
     ReadingTable, RunData, RunHeader,
 )
 
@@ -26,7 +26,7 @@ _NEED_HDF5 = {
 
 __all__ = [
     "EVENT_KINDS", "FLAG_AFTER_BEAM_WAIT", "FLAG_DRIFT", "FLAG_RETRIED", "FORMAT_VERSION",
-    "MODE_CONVERTER_IN", "MODE_CONVERTER_OUT", "READING_KINDS", "RUN_STATUSES", "Damage",
+    "READING_KINDS", "RUN_STATUSES", "Damage",
     "Event", "Journal", "JournalContents", "JournalDamagedError", "Reading", "ReadingTable",
     "RunData", "RunExistsError", "RunHeader", "RunInUseError", "StorageWriteError",
     "read_journal", "writer_active", *_NEED_HDF5,

@@ -8,7 +8,9 @@ number of readings, m of events, E of elements, P of ports, d the dimension (4).
 (ISO 8601 UTC), status ("running" | "complete" | "interrupted" | "fault"),
 status_message, steps_total, steps_done (distinct step indices read), n_readings,
 n_events, protocol_name, bench_name, simulated (1 simulated bench, 0 real), analyzes,
-element_names, port_names, port_units, dimension, basis_labels, extra_json.
+element_names, port_names, port_units, dimension, basis_labels, setup_json (JSON: the port
+layout with gains, where protocol and bench came from, target label, a single-factor target,
+the reference device and the wavelength; older files hold ``extra_json`` instead, still read).
 
 - ``/protocol``, ``/bench``: scalar UTF-8 text (the protocol YAML, the resolved bench
   YAML), attributes name, sha256 (hex of the UTF-8 text), media_type.
@@ -49,7 +51,7 @@ from lightloom.sequencer.storage.atomic import publish, sync_path, temp_path
 from lightloom.sequencer.storage.errors import StorageWriteError
 from lightloom.sequencer.model.records import (
     EVENT_KINDS, FLAG_NAMES, FORMAT_VERSION, READING_KINDS, RUN_STATUSES, Event, Reading,
-    ReadingTable, RunData, RunHeader, element_unit,
+    ReadingTable, RunData, RunHeader, element_unit, setup_from_legacy_extra,
 )
 
 _STR = h5py.string_dtype()
@@ -108,7 +110,7 @@ def _write_header(f: h5py.File, header: RunHeader) -> None:
     a["port_units"] = header.port_units
     a["dimension"] = header.dimension
     a["basis_labels"] = _strings(header.basis_labels)
-    a["extra_json"] = json.dumps(header.extra, sort_keys=True)
+    a["setup_json"] = json.dumps(header.setup_json_dict(), sort_keys=True)
     _text(f, "protocol", header.protocol_text, "protocol YAML as given",
           name=header.protocol_name, sha256=header.protocol_sha256, media_type="application/yaml")
     _text(f, "bench", header.bench_text, "bench YAML, resolved (extends applied)",
@@ -245,6 +247,11 @@ def _names_of(ds: h5py.Dataset, fallback: Sequence[str]) -> np.ndarray:
 def _read_header(f: h5py.File) -> RunHeader:
     a = f.attrs
     target = f["target_state"][()] if "target_state" in f else None
+    port_names = _str_list(a["port_names"])
+    if "setup_json" in a:
+        setup = RunHeader.setup_from_json_dict(json.loads(_str(a["setup_json"])))
+    else:
+        setup = setup_from_legacy_extra(json.loads(_str(a["extra_json"])), port_names)
     return RunHeader(
         format_version=int(a["format_version"]),
         tool_version=_str(a["tool_version"]),
@@ -258,14 +265,14 @@ def _read_header(f: h5py.File) -> RunHeader:
         simulated=bool(a["simulated"]),
         analyzes=_str_list(a["analyzes"]),
         element_names=_str_list(a["element_names"]),
-        port_names=_str_list(a["port_names"]),
+        port_names=port_names,
         port_units=_str(a["port_units"]),
         dimension=int(a["dimension"]),
         basis_labels=_str_list(a["basis_labels"]),
         steps_total=int(a["steps_total"]),
         steps_json=f["steps" if "steps" in f else "plan"].asstr()[()],
         target_state=target,
-        extra=json.loads(_str(a["extra_json"])),
+        **setup,
     )
 
 

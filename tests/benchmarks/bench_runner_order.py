@@ -50,7 +50,7 @@ def motion_between_settings_s(plan, table) -> float:
     settings = []
     for step in plan.steps:
         if step.kind == "measure" and (not settings or settings[-1][0] != step.point_index):
-            settings.append((step.point_index, np.array(step.settings)))
+            settings.append((step.point_index, step.settings.as_vector()))
     return sum(transition_time_s(a, b, table) for (_, a), (_, b) in zip(settings[:-1], settings[1:]))
 
 

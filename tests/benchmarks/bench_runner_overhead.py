@@ -25,7 +25,6 @@ import numpy as np
 
 from lightloom.sequencer.lang.bench import load_bench
 from lightloom.sequencer.plan.kinematics import approach_path
-from lightloom.sequencer.optics.analyzer import CONVERTER, CONVERTER_IN
 from lightloom.sequencer.lang.protocol import load_protocol
 from lightloom.sequencer.run.runner import Runner
 from lightloom.sequencer.run.session import RunLog, assemble, make_header, policy_for, port_units
@@ -96,13 +95,14 @@ def loop_step_times(protocol_spec: str, bench_spec: str, folder: Path) -> list[f
             (rig.shutter.open if step.shutter_open else rig.shutter.close_beam)()
             shutter_open = step.shutter_open
         want = None
-        if rig.converter is not None and not math.isnan(step.settings[CONVERTER]):
-            want = "in" if step.settings[CONVERTER] == CONVERTER_IN else "out"
+        if rig.converter is not None and step.settings.mode_converter is not None:
+            want = step.settings.mode_converter
             if want != converter:
                 rig.converter.set_state(want)
         paths = {}
+        angles = step.settings.stage_angles()
         for i in rig.stages:
-            target = step.settings[i]
+            target = angles.get(i, math.nan)
             if math.isnan(target) or positions.get(i) == target:
                 continue
             backlash = table.kinematics[i].backlash_deg if i in table.kinematics else 0.0
@@ -117,7 +117,7 @@ def loop_step_times(protocol_spec: str, bench_spec: str, folder: Path) -> list[f
         if want is not None and want != converter:
             rig.converter.wait_settled(120.0)
             converter = want
-        readback = [rig.stages[i].position_deg() for i in rig.stages if not math.isnan(step.settings[i])]
+        readback = [rig.stages[i].position_deg() for i in rig.stages if i in angles]
         if want is not None:
             rig.converter.state()
         values = [d.read_power_w(step.dwell_s) for d in readers]

@@ -34,10 +34,10 @@ from lightloom.sequencer.plan.timing import estimate_steps
 def floor_seconds(plan: StepList, bench) -> tuple[float, float]:
     """(dwell, motion) of the physical floor, s: motion from the stages at 0 deg and the converter out."""
     table = table_model(bench)
-    start = np.where(np.isnan(np.array(plan.steps[0].settings)), np.nan, 0.0)
+    start = np.where(np.isnan(plan.steps[0].settings.as_vector()), np.nan, 0.0)
     motion, here = 0.0, start
     for step in plan.steps:
-        there = np.array(step.settings)
+        there = step.settings.as_vector()
         motion += transition_time_s(here, there, table)
         here = there
     return sum(s.dwell_s for s in plan.steps), motion

@@ -18,6 +18,7 @@ import numpy as np
 
 import lightloom.sequencer.storage.journal as journal_module
 from lightloom.sequencer.storage import Reading, RunHeader, RunStore
+from lightloom.sequencer.model.records import PortLayout, RunSources
 from lightloom.sequencer.storage.atomic import sync_fd
 from lightloom.sequencer.storage.codec import (
     TYPE_HEADER, TYPE_READING, ReadingLayout, encode_header, encode_reading, frame,
@@ -39,6 +40,7 @@ def make_header(steps: int) -> RunHeader:
         simulated=True, analyzes=("polarization", "spatial"), element_names=ELEMENTS,
         port_names=PORTS, port_units="W", dimension=4,
         basis_labels=("H,h", "H,v", "V,h", "V,v"), steps_total=steps, steps_json="[]",
+        ports=tuple(PortLayout(p, None, None) for p in PORTS), sources=RunSources("bench", "", "sim", ""),
     )
 
 
