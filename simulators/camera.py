@@ -281,6 +281,7 @@ FILL_TARGET = 0.8
 def check_exposures(bench: Any, steps: Any) -> list[ExposureCheck]:
     """Expected peak pixel of every distinct measurement setting of ``steps`` on each simulated
     camera of a simulated ``bench`` (no drift, no noise: the mean). Empty for real benches."""
+    from lightloom.sequencer.model.elements import COLUMN
     from lightloom.sequencer.optics.analyzer import port_operators
     from lightloom.sequencer.plan.tablemodel import analyzer_model, port_models
 
@@ -300,18 +301,19 @@ def check_exposures(bench: Any, steps: Any) -> list[ExposureCheck]:
     for step in steps:
         if step.kind != "measure":
             continue
-        key = (step.label, tuple(np.round(np.nan_to_num(step.settings, nan=-1.0), 6)), step.dwell_s)
+        vector = np.asarray(step.settings.as_vector(), dtype=float)
+        key = (step.label, tuple(np.round(np.nan_to_num(vector, nan=-1.0), 6)), step.dwell_s)
         if key in seen:
             continue
         seen.add(key)
-        settings = np.nan_to_num(np.asarray(step.settings, dtype=float)[None, :])
+        settings = np.nan_to_num(vector[None, :])
         ops = port_operators(model, ports, settings)[0]
         for j, name in cameras:
             options = bench.devices[name].options
             sensor = sensor_from_options(options)
             camera = settings_from_options({"bit_depth": 12, **{k: v for k, v in options.items()
                                                                 if k in CAMERA_OPTION_KEYS}})
-            hwp = float(settings[0, 1])
+            hwp = float(settings[0, COLUMN["half_wave_plate"]])
             electrons = mean_electrons(power_fraction_map(rho, polarization_povm(ops[j]), sensor, hwp),
                                        power, step.dwell_s, sensor, bench.wavelength_nm)
             peak = expected_peak_adu(electrons, sensor, camera)

@@ -144,7 +144,7 @@ class SimulatedTable:
             return polarization_povm(port_operators(self.model, self.ports, s[None, :])[0][j])
 
         def hwp_deg() -> float:
-            stage = self.stage_of.get(HWP)
+            stage = self.stage_of.get(COLUMN["half_wave_plate"])
             return stage.optical_angle_deg() if stage is not None else 0.0
 
         light = CameraLight(
