@@ -334,8 +334,13 @@ def option_defaults(driver: str) -> Mapping[str, Any]:
     return MappingProxyType(table)
 
 
-def check_options(kind_family: str, options: Mapping[str, Any]) -> None:
+def check_options(
+    kind_family: str, options: Mapping[str, Any], states: tuple[str, ...] | list[str] | None = None
+) -> None:
     """Validate a device's ``options`` for driver ``kind_family`` (e.g. ``"serial.shutter"``).
+
+    ``states``: an actuator's states as the bench gives them beside its options (then the options
+    need not name them).
 
     Raises
     ------
@@ -344,7 +349,7 @@ def check_options(kind_family: str, options: Mapping[str, Any]) -> None:
         misspelt key.
     """
     family, kind = split_driver(kind_family)
-    _parse(family, kind, options, None)
+    _parse(family, kind, options, {"states": list(states)} if kind == "actuator" and states else None)
 
 
 def check_limits(kind_family: str, limits: Mapping[str, Any] | None) -> None:

@@ -6,7 +6,7 @@ import time
 from typing import Callable, TypeVar
 
 from lightloom.drivers.errors import ConnectionLost, InstrumentError, InstrumentTimeout
-from lightloom.drivers.interfaces import Device
+from lightloom.drivers.interfaces import Device, Shutter
 
 T = TypeVar("T")
 
@@ -66,3 +66,57 @@ def call_with_retry(
                 on_retry(attempt, error, delay)
             sleep(delay)
     raise AssertionError("unreachable: the loop returns or raises")
+
+
+def close_shutter_within(
+    shutter: Shutter,
+    budget_s: float,
+    *,
+    backoff_s: float,
+    max_backoff_s: float,
+    now: Callable[[], float],
+    sleep: Callable[[float], None],
+    log: Callable[[str], None] = lambda line: None,
+) -> bool:
+    """Close ``shutter`` until it reads back closed, for up to ``budget_s`` seconds of ``now``.
+
+    Between attempts: a pause of ``backoff_s``, doubling up to ``max_backoff_s``, then a reconnect,
+    so an instrument that restarts or a link that comes back within the budget still receives the
+    close. Whatever goes wrong (any error, a second Ctrl-C or stop request) the next attempt is
+    made: the shutter comes first. Returns True once closed, False when the budget is spent.
+    """
+    deadline = now() + budget_s
+    delay = backoff_s
+    attempt = 0
+    reconnect = False
+    while True:
+        attempt += 1
+        try:
+            if reconnect:
+                shutter.reconnect()
+            shutter.close_beam()
+            if not shutter.is_open():
+                if attempt > 1:
+                    log(f"shutter closed at attempt {attempt}")
+                return True
+            log("the shutter still reads back open after the close command; retrying")
+        except (SystemExit, GeneratorExit):
+            raise
+        except BaseException as exc:  # noqa: BLE001 - the shutter must be tried again whatever happened
+            if isinstance(exc, Exception):
+                log(f"closing the shutter failed at attempt {attempt} ({exc}); retrying")
+            else:
+                log("stop requested again while closing the shutter; closing it first")
+        reconnect = True
+        left = deadline - now()
+        if left <= 0:
+            log(f"gave up closing the shutter after {attempt} attempts over {budget_s:g} s")
+            return False
+        pause = min(max(delay, 1e-3), left)
+        delay = min(max(2.0 * delay, 1e-3), max_backoff_s)
+        try:
+            sleep(pause)
+        except (SystemExit, GeneratorExit):
+            raise
+        except BaseException:  # noqa: BLE001
+            log("stop requested again while closing the shutter; closing it first")

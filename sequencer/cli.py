@@ -20,6 +20,7 @@ VERBS: dict[str, str] = {
     "advise": "advise",
     "calibrate": "calibrate",
     "sim": "sim",
+    "probe": "probe",
     "demo": "demo",
 }
 

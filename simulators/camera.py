@@ -220,6 +220,11 @@ class SimCamera(SimDevice, Camera):
     def settings(self) -> CameraSettings:
         return self._settings
 
+    def use_rng(self, rng: np.random.Generator) -> None:
+        """Draw the noise of the next frames from ``rng`` (a step's own stream, so a resumed run
+        sees the frames an uninterrupted one would)."""
+        self._rng = rng
+
     def configure(self, settings: CameraSettings) -> CameraSettings:
         self._operation("configure")
         self._settings = settings

@@ -888,6 +888,11 @@ class SimPowerMeter(SimDevice, PowerMeter):
             self.name, op, "integration time in s", integration_s, self._max_integration_s)
         self._zero_w = self._raw_reading_w(t)
 
+    def use_rng(self, rng: np.random.Generator) -> None:
+        """Draw the noise of the next readings from ``rng`` (a simulated table gives each step its
+        own stream, so a resumed run continues the same random stream)."""
+        self._rng = rng
+
     def reset(self) -> None:
         """Integration time, wavelength and range back to their initial values (``*RST``); the zero is kept."""
         self._integration_s, self._wavelength_nm, self._range_w = self._defaults
@@ -965,6 +970,11 @@ class SimPhotonCounter(SimDevice, PhotonCounter):
     def count(self) -> int:
         """One count at the default gate time (``COUNT?``)."""
         return self.read_counts(self._gate_s)
+
+    def use_rng(self, rng: np.random.Generator) -> None:
+        """Draw the noise of the next readings from ``rng`` (a simulated table gives each step its
+        own stream, so a resumed run continues the same random stream)."""
+        self._rng = rng
 
     def reset(self) -> None:
         """Gate time back to its initial value (``*RST``)."""

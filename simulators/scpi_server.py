@@ -26,6 +26,7 @@ from typing import Any, Callable, Iterable, Mapping, NamedTuple
 
 from lightloom.drivers.errors import DeviceFault, InstrumentError, LimitViolation
 from lightloom.simulators.devices import ACTUATOR, COUNTER, POWERMETER, SHUTTER, STAGE, SimDevice
+from lightloom.simulators.dialects import Dialect, DialectInstrument
 from lightloom.simulators.faults import FaultInjector, garble_reply
 
 LOOPBACK_HOST = "127.0.0.1"
@@ -165,6 +166,11 @@ class ScpiInstrument:
     def error_codes(self) -> tuple[int, ...]:
         """Codes waiting in the error queue, oldest first."""
         return tuple(code for code, _ in self._errors)
+
+    def is_query(self, line: str) -> bool:
+        """Whether ``line`` asks for a reply (its header ends in "?")."""
+        parts = line.split(None, 1)
+        return bool(parts) and parts[0].endswith("?")
 
     # execution
     def execute(self, line: str, stop: threading.Event | None = None) -> CommandResult:
@@ -336,6 +342,7 @@ class LoopbackServer:
         faults: FaultInjector | None = None,
         opc_timeout_s: float = 60.0,
         command_latency_s: float = 0.001,
+        dialects: Mapping[str, Dialect] | None = None,
     ) -> None:
         if host != LOOPBACK_HOST:
             raise NonLoopbackHost(
@@ -362,7 +369,16 @@ class LoopbackServer:
         self._log_path = None if log_path is None else Path(log_path)
         self._faults = faults
         self._latency_s = float(command_latency_s)
-        self._instruments = {name: ScpiInstrument(dev, opc_timeout_s=opc_timeout_s) for name, dev in self._devices.items()}
+        unknown = sorted(set(dialects or {}) - set(self._devices))
+        if unknown:
+            raise ValueError(f"dialects given for unknown device(s) {', '.join(unknown)}; devices: {', '.join(self._devices)}")
+        dialects = dialects or {}
+        self._instruments: dict[str, ScpiInstrument | DialectInstrument] = {
+            name: DialectInstrument(dev, dialects[name], opc_timeout_s=opc_timeout_s) if name in dialects
+            else ScpiInstrument(dev, opc_timeout_s=opc_timeout_s)
+            for name, dev in self._devices.items()
+        }
+        self._endings = {name: dialects[name].termination if name in dialects else "\n" for name in self._devices}
         self._stop = threading.Event()
         self._running = False
         self._listeners: dict[str, socket.socket] = {}
@@ -382,7 +398,7 @@ class LoopbackServer:
         return self._running
 
     @property
-    def instruments(self) -> Mapping[str, ScpiInstrument]:
+    def instruments(self) -> Mapping[str, "ScpiInstrument | DialectInstrument"]:
         """The command interpreter (with its error queue) of each device, by name."""
         return dict(self._instruments)
 
@@ -533,9 +549,12 @@ class LoopbackServer:
                     return
                 _quick_ack(conn)
                 buffer += data
-                while b"\n" in buffer:
-                    raw, buffer = buffer.split(b"\n", 1)
-                    line = raw.decode("ascii", errors="replace").rstrip("\r").strip()
+                # A line ends at "\n" ("\r\n" too, the "\r" stripped), or at "\r" for a device
+                # whose dialect ends its lines with "\r" alone.
+                end = b"\r" if self._endings[name] == "\r" else b"\n"
+                while end in buffer:
+                    raw, buffer = buffer.split(end, 1)
+                    line = raw.decode("ascii", errors="replace").strip()
                     if line and not self._handle(name, conn, line):
                         return
                 if len(buffer) > _MAX_LINE_BYTES:
@@ -552,7 +571,7 @@ class LoopbackServer:
         instrument = self._instruments[name]
         t_wall = time.time()
         t_virtual = device.clock.now()
-        query = line.split(None, 1)[0].endswith("?")
+        query = instrument.is_query(line)
         injector = self._faults if self._faults is not None else device.faults
         fault = None if injector is None else injector.link_fault(name, t_virtual, query=query)
         record: dict[str, object] = {"t_wall": t_wall, "t_virtual": t_virtual, "device": name, "command": line, "reply": None}
@@ -574,7 +593,7 @@ class LoopbackServer:
         self._write_log(record)
         if reply is not None:
             try:
-                conn.sendall(reply.encode("ascii", errors="replace") + b"\n")
+                conn.sendall((reply + self._endings[name]).encode("ascii", errors="replace"))
             except OSError:
                 return False
         return True

@@ -32,6 +32,11 @@ from lightloom.simulators.devices import (
 )
 from lightloom.simulators.faults import FaultInjector
 
+# Spawn-key branch of the per-step detector streams (the construction-time streams use the
+# plain children of the seed, whose keys are one number long, so the two never meet).
+_STEP_STREAMS = 1
+
+
 @dataclass(frozen=True)
 class Drift:
     """Relative laser power drift: 1 + amplitude sin(2 pi t / period + phase)."""
@@ -56,6 +61,7 @@ class SimulatedTable:
         wall_sleep: Callable[[float], None] | None = None,
         time_scale: float | None = None,
         epoch_s: float | None = None,
+        start_s: float = 0.0,
     ) -> None:
         sim = bench.simulation
         if sim is None:
@@ -64,7 +70,8 @@ class SimulatedTable:
         # UNIX time of virtual time 0: what the runner's clock and the camera's timestamps add.
         self.epoch_s = time.time() if epoch_s is None else float(epoch_s)
         kwargs = {} if wall_sleep is None else {"wall_sleep": wall_sleep}
-        self.clock = SimClock(sim.time_scale if time_scale is None else time_scale, **kwargs)
+        self.clock = SimClock(sim.time_scale if time_scale is None else time_scale, start_s=start_s, **kwargs)
+        self.seed = sim.seed
         seeds = np.random.SeedSequence(sim.seed)
         fault_seed, drift_seed, *device_seeds = seeds.spawn(2 + len(bench.devices))
         self.faults = FaultInjector(
@@ -101,6 +108,20 @@ class SimulatedTable:
         self.shutter = self.devices[roles.shutter]  # type: ignore[assignment]
         self._cache_key: tuple | None = None
         self._cache_probs: np.ndarray | None = None
+
+    def begin_step(self, step_index: int) -> None:
+        """Give every detector the noise stream of step ``step_index``.
+
+        Each detector's stream is derived from (seed, device, step index) with numpy's
+        SeedSequence, not drawn in sequence from one stream, so a run stopped and resumed reads
+        the same noise at every step as an uninterrupted run with the same seed.
+        """
+        if isinstance(step_index, bool) or not isinstance(step_index, (int, np.integer)) or step_index < 0:
+            raise ValueError(f"step_index must be an integer >= 0, got {step_index!r}")
+        for i, device in enumerate(self.devices.values()):
+            if callable(getattr(device, "use_rng", None)):  # the detectors, cameras included
+                seq = np.random.SeedSequence(self.seed, spawn_key=(_STEP_STREAMS, i, int(step_index)))
+                device.use_rng(np.random.default_rng(seq))
 
     # ------------------------------------------------------------------ devices
     def _make(self, name, spec, rng, sim) -> Device:

@@ -86,6 +86,19 @@ def test_field_maps_and_portrait_of_the_measured_beam_match_the_true_source(meas
         assert np.shape(maps["polarizer"][a]) == s0.shape
 
 
+def test_advise_reads_a_saved_analysis_document(measured: Path, capsys, tmp_path) -> None:
+    saved = tmp_path / "analysis.json"
+    saved.write_text(json.dumps(_json(capsys, ["analyze", str(measured), "--json", "--bootstrap", "2"])))
+    from_json = _json(capsys, ["advise", str(saved), "--target", "radial", "--json"])
+    from_run = _json(capsys, ["advise", str(measured), "--target", "radial", "--json", "--bootstrap", "2"])
+    assert from_json["source"]["kind"] == "analysis" and from_json["fidelity"]["std"] is None
+    assert from_json["fidelity"]["value"] == pytest.approx(from_run["fidelity"]["value"], abs=1e-9)
+    bad = tmp_path / "bad.json"
+    bad.write_text('{"purity": 1}')
+    assert main(["advise", str(bad), "--target", "radial"]) == 2
+    assert "density_matrix" in capsys.readouterr().err
+
+
 def test_advise_takes_a_state_on_the_command_line(capsys) -> None:
     doc = _json(capsys, ["advise", "azimuthal", "--target", "radial", "--json"])
     assert doc["source"] == {"kind": "state", "state": "azimuthal"}

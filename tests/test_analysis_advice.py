@@ -83,6 +83,21 @@ def test_best_local_fidelity_to_radial_of_a_pure_state_is_set_by_its_schmidt_coe
         assert reached == pytest.approx(expected, abs=1e-12)
 
 
+@pytest.mark.parametrize("trial", range(4))
+def test_best_local_of_a_pure_state_to_any_target_aligns_the_schmidt_coefficients(trial: int) -> None:
+    # max |<t|(U (x) V)|psi>|^2 = (sum_k s_k(t) s_k(psi))^2 with both sets in decreasing order (von
+    # Neumann's trace inequality, von Neumann 1937, from memory).
+    psi, t = random_ket(), random_ket()
+    s_psi = np.linalg.svd(psi.reshape(2, 2), compute_uv=False)
+    s_t = np.linalg.svd(t.reshape(2, 2), compute_uv=False)
+    expected = float(np.dot(s_psi, s_t) ** 2)
+    best = adv.best_local(density(psi), t)
+    assert best.value == pytest.approx(expected, abs=1e-12) and best.upper_bound == best.value
+    reached = adv.fidelity_after(density(psi), t, np.kron(best.polarization, best.spatial))
+    assert reached == pytest.approx(expected, abs=1e-12)
+    assert sampled_fidelities(density(psi), t, random_local(2000)).max() <= expected + 1e-12
+
+
 def test_radial_beam_turned_by_known_plates_is_brought_back_to_fidelity_one() -> None:
     turn = np.kron(polarization_stack(17.0, 131.0, 62.0), spatial_stack(None, None))
     source = turn @ JOINT_KETS["radial"]

@@ -127,3 +127,10 @@ def test_determines_scan_silences_the_warning_for_a_drift_run(tmp_path, capsys) 
     doc = json_of(capsys, "dry-run", str(path), "--bench", "sim", "--json")
     assert doc["determines"] == "scan"
     assert capsys.readouterr().err == ""
+
+
+def test_run_of_an_incomplete_set_without_the_key_warns_before_it_starts(tmp_path, capsys) -> None:
+    path = write(tmp_path, "hv.yaml", HV_ONLY)
+    assert cli.main(["run", str(path), "--bench", "sim", "--out", str(tmp_path / "run.h5"), "--quiet"]) == 0
+    warnings = [line for line in capsys.readouterr().err.splitlines() if line.startswith("lightloom: warning:")]
+    assert len(warnings) == 1 and "no circular (R/L) projection" in warnings[0]

@@ -107,3 +107,17 @@ def test_a_very_long_list_is_refused_in_plain_words(tmp_path, capsys, items: int
     assert err.count("\n") == 1
     assert err.startswith(f"lightloom: {path}:5: too many values: this file holds more than 10000")
     assert "alias" not in err
+
+
+@pytest.mark.parametrize("amplitude", ["1e200", "1e308j", "-1e300-1e300j", "1e400", "1" + "0" * 400, "nan", "1e-400"])
+def test_complex_amplitudes_written_as_text_are_read_or_refused_never_a_crash(amplitude: str) -> None:
+    protocol = (
+        "protocol: t\nanalyzes: [polarization]\nmeasure:\n  targets:\n"
+        f"    polarization: [H, {{ket: ['{amplitude}', '1e-3j']}}]\ndwell_s: 1\n"
+    )
+    bench = f"extends: sim\nsimulation:\n  source: {{state: {{density_matrix: null, ket: ['{amplitude}', '0', '0', '1']}}}}\n"
+    for kind, text in (("protocol", protocol), ("bench", bench)):
+        try:
+            parse(kind, text, f"{kind}.yaml")
+        except InputError as exc:
+            assert exc.one_line().startswith(f"{kind}.yaml:"), exc.one_line()

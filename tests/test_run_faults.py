@@ -35,8 +35,16 @@ def _retries_before_steps(log_text: str) -> dict[int, list[str]]:
     return out
 
 
-def _stuck_bench(folder, at_s: float = 6.5):
-    return write_bench(folder, "sim-stuck", simulation={"faults": [{"device": "hwp_stage", "kind": "stuck", "at_s": at_s}]})
+def _stuck_bench(folder, at_s: float = 6.5, duration_s: float | None = None):
+    fault = {"device": "hwp_stage", "kind": "stuck", "at_s": at_s}
+    if duration_s is not None:
+        fault["duration_s"] = duration_s
+    return write_bench(folder, "sim-stuck", simulation={"faults": [fault]})
+
+
+# Stuck long enough for the first run to give up on the stage (120 s settle timeout), short enough
+# that the stage moves again during the resume (the simulated clock continues where the run stopped).
+_UNSTICKS_S = 200.0
 
 
 def test_transient_timeout_garbled_and_drop_are_retried_and_flag_the_reading(tmp_path, capsys, shutter_watch):
@@ -104,7 +112,7 @@ def test_a_stage_stuck_for_ever_stops_with_exit_3_the_shutter_closed_and_the_fau
 
 def test_resume_after_a_fault_records_only_the_missing_steps_until_complete(tmp_path, capsys):
     out = tmp_path / "run.h5"
-    assert run_cli("run", "polarization-6", "--bench", _stuck_bench(tmp_path), "--out", out) == 3
+    assert run_cli("run", "polarization-6", "--bench", _stuck_bench(tmp_path, duration_s=_UNSTICKS_S), "--out", out) == 3
     done = len(read_runfile(out).readings)
     for _ in range(5):
         status = run_cli("resume", out)
@@ -118,7 +126,7 @@ def test_resume_after_a_fault_records_only_the_missing_steps_until_complete(tmp_
 
 
 def test_resume_refuses_a_bench_changed_after_a_fault_and_leaves_the_run_as_it_was(tmp_path, capsys):
-    bench = _stuck_bench(tmp_path)
+    bench = _stuck_bench(tmp_path, duration_s=_UNSTICKS_S)
     out = tmp_path / "run.h5"
     assert run_cli("run", "polarization-6", "--bench", bench, "--out", out) == 3
     before = read_runfile(out)

@@ -53,7 +53,7 @@ def test_run_refuses_an_out_in_a_missing_folder(tmp_path, capsys):
 def test_resume_refuses_a_protocol_file_changed_since_the_start(tmp_path, capsys):
     protocol = tmp_path / "pol6.yaml"
     shutil.copy(REPO / "protocols" / "polarization-6.yaml", protocol)
-    bench = write_bench(tmp_path, "sim-stuck", simulation={"faults": [{"device": "hwp_stage", "kind": "stuck", "at_s": 6.5}]})
+    bench = write_bench(tmp_path, "sim-stuck", simulation={"faults": [{"device": "hwp_stage", "kind": "stuck", "at_s": 6.5, "duration_s": 200.0}]})
     out = tmp_path / "run.h5"
     assert run_cli("run", protocol, "--bench", bench, "--out", out) == 3
     before = read_runfile(out)

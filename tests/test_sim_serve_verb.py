@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import os
+import random
 import re
 import signal
 import socket
@@ -24,7 +25,7 @@ ADDRESS = re.compile(r"^\s+(\w+)\s+(\w+)\s+(TCPIP::127\.0\.0\.1::(\d+)::SOCKET)\
 
 
 def _free_base_port(n: int = 12) -> int:
-    for base in range(49200, 60000, 97):
+    for base in random.sample(range(49200, 60000, 97), len(range(49200, 60000, 97))):
         ok = True
         for port in range(base, base + n):
             with socket.socket() as s:
@@ -40,6 +41,17 @@ def _free_base_port(n: int = 12) -> int:
 
 
 def _serve(tmp_path: Path, *extra: str) -> tuple[subprocess.Popen, dict[str, tuple[str, str]], Path]:
+    # A block of ports found free may be taken by another test's server before ours binds it.
+    for _ in range(5):
+        proc, addresses, bench_out = _serve_once(tmp_path, *extra)
+        if addresses:
+            return proc, addresses, bench_out
+        _, err = proc.communicate(timeout=20)
+        assert "cannot listen" in err, err
+    raise AssertionError("sim serve found no free block of ports in 5 tries")
+
+
+def _serve_once(tmp_path: Path, *extra: str) -> tuple[subprocess.Popen, dict[str, tuple[str, str]], Path]:
     bench_out = tmp_path / "served.yaml"
     proc = subprocess.Popen(
         [sys.executable, "-m", "lightloom.sequencer", "sim", "serve", "--bench", "sim", "--bench-out", str(bench_out),

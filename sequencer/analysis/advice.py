@@ -17,7 +17,11 @@ Best fidelity under any local unitaries:
   fraction (closed form, Hill-Wootters magic basis; for a pure state with Schmidt coefficients
   sqrt(l1), sqrt(l2) it is (sqrt(l1) + sqrt(l2))^2 / 2, Horodecki, Horodecki, Horodecki, PRA 60,
   1888 (1999), from memory);
-- any other pure target: alternating Procrustes from many starts (each step exact, monotone),
+- a pure state and any pure target: |<t|(Up (x) Us)|psi>|^2 is at most (sum_k s_k(t) s_k(psi))^2,
+  Schmidt coefficients in decreasing order, with equality when the Schmidt bases are aligned (von
+  Neumann's trace inequality): closed form; for a mixed state the mixture of these maxima over
+  its eigenvectors bounds the optimum from above;
+- a mixed state and any other pure target: alternating Procrustes from many starts (each step exact, monotone),
   with a certificate: the states reachable from |t> by local unitaries are, in the magic basis
   x = a + i b, those with |x^T x| = C (the target's concurrence), i.e. |a|^2 = (1 + C)/2,
   |b|^2 = (1 - C)/2, a . b = 0 after a phase; the Lagrangian dual of maximising x^dagger rho x over
@@ -34,7 +38,7 @@ spread(G)/2 for a projector P), which certifies the optimum to a stated toleranc
 from __future__ import annotations
 
 import itertools
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -43,7 +47,9 @@ from scipy.spatial.transform import Rotation
 
 from lightloom.sequencer.analysis.estimate.merit import fully_entangled_fraction
 from lightloom.sequencer.errors import OpticsError
-from lightloom.sequencer.optics.correction import StackSettings, polarization_angles, spatial_stack, stack_unitary
+from lightloom.sequencer.optics.correction import (
+    StackSettings, polarization_angles, polarization_stack, spatial_stack, stack_unitary,
+)
 from lightloom.sequencer.optics.states import as_density, normalize_ket
 from lightloom.sequencer.optics.stokes import PAULI
 
@@ -51,6 +57,7 @@ Complex = NDArray[np.complex128]
 Real = NDArray[np.float64]
 
 MAXIMALLY_ENTANGLED = 1.0 - 1e-9  # concurrence above which a target counts as maximally entangled
+PURE_WITHIN = 1e-10  # a state whose largest eigenvalue is this close to 1 is treated as pure
 LIPSCHITZ_PER_RAD = 2.0
 SEARCH_TOLERANCE = 1e-3  # branch and bound stops when the bound is within this of the best value
 MAX_EVALUATIONS = 400_000
@@ -214,6 +221,30 @@ def _coset_rotations(base: Real, angles: Real) -> Real:
     return base @ r2 @ r1
 
 
+def _schmidt(ket: ArrayLike) -> tuple[Complex, Real, Complex]:
+    """SVD of the 2x2 coefficient matrix (rows polarization, columns spatial) of a ket."""
+    return np.linalg.svd(normalize_ket(ket).reshape(2, 2))
+
+
+def _pure_overlap(ket: ArrayLike, target: ArrayLike) -> float:
+    """max over local unitaries of |<t| (Up (x) Us) |psi>|^2 = (sum_k s_k(t) s_k(psi))^2, the Schmidt
+    coefficients in decreasing order (von Neumann's trace inequality, with equality when the
+    singular vectors are aligned; von Neumann, Tomsk Univ. Rev. 1, 286 (1937), from memory)."""
+    return float(np.dot(_schmidt(ket)[1], _schmidt(target)[1]) ** 2)
+
+
+def _pure_optimum(ket: ArrayLike, target: ArrayLike) -> "LocalOptimum":
+    """The closed-form optimum for a pure state: Up = C A^dagger, Us = conj(D) B^T, with psi's
+    matrix A S B^dagger and the target's C S' D^dagger, so (Up (x) Us)|psi> has matrix C S D^dagger."""
+    a, _, bh = _schmidt(ket)
+    c, _, dh = _schmidt(target)
+    up = c @ a.conj().T
+    us = dh.T @ bh.conj()  # conj(D) B^T with D = dh^dagger, B = bh^dagger
+    value = _pure_overlap(ket, target)
+    return LocalOptimum(value, up, us, value,
+                        "closed form for a pure state: Schmidt coefficients aligned (von Neumann trace inequality)")
+
+
 @dataclass(frozen=True)
 class LocalOptimum:
     """The best fidelity under any local unitaries, the unitaries, and its certificate."""
@@ -236,14 +267,20 @@ def best_local(rho: ArrayLike, target: ArrayLike, rng: np.random.Generator | Non
         fef = float(fully_entangled_fraction(as_density(rho)[None])[0])
         return LocalOptimum(float(val[0]), unitary_of(op[0]), np.eye(2, dtype=np.complex128), fef,
                             "closed form: a unitary on the polarization alone; value = fully entangled fraction")
+    weights, vectors = np.linalg.eigh(as_density(rho))
+    if weights[-1] >= 1.0 - PURE_WITHIN:
+        return _pure_optimum(vectors[:, -1], target)
     rng = rng if rng is not None else np.random.default_rng(0)
     starts = np.concatenate([np.eye(3)[None], Rotation.random(STARTS, random_state=rng).as_matrix()])
     op, os_, val = _alternate(r, t, starts)
     i = int(np.argmax(val))
     value = float(val[i])
     best_op, best_os = op[i], os_[i]
-    bound = dual_bound(rho, c)
-    how = f"alternating Procrustes from {STARTS + 1} starts; upper bound: Lagrangian dual"
+    # the maximum of a mixture is at most the mixture of its components' maxima (closed form each)
+    spectral = float(sum(w * _pure_overlap(vectors[:, k], target) for k, w in enumerate(weights) if w > 0))
+    bound = min(dual_bound(rho, c), spectral)
+    how = (f"alternating Procrustes from {STARTS + 1} starts; upper bound: Lagrangian dual and the "
+           "eigen-decomposition bound")
     if bound - value > tol:
         # The target is unchanged by opposite phases on its Schmidt vectors, so only the spatial
         # rotation's coset modulo turns about the spatial Schmidt axis matters: two angles, each
@@ -372,7 +409,8 @@ class Advice:
     spatial_universal: bool = False
 
 
-def _choices(converter_axis_deg: float | None) -> list[SpatialChoice]:
+def _choices() -> list[SpatialChoice]:
+    """Ways of using the spatial elements, simplest first (fewest elements in the beam)."""
     return [
         SpatialChoice("none", False, False),
         SpatialChoice("rotator", False, True),
@@ -401,7 +439,7 @@ def advise(rho: ArrayLike, target: ArrayLike, *, converter_axis_deg: float | Non
     local = best_local(rho4, tket, rng, tol)
     c = concurrence_of_ket(tket)
     found: list[tuple[SpatialChoice, float, Real, float, int]] = []
-    for choice in _choices(converter_axis_deg):
+    for choice in _choices():
         if found and max(f[1] for f in found) >= local.value - SIMPLER_WITHIN:
             break  # a simpler use of the elements already reaches the best local fidelity
         def g(angles: Real, choice: SpatialChoice = choice) -> Real:
@@ -455,6 +493,10 @@ def advise(rho: ArrayLike, target: ArrayLike, *, converter_axis_deg: float | Non
     else:
         search = (f"branch and bound over the spatial elements' angles (Lipschitz {LIPSCHITZ_PER_RAD:g} per rad, "
                   f"{evaluations} evaluations); the converter and rotator do not reach every SU(2)")
+    if reached > local.value:
+        # the stack's transformation is itself local: the search over any local unitary fell short
+        local = replace(local, value=reached, polarization=polarization_stack(q1, h, q2),
+                        spatial=spatial_stack(conv_deg, rot_deg), upper_bound=max(local.upper_bound, reached))
     best_u = np.kron(local.polarization, local.spatial)
     return Advice(
         settings=settings, fidelity=reached, fidelity_upper_bound=max(bound, reached), search=search,

@@ -8,8 +8,6 @@ import argparse
 import json
 from pathlib import Path
 
-import numpy as np
-
 # Within this of the best local fidelity, the remaining error is the source's, not the settings'.
 SETTINGS_MATCH = 1e-6
 
@@ -27,19 +25,22 @@ def add_parser(sub) -> None:
         ),
     )
     p.add_argument("source", metavar="FILE_OR_STATE",
-                   help="a joint run file (FILE.h5), or a state: a name (radial, azimuthal, hybrid_plus, "
-                        "hybrid_minus, a product such as H,h) or four amplitudes such as '0.6,0,0,0.8j'")
+                   help="a joint run file (FILE.h5), a saved `analyze --json` document (FILE.json), or a "
+                        "state: a name (radial, azimuthal, hybrid_plus, hybrid_minus, a product such as H,h) "
+                        "or four amplitudes such as '0.6,0,0,0.8j'")
     p.add_argument("--target", required=True, metavar="NAME_OR_STATE",
                    help="the beam wanted: a name or four amplitudes (basis |H,h>, |H,v>, |V,h>, |V,v>)")
     p.add_argument("--json", action="store_true", help="print the result as JSON")
     p.add_argument("--converter-axis", type=float, metavar="DEG", default=None,
                    help="the mode converter is mounted at this fixed axis angle (default: a stage turns it)")
+    p.add_argument("--tolerance", type=float, default=1e-3, metavar="F",
+                   help="certify the optimum to within this fidelity where no closed form exists (default 1e-3)")
     p.add_argument("--bootstrap", type=int, default=200, metavar="N", help="bootstrap resamples (default 200)")
     p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
     p.set_defaults(handler=run)
 
 
-def parse_state(text: str, what: str) -> tuple[np.ndarray, str]:
+def parse_state(text: str, what: str):
     """A 4-ket from a name (joint mode or product ``P,s``) or four comma-separated amplitudes.
 
     Raises
@@ -47,6 +48,8 @@ def parse_state(text: str, what: str) -> tuple[np.ndarray, str]:
     UsageError
         With the names and the format expected.
     """
+    import numpy as np
+
     from lightloom.sequencer.errors import UsageError
     from lightloom.sequencer.optics.states import (
         JOINT_KETS, POLARIZATION_KETS, SPATIAL_KETS, normalize_ket, parse_complex,
@@ -74,6 +77,8 @@ def _fmt_vs(value: float, std: float | None) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
+    import numpy as np
+
     from lightloom.sequencer.analysis.advice import advise, pulled_back_target
     from lightloom.sequencer.errors import UsageError
 
@@ -81,16 +86,22 @@ def run(args: argparse.Namespace) -> int:
         raise UsageError("--bootstrap needs at least 2 resamples")
     if args.converter_axis is not None and not np.isfinite(args.converter_axis):
         raise UsageError("--converter-axis: expected a finite angle in degrees")
+    if not (np.isfinite(args.tolerance) and 1e-6 <= args.tolerance <= 0.1):
+        raise UsageError("--tolerance: expected a fidelity between 1e-6 and 0.1 (smaller takes longer)")
     target, target_label = parse_state(args.target, "--target")
     estimates = None
-    if Path(args.source).suffix in (".h5", ".journal") or Path(args.source).exists():
+    if Path(args.source).suffix == ".json":
+        rho = _from_analysis_json(args.source)
+        source = {"kind": "analysis", "file": args.source}
+    elif Path(args.source).suffix in (".h5", ".journal") or Path(args.source).exists():
         rho, estimates = _measured(args)
         source = {"kind": "run", "file": args.source}
     else:
         ket, label = parse_state(args.source, "FILE_OR_STATE (not an existing run file)")
         rho = np.outer(ket, ket.conj())
         source = {"kind": "state", "state": label}
-    adv = advise(rho, target, converter_axis_deg=args.converter_axis, rng=np.random.default_rng(args.seed))
+    adv = advise(rho, target, converter_axis_deg=args.converter_axis, tol=args.tolerance,
+                 rng=np.random.default_rng(args.seed))
 
     std_fidelity = std_best = std_now = None
     if estimates is not None:
@@ -122,7 +133,7 @@ def run(args: argparse.Namespace) -> int:
         "remaining_error": limited,
         "std_from": ("bootstrap replicates of the reconstructed state (the best local fidelity's std "
                      "is that of the fidelity at its optimal unitaries, to first order)")
-        if estimates is not None else "a state given exactly: no std",
+        if estimates is not None else "a state given without its replicates: no std",
     }
     if args.json:
         print(json.dumps(doc, indent=1))
@@ -131,9 +142,36 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
+def _from_analysis_json(path: str):
+    """The density matrix of a saved ``analyze --json`` document (no replicates: no std)."""
+    import numpy as np
+
+    from lightloom.sequencer.errors import OpticsError, UsageError
+    from lightloom.sequencer.optics.states import normalize_density
+
+    try:
+        doc = json.loads(Path(path).read_text(encoding="utf-8"))
+        dm = doc["density_matrix"]
+        rho = np.asarray(dm["real"], dtype=float) + 1j * np.asarray(dm["imag"], dtype=float)
+    except FileNotFoundError:
+        raise UsageError(f"{path}: no such file") from None
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        raise UsageError(f"{path}: expected the JSON document of `lightloom analyze --json` with a "
+                         f"density_matrix {{real, imag}} ({type(exc).__name__}: {exc})") from None
+    if rho.shape != (4, 4):
+        raise UsageError(f"{path}: the advisor needs a joint (4x4) density matrix, this one is {rho.shape[0]}x{rho.shape[1]}"
+                         if rho.ndim == 2 else f"{path}: density_matrix is not a matrix")
+    try:
+        return normalize_density(rho, tol=1e-6)
+    except OpticsError as exc:
+        raise UsageError(f"{path}: {exc}") from None
+
+
 def _measured(args: argparse.Namespace):
     """The maximum-likelihood 4x4 state of the run, and a function giving the bootstrap std of the
     fidelity to any (pulled-back) target density matrix."""
+    import numpy as np
+
     from lightloom.sequencer.analysis.pipeline import AnalysisError, estimate, prepare
     from lightloom.sequencer.errors import UsageError
     from lightloom.sequencer.storage.store import load_run
@@ -150,7 +188,7 @@ def _measured(args: argparse.Namespace):
     except AnalysisError as exc:
         raise UsageError(f"{args.source}: {exc}") from None
 
-    def std_of_fidelity_to(target_rho: np.ndarray) -> float:
+    def std_of_fidelity_to(target_rho) -> float:
         # Same seed for every call: the same replicates, so the stds are comparable.
         est = estimate(prep, target=target_rho, rng=np.random.default_rng(args.seed), n_bootstrap=args.bootstrap)
         return float(est.figures["fidelity"][1])

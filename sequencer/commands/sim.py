@@ -44,12 +44,20 @@ def add_parser(sub) -> None:
     s.add_argument("--time-scale", type=float, default=None,
                    help="wall seconds per simulated second (default: the bench's simulation.time_scale, or 1 "
                         "when that is 0: served instruments need a running clock)")
+    s.add_argument("--dialect", action="append", default=[], metavar="DEVICE=DIALECT",
+                   help="serve DEVICE (a device name, or a kind such as power_meter for all of that kind) "
+                        "speaking DIALECT (a built-in dialect name or a dialect YAML file; see docs/instruments.md); "
+                        "the written bench gets the matching driver options. Repeatable")
     s.add_argument("--for-seconds", type=float, default=None, help=argparse.SUPPRESS)
     s.set_defaults(handler=run)
 
 
-def served_bench_text(bench, addresses, transport: str) -> str:
-    """The bench as YAML with every device driven by the real drivers at its served address."""
+def served_bench_text(bench, addresses, transport: str, dialects=None) -> str:
+    """The bench as YAML with every device driven by the real drivers at its served address
+    (``dialects``: device name -> Dialect for devices that speak one)."""
+    from lightloom.simulators.dialects import driver_options
+
+    dialects = dialects or {}
     data = yaml.safe_load(bench.resolved_text)
     data.pop("simulation", None)
     data.pop("extends", None)
@@ -58,18 +66,64 @@ def served_bench_text(bench, addresses, transport: str) -> str:
         f"The simulated instruments of bench '{bench.name}' served on 127.0.0.1 by `lightloom sim serve`; "
         f"the real {transport} drivers talk to them"
     )
-    for name, dev in data["devices"].items():
-        kind = dev["driver"].split(".", 1)[1]
-        dev["driver"] = f"{transport}.{kind}"
+    for name, dev in list(data["devices"].items()):
+        kind = dev.pop("driver").split(".", 1)[1]
         a = addresses[name]
-        dev["address"] = a.visa_address if transport == "visa" else a.serial_url
-        options = {"read_termination": "\n", "write_termination": "\n", "timeout_s": 2.0}
-        dev["options"] = options
+        dev.pop("address", None)
+        dev.pop("options", None)
+        # Driver, address and options first, as a person reads a device entry.
+        data["devices"][name] = {
+            "driver": f"{transport}.{kind}",
+            "address": a.visa_address if transport == "visa" else a.serial_url,
+            "options": (driver_options(dialects[name], name) if name in dialects
+                        else {"read_termination": "\n", "write_termination": "\n", "timeout_s": 2.0}),
+            **dev,
+        }
     header = (
         f"{SERVED_HEADER}: the instruments below are simulated and listen on 127.0.0.1\n"
         "# only while the server runs. Running a protocol on this bench goes through the real drivers.\n"
     )
-    return header + yaml.safe_dump(data, sort_keys=False)
+    return header + yaml.dump(data, Dumper=TemplateDumper, sort_keys=False, width=120)
+
+
+class TemplateDumper(yaml.SafeDumper):
+    """A safe YAML writer that spells strings holding control characters ("\\n", "\\r\\n") as
+    double-quoted escapes on one line, as a person writes them in a bench."""
+
+
+def _represent_text(dumper: yaml.SafeDumper, text: str) -> yaml.ScalarNode:
+    if any(ch in text for ch in "\r\n\t"):
+        return dumper.represent_scalar("tag:yaml.org,2002:str", text, style='"')
+    return dumper.represent_str(text)
+
+
+TemplateDumper.add_representer(str, _represent_text)
+
+
+def chosen_dialects(bench, choices: list[str]) -> dict:
+    """Device name -> Dialect from ``--dialect DEVICE_OR_KIND=DIALECT`` choices (later ones win)."""
+    from lightloom.sequencer.errors import UsageError
+    from lightloom.simulators.dialects import DialectError, load_dialect
+
+    out = {}
+    for choice in choices:
+        who, sep, what = choice.partition("=")
+        if not sep or not who or not what:
+            raise UsageError(f"--dialect {choice!r}: expected DEVICE=DIALECT, e.g. pm_ref=scpi-power-meter")
+        names = [n for n, d in bench.devices.items() if n == who or d.kind == who]
+        if not names:
+            raise UsageError(f"--dialect {choice!r}: bench '{bench.name}' has no device or kind {who!r} "
+                             f"(devices: {', '.join(bench.devices)})")
+        try:
+            dialect = load_dialect(what)
+        except DialectError as exc:
+            raise UsageError(str(exc)) from None
+        for name in names:
+            if bench.devices[name].kind != dialect.kind:
+                raise UsageError(f"--dialect {choice!r}: {name} is a {bench.devices[name].kind}, "
+                                 f"dialect {dialect.name!r} is for a {dialect.kind}")
+            out[name] = dialect
+    return out
 
 
 def run(args: argparse.Namespace) -> int:
@@ -89,18 +143,19 @@ def run(args: argparse.Namespace) -> int:
         scale = bench.simulation.time_scale if bench.simulation.time_scale > 0 else 1.0
     if not scale > 0:
         raise UsageError(f"--time-scale must be > 0 for served instruments, got {scale}")
+    dialects = chosen_dialects(bench, args.dialect)
     table = SimulatedTable(bench, time_scale=scale)
     for device in table.devices.values():
         device.connect()
     try:
-        server = LoopbackServer(table.devices, base_port=args.base_port, log_path=args.log)
+        server = LoopbackServer(table.devices, base_port=args.base_port, log_path=args.log, dialects=dialects)
         server.start()
     except OSError as exc:
         raise UsageError(f"cannot listen on 127.0.0.1 (base port {args.base_port}): {exc}; try another --base-port") from None
     console = Console()
     try:
         addresses = server.addresses()
-        out.write_text(served_bench_text(bench, addresses, args.transport), encoding="utf-8")
+        out.write_text(served_bench_text(bench, addresses, args.transport, dialects), encoding="utf-8")
         console.print(f"simulated instruments of '{bench.name}' on 127.0.0.1 (time scale {scale:g}):", highlight=False)
         width = max(len(n) for n in addresses)
         for name, a in addresses.items():

@@ -98,7 +98,7 @@ def driver_options_check(bench: Bench) -> None:
         if spec.family not in ("visa", "serial"):
             continue
         try:
-            check(spec.driver, spec.options)
+            check(spec.driver, spec.options, *([spec.states] if spec.kind == "actuator" and spec.states else []))
         except error_type as exc:
             path = f"devices.{spec.name}" + (f".{exc.key}" if getattr(exc, "key", None) else "")
             file, line = bench.locate(path)

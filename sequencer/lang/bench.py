@@ -213,6 +213,7 @@ class Retry:
     attempts: int
     backoff_s: float
     max_backoff_s: float
+    shutter_close_s: float = 60.0
 
 
 @dataclass(frozen=True)
@@ -663,10 +664,11 @@ def _thresholds(sec: Section | None) -> Thresholds:
 def _retry(sec: Section | None) -> Retry:
     if sec is None:
         return Retry(4, 0.1, 5.0)
-    sec.check_keys(("attempts", "backoff_s", "max_backoff_s"))
+    sec.check_keys(("attempts", "backoff_s", "max_backoff_s", "shutter_close_s"))
     attempts = sec.integer("attempts", 4, ge=1, le=100)
     backoff = sec.number("backoff_s", "s", 0.1, ge=0.0, le=60.0)
-    return Retry(attempts, backoff, sec.number("max_backoff_s", "s", max(5.0, backoff), ge=backoff, le=3600.0))
+    return Retry(attempts, backoff, sec.number("max_backoff_s", "s", max(5.0, backoff), ge=backoff, le=3600.0),
+                 sec.number("shutter_close_s", "s", 60.0, ge=0.0, le=3600.0))
 
 
 def _source(sec: Section) -> SimSource:
@@ -836,7 +838,7 @@ def _bench_from_tree(root: YMap, source_path: str, extends: tuple[str, ...]) -> 
         optics=optics,
         calibration=calibration,
         thresholds=_thresholds(sec.section("thresholds", "beam_loss_fraction, beam_wait_s, drift_fraction")),
-        retry=_retry(sec.section("retry", "attempts, backoff_s, max_backoff_s")),
+        retry=_retry(sec.section("retry", "attempts, backoff_s, max_backoff_s, shutter_close_s")),
         simulation=_simulation(sim_sec, calibration, optics, devices),
         resolved_text=resolved_text,
         sha256=hashlib.sha256(resolved_text.encode("utf-8")).hexdigest(),

@@ -352,10 +352,15 @@ def complex_list(node: YNode, what: str, n: int) -> tuple[complex, ...]:
 def normalized_ket(node: YNode, what: str, n: int) -> tuple[complex, ...]:
     """A ket of ``n`` complex amplitudes, scaled to unit norm; a zero vector is an error."""
     amplitudes = complex_list(node, what, n)
-    norm = math.sqrt(sum(abs(a) ** 2 for a in amplitudes))
-    if norm < 1e-12:
+    # Scale by the largest amplitude first: squares of amplitudes near 1e200 overflow.
+    largest = max(abs(a) for a in amplitudes)
+    if largest == 0.0 or not math.isfinite(largest):
         fail(f"{what}: the ket is zero; give at least one non-zero amplitude", node)
-    return tuple(a / norm for a in amplitudes)
+    scaled = [a / largest for a in amplitudes]
+    norm = math.sqrt(sum(abs(a) ** 2 for a in scaled))
+    if largest * norm < 1e-12:
+        fail(f"{what}: the ket is zero; give at least one non-zero amplitude", node)
+    return tuple(a / norm for a in scaled)
 
 
 def density_matrix(node: YNode, what: str, n: int) -> tuple[tuple[complex, ...], ...]:

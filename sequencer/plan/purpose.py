@@ -22,7 +22,9 @@ FACTORS = ANALYZERS
 
 def plan_operators(plan: StepList, table: TableModel) -> NDArray[np.complex128]:
     """The per-port measurement operators (n, 4, 4) of the distinct settings of the plan's measure steps."""
-    rows = [step.settings.as_vector() for step in plan.steps if step.kind == "measure"]
+    # Steps repeat a few settings many times (repeats, passes): convert each distinct one once.
+    distinct = dict.fromkeys(step.settings for step in plan.steps if step.kind == "measure")
+    rows = [settings.as_vector() for settings in distinct]
     if not rows:
         return np.zeros((0, 4, 4), dtype=np.complex128)
     settings = np.unique(np.nan_to_num(np.array(rows, dtype=float), nan=0.0), axis=0)

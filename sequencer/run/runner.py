@@ -17,8 +17,8 @@ from typing import Callable, Protocol, TypeVar
 import numpy as np
 
 from lightloom.drivers.errors import InstrumentError
-from lightloom.drivers.retry import call_with_retry
 from lightloom.drivers.camera import Camera, Frame
+from lightloom.drivers.retry import call_with_retry, close_shutter_within
 from lightloom.drivers.interfaces import Device, DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
 from lightloom.sequencer.plan.compiler import TableModel
 from lightloom.sequencer.errors import RunFault
@@ -72,6 +72,7 @@ class RunPolicy:
     retry_attempts: int = 4
     backoff_s: float = 0.1
     max_backoff_s: float = 5.0
+    shutter_close_s: float = 60.0
     beam_loss_fraction: float = 0.3
     beam_wait_s: float = 900.0
     beam_poll_s: float = 5.0
@@ -143,6 +144,7 @@ class Runner:
         parallel_reads: bool = True,
         frames: FrameSink | None = None,
         frames_averaged: int | None = None,
+        begin_reading: Callable[[int], None] | None = None,
     ) -> None:
         self.plan = plan
         self.table = table
@@ -163,6 +165,9 @@ class Runner:
         self.frames = frames
         self.frames_averaged = frames_averaged
         self._taken: dict[int, Frame] = {}
+        # Told the index of each step just before its detectors are read (a simulated table
+        # derives that reading's noise from it, so a resumed run reads what an uninterrupted one would).
+        self.begin_reading = begin_reading
         self._beam = _BeamWatch()
         self._positions: dict[str, float] = {}
         self._converter_state: str | None = None
@@ -184,25 +189,20 @@ class Runner:
 
     # ------------------------------------------------------------------ safety
     def close_shutter_safely(self) -> bool:
-        """Close the shutter, retrying and reconnecting; True if the shutter reports closed."""
-        for attempt in range(max(3, self.policy.retry_attempts)):
-            try:
-                self.rig.shutter.close_beam()
-                self._shutter_open = False
-                if not self.rig.shutter.is_open():
-                    return True
-            except InstrumentError as exc:
-                self.log(f"closing the shutter failed ({exc}); retrying")
-                try:
-                    self.rig.shutter.reconnect()
-                except InstrumentError:
-                    pass
-            except Exception as exc:  # the shutter must be tried again whatever went wrong
-                self.log(f"closing the shutter failed ({exc!r}); retrying")
-            except (KeyboardInterrupt, StopRequested):
-                # A second Ctrl-C or SIGTERM while stopping: the run stops anyway, the shutter first.
-                self.log("stop requested again while closing the shutter; closing it first")
-        return False
+        """Close the shutter, retrying with back-off and a reconnect; True once it reads back closed.
+
+        Attempts go on for ``policy.shutter_close_s`` (bench ``retry.shutter_close_s``, 60 s by
+        default) on the run's clock, pausing ``backoff_s``, doubling up to ``max_backoff_s``,
+        between attempts (drivers.retry.close_shutter_within), so a controller that restarts or a
+        rack that comes back within that time still receives the close. Only then does the caller
+        warn to block the beam by hand.
+        """
+        closed = close_shutter_within(
+            self.rig.shutter, self.policy.shutter_close_s, backoff_s=self.policy.backoff_s,
+            max_backoff_s=self.policy.max_backoff_s, now=self.now, sleep=self.sleep, log=self.log,
+        )
+        self._shutter_open = False if closed else None
+        return closed
 
     # ------------------------------------------------------------------ retries
     def _call(self, device: Device, what: str, fn: Callable[[], T]) -> T:
@@ -415,6 +415,8 @@ class Runner:
             self._set_shutter(step.shutter_open)
             self._move(step.settings)
             readback = self._readback(step.settings)
+            if self.begin_reading is not None:
+                self.begin_reading(step.index)
             t_start = self.now()
             values, ref = self._read_all(step.dwell_s) if readback is not None else (None, math.nan)
             t_end = self.now()

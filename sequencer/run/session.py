@@ -46,14 +46,20 @@ class Assembled:
     simulated_table: object | None = None
 
 
-def assemble(bench: Bench) -> Assembled:
-    """Build the devices of ``bench``: simulated in process, or real drivers (not yet connected)."""
+def assemble(bench: Bench, *, continue_at: tuple[float, float] | None = None) -> Assembled:
+    """Build the devices of ``bench``: simulated in process, or real drivers (not yet connected).
+
+    ``continue_at`` (simulated benches, on resume): (UNIX s at which the run's simulated clock
+    read 0, virtual s reached by the last recorded reading), so the simulated clock, its drift and
+    its scheduled faults continue where the run stopped instead of starting again.
+    """
     if bench.is_simulated:
         from lightloom.simulators.table import SimulatedTable
 
-        table = SimulatedTable(bench)
+        epoch, start_s = continue_at if continue_at is not None else (time.time(), 0.0)
+        table = SimulatedTable(bench, start_s=start_s, epoch_s=epoch)
         devices = table.devices
-        wall0 = table.epoch_s
+        wall0 = epoch
         now = lambda: wall0 + table.clock.now()  # noqa: E731
         sleep = table.clock.sleep
     else:
@@ -158,6 +164,7 @@ def policy_for(bench: Bench) -> RunPolicy:
     th, rt = bench.thresholds, bench.retry
     return RunPolicy(
         retry_attempts=rt.attempts, backoff_s=rt.backoff_s, max_backoff_s=rt.max_backoff_s,
+        shutter_close_s=rt.shutter_close_s,
         beam_loss_fraction=th.beam_loss_fraction, beam_wait_s=th.beam_wait_s,
         beam_poll_s=min(5.0, max(0.05, th.beam_wait_s / 20.0)), drift_fraction=th.drift_fraction,
     )
@@ -256,7 +263,7 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
                 "version that started it, or start a new run"
             )
         done = {int(i) for i in store.readings.step_index}
-        assembled = assemble(bench)
+        assembled = assemble(bench, continue_at=_simulated_clock_at(store) if bench.is_simulated else None)
     except BaseException:
         # A refused resume changes nothing: the run keeps its status and message (e.g. the fault).
         store.release()
@@ -264,6 +271,21 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
     if store.bytes_cut:
         _say(console, f"cut a torn journal tail of {store.bytes_cut} bytes (a reading that was never reported)")
     return _execute(protocol, bench, plan, assembled, store, out_path, done, console, live, resumed=True)
+
+
+def _simulated_clock_at(store: RunStore) -> tuple[float, float] | None:
+    """(UNIX s of the simulated clock's zero, virtual s the run had reached when it stopped: its
+    last recorded reading or event) of a stopped simulated run, or None before its first event.
+
+    The run's first event is written before any device spends time, so its time is the clock's zero.
+    """
+    starts = [e.t for e in store.events if e.kind == "start"]
+    if not starts:
+        return None
+    epoch = starts[0]
+    r = store.readings
+    reached = max([e.t for e in store.events] + ([float(np.max(r.t_end))] if len(r) else []))
+    return epoch, max(0.0, reached - epoch)
 
 
 def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
@@ -346,6 +368,7 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
                         sleep=assembled.sleep, wall=time.monotonic, log=log, units=store.header.port_units,
                         run_start=_run_start(store, assembled.now),
                         parallel_reads=not (bench.is_simulated and bench.simulation.time_scale == 0),
+                        begin_reading=getattr(assembled.simulated_table, "begin_step", None),
                         **runner_kwargs)
         runner._beam.baseline = _initial_beam_level(store, table)
         with stop_on_sigterm():
