@@ -1,9 +1,11 @@
 """Loopback SCPI-style server: each simulated device on its own 127.0.0.1 TCP port, with served faults and a command log.
 
-The command set is the one in the module map (IEEE 488.2 common commands plus device commands of
-our own). Lines end with "\\n" (a trailing "\\r" is stripped); one command per line; headers are
-case-insensitive. Unknown headers push -113, bad or out-of-range arguments -222, a device fault
--240; a command with an error sends no reply. The error queue holds 16 entries; when it is full
+The default command set is IEEE 488.2 common commands plus device commands of our own (the
+drivers' default templates, drivers/options.py DEFAULT_COMMANDS); a device given a dialect
+(simulators/dialects.py) speaks that instead, with its own line ending. Default lines end with
+"\\n" (a trailing "\\r" is stripped); one command per line; headers are case-insensitive. Unknown
+headers push -113, bad or out-of-range arguments -222, a device fault -240; a command with an error
+sends no reply. The error queue holds 16 entries; when it is full
 the newest is replaced by -350 (IEEE 488.2 / SCPI-99 queue rules, from memory).
 
 Served link faults: ``timeout`` swallows a query (it is not executed, no reply), ``garbled``

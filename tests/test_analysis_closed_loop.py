@@ -122,7 +122,7 @@ def test_analyze_json_has_the_fixed_keys(tmp_path: Path, capsys) -> None:
         assert key in doc
     assert set(doc["density_matrix"]) == {"real", "imag"}
     assert set(doc["stokes"]) == {"polarization", "spatial"}
-    assert all(set(x) == {"value", "std"} for x in doc["stokes"]["polarization"])
+    assert all(set(x) == {"value", "std", "interval"} for x in doc["stokes"]["polarization"])
     assert doc["stokes"]["polarization"][0]["value"] == 1.0
     assert set(doc["run"]) >= {"status", "steps_done", "steps_total"}
     rho = np.array(doc["density_matrix"]["real"]) + 1j * np.array(doc["density_matrix"]["imag"])

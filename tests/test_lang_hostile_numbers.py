@@ -18,8 +18,11 @@ SOURCES = {
     "protocol": REPO / "protocols" / "overnight-joint-36.yaml",
     "scan": REPO / "protocols" / "waveplate-calibration-hwp.yaml",
 }
+# The bench templates for real instruments (driver options included), when this checkout has them.
+for _example in sorted((REPO / "docs" / "examples" / "benches").glob("*.yaml")):
+    SOURCES[f"bench-{_example.stem}"] = _example
 # A number written after "key: " (block or flow style).
-NUMBER_SITE = re.compile(r"(?<=: )-?\d+(?:\.\d+)?(?:e-?\d+)?(?=\s*[,}\n])")
+NUMBER_SITE = re.compile(r"(?<=: )-?\d+(?:\.\d+)?(?:e-?\d+)?(?=\s*(?:#.*)?[,}\n])")
 
 HUGE = "1" + "0" * 400
 HOSTILE = {
@@ -41,8 +44,8 @@ def sites(text: str) -> list[tuple[int, int, int]]:
 
 
 def parse(kind: str, text: str, path: str) -> None:
-    if kind == "bench":
-        parse_bench(text, path, directory=SOURCES["bench"].parent)
+    if kind.startswith("bench"):
+        parse_bench(text, path, directory=SOURCES[kind].parent)
     else:
         parse_protocol(text, path)
 

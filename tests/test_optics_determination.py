@@ -108,3 +108,21 @@ def test_single_factor_space_of_2x2_operators() -> None:
 def test_analyzes_outside_the_factors_is_refused() -> None:
     with pytest.raises(ValueError):
         determination(pol_only("HV"), ("polarization",), ("spatial",))
+
+
+def test_readings_tangled_with_the_other_factor_say_so() -> None:
+    # One detector behind the polarizing splitter's H output reads h, d and l+ with the polarization
+    # still selected: the spatial state is not fixed, and the report says why.
+    ops = [np.kron(density(POLARIZATION_KETS["H"]), p) for p in projectors(SPATIAL_KETS, ["h", "d", "l+"])]
+    det = determination(ops, BOTH, ("spatial",))
+    assert det.kind == "partial" and det.stokes["spatial"] == (False,) * 4
+    assert "spatial: h without v" in det.missing and "spatial: l+ without l-" in det.missing
+    assert det.missing[-1].startswith("spatial: the readings also depend on the polarization state")
+
+
+def test_ports_that_sum_to_the_other_factors_identity_are_not_called_tangled() -> None:
+    # Four ports (H, V) x (h, v) read at one setting: each depends on both factors, their sums do not.
+    ops = [np.kron(density(POLARIZATION_KETS[p]), density(SPATIAL_KETS[s])) for p in "HV" for s in "hv"]
+    det = determination(ops, BOTH, ("polarization",))
+    assert not any("depend" in m for m in det.missing)
+    assert det.stokes["polarization"] == (True, True, False, False)

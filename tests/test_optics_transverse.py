@@ -148,3 +148,19 @@ def test_radial_beam_behind_a_horizontal_polarizer_shows_two_lobes_along_x() -> 
     s = tv.local_stokes(JOINT_KETS["radial"], X, Y)
     i0 = tv.polarizer_intensity(s, 0.0)
     assert np.allclose(i0, tv.first_order_modes(X, Y)[..., 0] ** 2 / 2, atol=1e-14)
+
+
+def test_intensity_behind_a_quarter_wave_plate_and_polarizer_is_the_right_circular_part() -> None:
+    # A quarter-wave plate at 45 deg then a polarizer at 0 deg passes R = (1, i)/sqrt2 whole, so the
+    # intensity is (S0 + S3)/2; the matrices are sympy's (sympy.physics.optics.polarization).
+    sympy = pytest.importorskip("sympy")
+    from sympy.physics.optics.polarization import linear_polarizer, quarter_wave_retarder
+
+    m = np.array((linear_polarizer(0) * quarter_wave_retarder(sympy.pi / 4)).evalf(), dtype=complex)
+    rho = random_density(2)
+    s = tv.local_stokes(rho, X, Y)
+    got = tv.analyzed_intensity(rho, m, X, Y)
+    assert np.allclose(got, 0.5 * (s[..., 0] + s[..., 3]), atol=1e-14)
+    for angle in tv.POLARIZER_ANGLES_DEG:
+        p = np.array(linear_polarizer(sympy.rad(angle)).evalf(), dtype=complex)
+        assert np.allclose(tv.analyzed_intensity(rho, p, X, Y), tv.polarizer_intensity(s, angle), atol=1e-14)

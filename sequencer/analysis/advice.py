@@ -26,7 +26,11 @@ Best fidelity under any local unitaries:
   x = a + i b, those with |x^T x| = C (the target's concurrence), i.e. |a|^2 = (1 + C)/2,
   |b|^2 = (1 - C)/2, a . b = 0 after a phase; the Lagrangian dual of maximising x^dagger rho x over
   that set is min over (delta, nu) of 2 lambda_max(Q - N(delta, nu)), an upper bound valid at any
-  (delta, nu) (weak duality). The reported gap is the bound minus the value reached.
+  (delta, nu) (weak duality). When these bounds leave a gap above the tolerance, a branch and
+  bound certifies the optimum: the target is unchanged by opposite phases on its Schmidt vectors,
+  so only two angles of the spatial rotation matter (its coset modulo turns about the spatial
+  Schmidt axis), each changing F by at most 1/2 per radian, and the polarization optimum is closed
+  form for each. The reported gap is the bound minus the value reached.
 
 The lab's stack: the quarter-half-quarter polarization stack is universal, so the polarization
 rotation is always the Procrustes optimum; the spatial elements (converter in/out at an angle,

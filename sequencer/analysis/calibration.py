@@ -647,8 +647,34 @@ def fit_sorter_visibility(
                            fit_gains=False, input_state=input_state)
 
 
+def model_readings(
+    fit: CalibrationFit, scan: ScanReadings, model: AnalyzerModel, ports: Sequence[PortModel],
+    settings: ArrayLike, *, input_state: ArrayLike = CALIBRATION_INPUT,
+) -> NDArray[np.float64]:
+    """Readings (n, n_ports) the fit predicts for ``scan`` at element ``settings`` (n, 5), shutter open, W.
+
+    The fitted physical parameters and relative gains set the optics, the scan's fitted scales and
+    backgrounds turn probabilities into readings; a port without a fitted scale (no light on it in
+    this scan) is NaN.
+    """
+    values = {n: v for n, v in zip(fit.names, fit.values) if n in PHYSICAL_PARAMETERS or n.startswith(GAIN_PREFIX)}
+    unit_ports = tuple(dataclasses.replace(p, gain=1.0) for p in ports)
+    optics, trial_ports = _with_parameters(model, unit_ports, values)
+    ket = np.asarray(input_state, dtype=np.complex128)
+    ket = ket / np.linalg.norm(ket)
+    grid = np.nan_to_num(np.atleast_2d(np.asarray(settings, dtype=float)), nan=0.0)
+    p = probabilities(ket, port_operators(optics, trial_ports, grid))
+    out = np.full(p.shape, np.nan)
+    for j, port in enumerate(ports):
+        background = f"background[{scan.label}/{port.name}]"
+        scale = next((n for n in (f"scale[{scan.label}/{port.name}]", f"scale[{scan.label}]") if n in fit.names), None)
+        if background in fit.names and scale is not None:
+            out[:, j] = fit.value(scale) * p[:, j] + fit.value(background)
+    return out
+
+
 __all__ = [
-    "CALIBRATION_INPUT", "CalibrationFit", "ScanReadings", "PHYSICAL_PARAMETERS", "fit_calibration",
+    "CALIBRATION_INPUT", "model_readings", "CalibrationFit", "ScanReadings", "PHYSICAL_PARAMETERS", "fit_calibration",
     "fit_plate_scan", "fit_port_gains", "fit_sorter_visibility", "gain_ports", "prepare_scan",
     "scan_parameters",
 ]

@@ -7,11 +7,16 @@ the result:
    their spread enters the noise model;
 2. port gains: divided out of power readings and of their operators alike (E = g K^dagger K in the
    file); counts keep gains in the operators, since counts cannot be rescaled;
-3. drift: readings are divided by the smoothed pick-off reference (or by the reference steps'
-   total power interpolated in time) relative to its mean;
+3. drift: readings are divided by a smooth drift model fitted to the pick-off reference (or to
+   the reference steps' total power), only where the reference shows a drift beyond its own
+   noise (sequencer.analysis.drift);
 4. normalisation per setting over complementary ports (optional, when the ports of a setting
    measure a complete set): each step's readings are divided by their sum, which cancels drift
    without a reference meter.
+
+The errors of the background subtraction and of the drift model are drawn into every bootstrap
+replicate (sequencer.analysis.propagation), and every figure gets a 95% interval inside its
+physical range (sequencer.analysis.intervals).
 
 Single-factor protocols sum the readings of the ports (and expansion steps) that measure the same
 projector on the analysed factor, then reduce the operators to that factor, Tr_other(E) / 2,
@@ -20,6 +25,7 @@ which is exact when the summed operator is A (x) I.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 from typing import Any
@@ -30,6 +36,10 @@ from lightloom.sequencer.analysis.estimate import (
     MleResult, linear_inversion, mle_gaussian, mle_poisson, parametric_bootstrap,
 )
 from lightloom.sequencer.analysis.estimate import merit
+from lightloom.sequencer.analysis.background import BackgroundModel, background_info, background_model, pooled_reading_noise
+from lightloom.sequencer.analysis.drift import DriftModel, fit_drift, no_drift
+from lightloom.sequencer.analysis.intervals import figure_bounds
+from lightloom.sequencer.analysis.propagation import CorrectionNoise, correction_noise
 from lightloom.sequencer.optics.analyzer import complete_port_set
 from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS, partial_trace
 from lightloom.sequencer.model.steps import StepList
@@ -58,6 +68,7 @@ class Prepared:
     corrections: dict[str, Any]
     labels: tuple[str, ...] = ()
     times: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    correction_noise: CorrectionNoise | None = None
 
 
 @dataclass(frozen=True)
@@ -68,71 +79,39 @@ class Estimate:
     rho_std: np.ndarray
     basis: tuple[str, ...]
     analyzes: tuple[str, ...]
-    figures: dict[str, tuple[float, float]]  # name -> (value, std)
-    stokes: dict[str, list[tuple[float, float]]]  # factor -> [S0..S3] (value, std)
-    closest_mode: tuple[str, float, float] | None
+    figures: dict[str, tuple[float, float, tuple[float, float]]]  # name -> (value, std, 95% interval)
+    stokes: dict[str, list[tuple[float, float, tuple[float, float]]]]  # factor -> [S0..S3] (value, std, interval)
+    closest_mode: tuple[str, float, float, tuple[float, float]] | None
     estimator: dict[str, Any]
     corrections: dict[str, Any]
     linear_rho: np.ndarray | None = None
 
 
-def _smooth(t: np.ndarray, y: np.ndarray, window: int) -> np.ndarray:
-    """Running mean in time order over ``window`` readings (the drift is slow; the meter is noisy)."""
-    order = np.argsort(t)
-    ys = y[order]
-    k = max(1, min(window, len(ys)))
-    pad = np.pad(ys, (k // 2, k - 1 - k // 2), mode="edge")
-    sm = np.convolve(pad, np.ones(k) / k, mode="valid")
-    out = np.empty_like(sm)
-    out[order] = sm
-    return out
-
-
-def _background(run: RunData) -> tuple[np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]:
-    """Per-reading background of every port (interpolated in time), its std per port, info."""
+def _background(run: RunData) -> tuple[BackgroundModel, np.ndarray]:
+    """The background model of the ports, and the background of the reference meter per reading."""
     r = run.readings
     bg = r.of_kind("background")
-    n_ports = r.values.shape[1]
     t_mid = 0.5 * (r.t_start + r.t_end)
+    model = background_model(t_mid[bg], r.values[bg])
     if not bg.any():
-        return np.zeros_like(r.values), np.zeros(n_ports), np.zeros(len(r)), {"applied": False, "readings": 0}
-    tb = t_mid[bg]
-    vb = r.values[bg]
-    per_reading = np.column_stack([np.interp(t_mid, tb, vb[:, j]) for j in range(n_ports)])
-    std = vb.std(axis=0, ddof=1) if bg.sum() > 1 else np.zeros(n_ports)
-    ref_bg = np.interp(t_mid, tb, r.reference_w[bg]) if np.isfinite(r.reference_w[bg]).all() else np.zeros(len(r))
-    info = {
-        "applied": True,
-        "readings": int(bg.sum()),
-        "mean_per_port": [float(x) for x in vb.mean(axis=0)],
-        "std_per_port": [float(x) for x in std],
-    }
-    return per_reading, std, ref_bg, info
+        return model, np.zeros(len(r))
+    ref_bg = np.interp(t_mid, t_mid[bg], r.reference_w[bg]) if np.isfinite(r.reference_w[bg]).all() else np.zeros(len(r))
+    return model, ref_bg
 
 
-def _drift_factor(run: RunData, ref_bg: np.ndarray, use_complete_sum: bool, gains: np.ndarray) -> tuple[np.ndarray, dict[str, Any]]:
-    """Relative source power at every reading, from the pick-off meter or the reference steps."""
+def _drift_model(run: RunData, ref_bg: np.ndarray, use_complete_sum: bool, gains: np.ndarray) -> DriftModel:
+    """Relative source power, from the pick-off meter or the reference steps (sequencer.analysis.drift)."""
     r = run.readings
     lit = ~r.of_kind("background")
     t_mid = 0.5 * (r.t_start + r.t_end)
     ref = r.reference_w - ref_bg
-    if lit.any() and np.isfinite(ref[lit]).all() and (ref[lit] > 0).all():
-        window = max(5, int(lit.sum()) // 10)
-        smooth = np.ones(len(r))
-        smooth[lit] = _smooth(t_mid[lit], ref[lit], window)
-        smooth[lit] /= smooth[lit].mean()
-        return smooth, {
-            "applied": True, "source": "pick-off reference meter", "smoothing_readings": window,
-            "min": float(smooth[lit].min()), "max": float(smooth[lit].max()),
-        }
+    if lit.any() and np.isfinite(ref[lit]).all():
+        return fit_drift(t_mid[lit], ref[lit], source="pick-off reference meter")
     refsteps = r.of_kind("reference")
     if refsteps.sum() >= 2 and use_complete_sum:
         total = (r.values[refsteps] / gains).sum(axis=1)
-        if (total > 0).all():
-            f = np.interp(t_mid, t_mid[refsteps], total / total.mean())
-            return f, {"applied": True, "source": "reference steps (total power, interpolated in time)",
-                       "min": float(f.min()), "max": float(f.max())}
-    return np.ones(len(r)), {"applied": False, "source": None}
+        return fit_drift(t_mid[refsteps], total, source="reference steps (total power over complementary ports)")
+    return no_drift(None, "no reference meter and no reference steps over a complete set of ports")
 
 
 def _complete_ports(run: RunData) -> bool:
@@ -140,7 +119,12 @@ def _complete_ports(run: RunData) -> bool:
 
 
 def _spread_model(values: np.ndarray, groups: np.ndarray, bg_std: float) -> tuple[float, float, str]:
-    """(a, b) of sigma^2 = a^2 + (b v)^2 from repeated readings (groups), else fall-backs."""
+    """(a, b) of sigma^2 = a^2 + (b v)^2 from repeated readings (groups), else fall-backs.
+
+    With repeats both terms are fitted (non-negative least squares on the unbiased variances),
+    the background spread entering as one more observation of a^2: a few background readings
+    alone estimate the absolute noise, which dominates at low power, too poorly.
+    """
     a = float(bg_std)
     uniq, inverse, counts = np.unique(groups, return_inverse=True, return_counts=True)
     rep = counts[inverse] >= 2
@@ -150,10 +134,23 @@ def _spread_model(values: np.ndarray, groups: np.ndarray, bg_std: float) -> tupl
         corr = counts[inverse] / np.maximum(counts[inverse] - 1, 1)  # unbiased variance per reading
         var = (dev**2 * corr)[rep]
         v2 = (means[inverse] ** 2)[rep]
-        # least squares of var = a^2 + b^2 v^2 with a fixed from the background
-        excess = np.clip(var - a * a, 0.0, None)
-        b2 = float(np.sum(excess * v2) / max(np.sum(v2 * v2), 1e-300))
-        return a, math.sqrt(max(b2, 0.0)), f"from {int(rep.sum())} repeated readings"
+        from scipy.optimize import nnls
+
+        # var = a^2 + b^2 v^2, weighted by 1 / model variance^2 (the spread of a variance estimate
+        # grows with the variance), with the background spread as one more observation of a^2.
+        v_scale = max(float(np.median(v2)), 1e-300)
+        design = np.column_stack([np.ones(var.size), v2 / v_scale])
+        rhs = var
+        if a > 0:
+            design = np.vstack([design, [1.0, 0.0]])
+            rhs = np.concatenate([var, [a * a]])
+        model_var = np.full(rhs.size, max(float(rhs.mean()), 1e-300))
+        for _ in range(3):
+            w = 1.0 / model_var
+            sol, _ = nnls(design * w[:, None], rhs * w)
+            model_var = np.maximum(design @ sol, 1e-3 * max(float(rhs.mean()), 1e-300))
+        a2, b2 = float(sol[0]), float(sol[1]) / v_scale
+        return math.sqrt(max(a2, 0.0)), math.sqrt(max(b2, 0.0)), f"from {int(rep.sum())} repeated readings"
     return a, MIN_RELATIVE_SPREAD, "no repeats: background spread and a relative floor, rescaled by the fit residuals"
 
 
@@ -170,12 +167,16 @@ def prepare(run: RunData, *, normalize: bool = False, operators: np.ndarray | No
     counts = h.port_units == "counts"
     gains = h.port_gains
     complete = _complete_ports(run)
-    bg, bg_std, ref_bg, bg_info = _background(run)
-    drift, drift_info = _drift_factor(run, ref_bg, complete, gains)
+    bg_model, ref_bg = _background(run)
+    bg_info = background_info(bg_model)
+    bg_std = bg_model.sigma if bg_model.applied else np.zeros(r.values.shape[1])
+    drift_model = _drift_model(run, ref_bg, complete, gains)
+    drift_info = drift_model.info
+    t_all = 0.5 * (r.t_start + r.t_end)
     ops_all = np.asarray(operators if operators is not None else r.operators)
-    values = (r.values - bg)[meas]
+    values = (r.values - bg_model.at(t_all))[meas]
     ops = ops_all[meas]
-    f = drift[meas]
+    f = drift_model.factor(t_all)[meas]
     steps = r.step_index[meas]
     plan = StepList.from_json(h.steps_json)
     labels_by_step = {s.index: s.port_labels for s in plan.steps}
@@ -239,18 +240,42 @@ def prepare(run: RunData, *, normalize: bool = False, operators: np.ndarray | No
         t_out = t_rows
         rep_keys = [hash((k[0], k[1], k[3])) for k in keys]
         corrections["reduction"] = {"applied": False}
+    # Where each port reading goes: its row of the fit, its time, port and divisor (drift x gain).
+    flat_rows = group if len(analyzes) == 1 else np.arange(n * n_ports)
+    flat_div = (f[:, None] * (np.ones(n_ports) if counts else gains)[None, :]).reshape(-1)
     if sig_out is not None:
         a = float(np.sqrt(np.mean(sig_out**2))) if len(sig_out) else 0.0
-        a_, b, how = _spread_model(vals_out, np.array(rep_keys), a)
+        a, b, how = _spread_model(vals_out, np.array(rep_keys), a)
         floor = 1e-6 * float(np.max(np.abs(vals_out))) if len(vals_out) else 0.0
-        sig_out = np.sqrt(sig_out**2 + (b * np.abs(vals_out)) ** 2 + floor**2)
+        sig_out = np.sqrt(a * a + (b * np.abs(vals_out)) ** 2 + floor**2)
         corrections["noise_model"] = {"model": "gaussian", "absolute_w": a, "relative": b, "how": how}
+        if bg_model.applied and a > 0:
+            # a is the absolute noise of a fitted row; a row sums `members` port readings.
+            members = max(len(flat_rows) / max(len(vals_out), 1), 1.0)
+            _, group_sizes = np.unique(np.array(rep_keys), return_counts=True)
+            repeat_dof = int(np.sum(group_sizes[group_sizes >= 2] - 1)) if "repeated" in how else 0
+            a_port = a / math.sqrt(members) * gains
+            if bg_model.times_s.size < 2:
+                bg_model = background_model(bg_model.times_s, bg_model.values, fallback_sigma=a_port)
+            else:
+                bg_model = pooled_reading_noise(bg_model, a_port, repeat_dof)
+            corrections["background"] = {**background_info(bg_model), "reading_noise_how":
+                                         "background spread pooled with the absolute noise of repeated readings"}
     else:
         corrections["noise_model"] = {"model": "poisson"}
+        if bg_model.applied and bg_model.times_s.size < 2:
+            # One background reading of counts: its Poisson spread.
+            bg_model = background_model(bg_model.times_s, bg_model.values,
+                                        fallback_sigma=np.sqrt(np.clip(bg_model.values[0], 1.0, None)))
+    noise = correction_noise(
+        flat_times_s=np.repeat(t_all[meas], n_ports), flat_ports=np.tile(np.arange(n_ports), n),
+        flat_divisor=flat_div, flat_rows=flat_rows, n_rows=len(vals_out), row_times_s=np.asarray(t_out),
+        background=bg_model, drift=drift_model,
+    )
     return Prepared(
         operators=ops_out, values=vals_out, sigma=sig_out, model="poisson" if counts else "gaussian",
         basis=tuple(basis), analyzes=tuple(analyzes), corrections=corrections,
-        labels=tuple(str(x) for x in out_labels), times=np.asarray(t_out),
+        labels=tuple(str(x) for x in out_labels), times=np.asarray(t_out), correction_noise=noise,
     )
 
 
@@ -300,6 +325,17 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
         if not np.any(prep.values > 0):
             raise AnalysisError("no power above background in the measure readings: was the beam on?")
         fit = mle_gaussian(prep.operators, prep.values, prep.sigma)
+        nm = prep.corrections.get("noise_model", {})
+        if nm.get("relative", 0.0) > 0:
+            # The relative part of the spread from the fitted readings rather than the measured
+            # ones: weights that follow each reading's own noise bias the fit (a reading that
+            # fluctuates up is down-weighted), and the bootstrap, whose sigma is fixed, would not
+            # show that bias (iteratively reweighted least squares, common practice, no source).
+            pred = np.clip(np.einsum("ij,nji->n", fit.intensity * fit.rho, prep.operators).real, 0.0, None)
+            floor = 1e-6 * float(np.max(np.abs(prep.values)))
+            refined = np.sqrt(nm["absolute_w"] ** 2 + (nm["relative"] * pred) ** 2 + floor**2)
+            prep = dataclasses.replace(prep, sigma=refined)
+            fit = mle_gaussian(prep.operators, prep.values, prep.sigma)
         sigma, scale = _rescale_sigma(prep, fit)
         if scale > 1.0:
             fit = mle_gaussian(prep.operators, prep.values, sigma)
@@ -315,20 +351,22 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
     boot = parametric_bootstrap(
         prep.operators, prep.values, fns, rng=rng, sigma=sigma, model=prep.model,
         n_resamples=n_bootstrap, fit=fit, tol=BOOTSTRAP_TOLERANCE,
+        bounds={name: figure_bounds(name, d) for name in fns},
+        perturb=prep.correction_noise.perturb if prep.correction_noise is not None else None,
     )
-    figs = {k: (float(v.value), float(v.std)) for k, v in boot.figures.items()}
+    figs = {k: (float(v.value), float(v.std), v.interval) for k, v in boot.figures.items()}
     rho_std = np.zeros((d, d), dtype=np.complex128)
     for i in range(d):
         for j in range(d):
             rho_std[i, j] = figs.pop(f"_re_{i}{j}")[1] + 1j * figs.pop(f"_im_{i}{j}")[1]
     stokes: dict[str, list[tuple[float, float]]] = {}
     for factor in prep.analyzes if len(prep.analyzes) == 1 else ("polarization", "spatial"):
-        stokes[factor] = [(1.0, 0.0)] + [figs.pop(f"stokes_{factor}_{k}") for k in range(1, 4)]
+        stokes[factor] = [(1.0, 0.0, (1.0, 1.0))] + [figs.pop(f"stokes_{factor}_{k}") for k in range(1, 4)]
     closest = None
     if len(prep.analyzes) == 2:
         fids = {name: figs.pop(f"fidelity_{name}") for name in JOINT_KETS}
         best = max(fids, key=lambda k: fids[k][0])
-        closest = (best, fids[best][0], fids[best][1])
+        closest = (best, fids[best][0], fids[best][1], fids[best][2])
         figs.update({f"fidelity_to_{k}": v for k, v in fids.items()})
     corrections = dict(prep.corrections)
     if prep.model == "gaussian":
@@ -358,8 +396,11 @@ def target_of(run: RunData) -> np.ndarray | None:
 
 def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
     """The fixed ``analyze --json`` document (DESIGN.md), plus extras."""
-    def vs(pair: tuple[float, float]) -> dict[str, float]:
-        return {"value": float(pair[0]), "std": float(pair[1])}
+    def vs(fig: tuple) -> dict[str, Any]:
+        out = {"value": float(fig[0]), "std": float(fig[1])}
+        if len(fig) > 2:
+            out["interval"] = [float(fig[2][0]), float(fig[2][1])]
+        return out
 
     out: dict[str, Any] = {
         "basis": list(est.basis),
@@ -387,8 +428,8 @@ def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
         out["fidelity"] = vs(est.figures["fidelity"])
         out["target"] = run.header.target_label
     if est.closest_mode is not None:
-        name, f, s = est.closest_mode
-        out["closest_vector_mode"] = {"name": name, "fidelity": {"value": f, "std": s}}
+        name, *fig = est.closest_mode
+        out["closest_vector_mode"] = {"name": name, "fidelity": vs(tuple(fig))}
         out["vector_mode_fidelities"] = {
             k[len("fidelity_to_"):]: vs(v) for k, v in est.figures.items() if k.startswith("fidelity_to_")
         }

@@ -33,6 +33,9 @@ def add_parser(sub) -> None:
     p.add_argument("--out", required=True, metavar="OVERLAY.yaml", help="bench overlay to create (never overwritten)")
     p.add_argument("--bench", metavar="BENCH",
                    help="bench the overlay extends (a file or built-in name); default the bench the runs used")
+    p.add_argument("--plots", metavar="DIR",
+                   help="write one PNG per run into DIR: readings per port against the scanned angle, the fitted "
+                        "model, residuals and the fitted parameters")
     p.set_defaults(handler=run)
 
 
@@ -84,8 +87,30 @@ def run(args: argparse.Namespace) -> int:
         raise UsageError(f"{out} exists already; lightloom calibrate never overwrites a file (choose another --out)") from None
     except OSError as exc:
         raise UsageError(f"cannot write {out}: {exc.strerror}") from None
-    _print(Console(), rows, fit, out, spec)
+    console = Console()
+    _print(console, rows, fit, out, spec)
+    if args.plots:
+        for path in _plots(args.plots, scans, fit, model, ports, runs):
+            console.print(f"figure: {path}", highlight=False)
     return 0
+
+
+def _plots(directory: str, scans, fit, model, ports, runs: Sequence[_Run]) -> list[Path]:
+    """One figure per scan: its readings, the joint fit's model curve, residuals, parameters."""
+    from lightloom.sequencer.analysis.scans import scan_report
+    from lightloom.sequencer.present.plots import PlotsUnavailable
+    from lightloom.sequencer.present.scan_figures import plot_scan
+
+    written = []
+    try:
+        for scan, r in zip(scans, runs):
+            unit = "counts" if r.data.header.port_units == "counts" else "W"
+            report = scan_report(scan, model, ports, unit=unit, fit=fit)
+            written.append(plot_scan(report, Path(directory) / f"calibration-{scan.label}.png",
+                                     title=f"{r.data.header.protocol_name} ({scan.label}): joint calibration fit"))
+    except PlotsUnavailable as exc:
+        raise UsageError(str(exc)) from None
+    return written
 
 
 def _read_run(path: Path) -> _Run:
@@ -124,21 +149,12 @@ def _labels(runs: Sequence[_Run]) -> list[str]:
 
 def _scan(run: _Run, label: str):
     """The run's readings as a calibration scan, columns in ELEMENT_NAMES order."""
-    import numpy as np
-
-    from lightloom.sequencer.analysis import calibration
-    from lightloom.sequencer.optics.analyzer import ELEMENT_NAMES
+    from lightloom.sequencer.analysis.scans import scan_readings
 
     rd = run.data.readings
     if not (rd.kind == "measure").any():
         raise InputError("the run holds no measure readings yet; run or resume it first", str(run.path), None)
-    names = tuple(rd.element_names)
-
-    def columns(a):
-        return np.stack([a[:, names.index(n)] if n in names else np.full(len(a), np.nan) for n in ELEMENT_NAMES], 1)
-
-    return calibration.prepare_scan(label, run.protocol.scan.element, rd.kind, columns(rd.commanded),
-                                    columns(rd.readback), rd.values, rd.reference_w)
+    return scan_readings(label, run.protocol.scan.element, rd)
 
 
 def _base_bench(option: str | None, first: _Run, out: Path):

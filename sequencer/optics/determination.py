@@ -79,15 +79,43 @@ def _pauli_products(n_factors: int) -> tuple[tuple[tuple[int, ...], ...], NDArra
     return indices, np.array(mats)
 
 
-def _span_basis(operators: NDArray[np.complex128], paulis: NDArray[np.complex128]) -> NDArray[np.float64]:
-    """Orthonormal rows spanning the operators' real span, in Pauli-product coordinates."""
-    coords = np.einsum("kji,nij->nk", paulis, operators).real  # tr(E P_k), real for Hermitian E
+def _coordinates(operators: NDArray[np.complex128], paulis: NDArray[np.complex128]) -> NDArray[np.float64]:
+    """Unit-normalised Pauli-product coordinates tr(E P_k) of the non-zero operators (real for Hermitian E)."""
+    coords = np.einsum("kji,nij->nk", paulis, operators).real
     norms = np.linalg.norm(coords, axis=1)
-    coords = coords[norms > 0] / norms[norms > 0, None]
+    return coords[norms > 0] / norms[norms > 0, None]
+
+
+def _unit(size: int, k: int) -> NDArray[np.float64]:
+    e = np.zeros(size)
+    e[k] = 1.0
+    return e
+
+
+def _unit_rows(coords: NDArray[np.float64]) -> NDArray[np.float64]:
+    norms = np.linalg.norm(coords, axis=1)
+    return coords[norms > 1e-12] / norms[norms > 1e-12, None]
+
+
+def _span_basis(coords: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Orthonormal rows spanning the real span of ``coords`` (one operator per row)."""
     if coords.shape[0] == 0:
-        return np.zeros((0, paulis.shape[0]))
+        return np.zeros((0, coords.shape[1]))
     _, s, vt = np.linalg.svd(coords, full_matrices=False)
     return vt[s > RANK_TOLERANCE * s[0]]
+
+
+def _rank(m: NDArray[np.float64]) -> int:
+    if m.size == 0:
+        return 0
+    s = np.linalg.svd(m, compute_uv=False)
+    return int((s > 1e-6 * max(float(s[0]), 1e-300)).sum()) if s[0] > 1e-9 else 0
+
+
+def _overlap(basis: NDArray[np.float64], vector: NDArray[np.float64]) -> float:
+    """Length of the unit ``vector``'s projection onto the span (0: orthogonal, 1: inside)."""
+    v = vector / np.linalg.norm(vector)
+    return float(np.linalg.norm(basis @ v))
 
 
 def _in_span(basis: NDArray[np.float64], vector: NDArray[np.float64]) -> bool:
@@ -130,7 +158,8 @@ def determination(
     d = 2**n
     ops = np.asarray(operators, dtype=np.complex128).reshape(-1, d, d)
     indices, paulis = _pauli_products(n)
-    basis = _span_basis(ops, paulis)
+    coords = _coordinates(ops, paulis)
+    basis = _span_basis(coords)
     position = {idx: k for k, idx in enumerate(indices)}
 
     def determined(idx: tuple[int, ...]) -> bool:
@@ -148,21 +177,39 @@ def determination(
     for f, factor in enumerate(factors):
         if factor not in wanted:
             continue
-        s = stokes[factor]
-        if not s[0]:
+        if all(stokes[factor]):
+            continue
+        # Name what lacks from what the readings would give with the other factors' outputs summed: the
+        # bases this factor's settings cover. If that is more than the readings give, say why.
+        foreign = [k for k, idx in enumerate(indices) if any(i for g, i in enumerate(idx) if g != f)]
+        summed = coords.copy()
+        summed[:, foreign] = 0.0
+        summed_basis = _span_basis(_unit_rows(summed))
+        covered = [_in_span(summed_basis, _unit(len(indices), position[local(f, i)])) for i in range(4)]
+        if not covered[0]:
             missing.append(f"{factor}: no total power (no complete basis such as "
                            f"{BASES[factor][0][0]} with {BASES[factor][0][1]})")
         for i, (plus, minus, name) in enumerate(BASES[factor], start=1):
-            if s[i]:
+            if covered[i]:
                 continue
-            p_plus = _projector_determined(basis, position, local(f, 0), local(f, i), +1)
-            p_minus = _projector_determined(basis, position, local(f, 0), local(f, i), -1)
+            p_plus = _projector_determined(summed_basis, position, local(f, 0), local(f, i), +1)
+            p_minus = _projector_determined(summed_basis, position, local(f, 0), local(f, i), -1)
+            seen = _overlap(summed_basis, _unit(len(indices), position[local(f, i)]))
             if p_plus and not p_minus:
                 missing.append(f"{factor}: {plus} without {minus}")
             elif p_minus and not p_plus:
                 missing.append(f"{factor}: {minus} without {plus}")
+            elif seen > 0.1:  # measured, but not apart from the other components (one output only)
+                missing.append(f"{factor}: {plus}/{minus} only in part (one output without the other)")
             else:
                 missing.append(f"{factor}: no {name} projection")
+        # The readings' own span holds r - rank(foreign part) operators of this factor alone; summing the
+        # other factors' outputs would give rank(summed): more means the readings are tangled with them.
+        alone = basis.shape[0] - _rank(basis[:, foreign])
+        if len(wanted) == 1 and summed_basis.shape[0] > alone:
+            others = " and ".join(g for g in factors if g != factor)
+            missing.append(f"{factor}: the readings also depend on the {others} state (measure both outputs"
+                           f" of the {others} analysis, or give targets so that lightloom does)")
     if len(wanted) > 1 and not missing:
         for idx in indices:
             if all(idx) and not determined(idx):

@@ -145,6 +145,15 @@ def polarizer_intensity(stokes: ArrayLike, angle_deg: ArrayLike) -> Real:
     return 0.5 * (s[..., 0] + s[..., 1] * np.cos(2 * a) + s[..., 2] * np.sin(2 * a))
 
 
+def analyzed_intensity(state: ArrayLike, jones_matrix: ArrayLike, x: ArrayLike, y: ArrayLike) -> Real:
+    """Intensity behind any polarization optics with Jones matrix M (2x2, or a stack broadcasting
+    against the points): tr(M J M^dagger) at every point, e.g. a wave plate then a polarizer in
+    front of a camera. Same units as S0."""
+    j = coherency(state, x, y)
+    m = np.asarray(jones_matrix, dtype=np.complex128)
+    return np.einsum("...ap,...pq,...aq->...", m, j, m.conj()).real
+
+
 def grid(half_width: float = 2.5, points: int = 41) -> tuple[Real, Real]:
     """A square grid of ``points`` x ``points`` coordinates over [-half_width, half_width] (waist units).
 
@@ -167,5 +176,6 @@ __all__ = [
     "ellipticity_deg",
     "handedness",
     "polarizer_intensity",
+    "analyzed_intensity",
     "grid",
 ]

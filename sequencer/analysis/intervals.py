@@ -1,0 +1,117 @@
+"""95% intervals of figures of merit from bootstrap replicates, kept inside each figure's physical range.
+
+Two published constructions, combined:
+
+- the bias-corrected percentile interval (BC; Efron and Tibshirani, An Introduction to the
+  Bootstrap, 1993, ch. 14.3, the BCa interval with acceleration a = 0): percentiles
+  Phi(2 z0 +- z_alpha) of the replicates, with z0 = Phi^-1(share of replicates below the
+  estimate). It follows a skewed, transformation-respecting spread and corrects a median bias;
+- the basic bootstrap interval (Davison and Hinkley, Bootstrap Methods and their Application,
+  1997, sec. 5.2, eq. 5.6): [2 t - q(1 - alpha/2), 2 t - q(alpha/2)] with q the replicates'
+  quantiles. It reflects the replicates' bias about the estimate, which is what is needed where
+  the estimate sits on the edge of the state space (a pure state's purity and concurrence come
+  out low, and their replicates lower still; a product state's concurrence piles up at 0), where
+  the BC interval fails because almost every replicate lies on one side of the estimate.
+
+Rule (measured in tests/benchmarks/bench_interval_coverage.py and README): the reported interval
+is the union (hull) of the two, clipped to the physical range of the figure (purity [1/d, 1],
+concurrence [0, 1], ...), so it may be asymmetric and may touch a bound (a separable state's
+concurrence interval starts at 0). Where the replicates are well behaved the two agree and the
+union is either; near a boundary, or where the estimate is biased, at least one of them follows
+the truth and the union keeps it: in our trials at 100 counts a setting the BC interval alone
+covered a pure state's concurrence in 0 of 150 runs, the basic one alone an interior value's in
+85%, their union 92-100% throughout.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy.stats import norm
+
+LEVEL = 0.95
+
+Bounds = tuple[float, float]
+
+
+def bias_corrected_percentile(value: float, samples: np.ndarray, level: float = LEVEL) -> tuple[float, float]:
+    """BC percentile interval (Efron and Tibshirani 1993, ch. 14.3 with a = 0), same unit as ``value``.
+
+    Ties with the estimate count half below, so that replicates equal to it (a figure held at a
+    bound) give z0 = 0 rather than an infinite correction.
+    """
+    s = np.asarray(samples, dtype=float)
+    n = s.size
+    share = (np.sum(s < value) + 0.5 * np.sum(s == value)) / n
+    share = min(max(share, 0.5 / n), 1.0 - 0.5 / n)
+    z0 = norm.ppf(share)
+    z = norm.ppf(0.5 + level / 2.0)
+    lo_p, hi_p = norm.cdf(2.0 * z0 - z), norm.cdf(2.0 * z0 + z)
+    lo, hi = np.quantile(s, [lo_p, hi_p])
+    return float(lo), float(hi)
+
+
+def basic_interval(value: float, samples: np.ndarray, level: float = LEVEL) -> tuple[float, float]:
+    """Basic bootstrap interval 2 t - q (Davison and Hinkley 1997, sec. 5.2), same unit as ``value``."""
+    alpha = 1.0 - level
+    q_lo, q_hi = np.quantile(np.asarray(samples, dtype=float), [alpha / 2.0, 1.0 - alpha / 2.0])
+    return float(2.0 * value - q_hi), float(2.0 * value - q_lo)
+
+
+def pivot_interval(value: float, centre_value: float, samples: np.ndarray, level: float = LEVEL) -> tuple[float, float]:
+    """Basic (pivot) interval from replicates drawn around another centre: the spread of
+    samples - centre_value taken as that of estimate - truth (Davison and Hinkley 1997, sec. 5.2)."""
+    alpha = 1.0 - level
+    q_lo, q_hi = np.quantile(np.asarray(samples, dtype=float), [alpha / 2.0, 1.0 - alpha / 2.0])
+    return float(value - (q_hi - centre_value)), float(value - (q_lo - centre_value))
+
+
+def physical_interval(value: float, samples: np.ndarray, bounds: Bounds = (-math.inf, math.inf),
+                      level: float = LEVEL) -> tuple[float, float]:
+    """The reported interval: the union of the BC and basic intervals, clipped to ``bounds`` (module docstring).
+
+    Parameters
+    ----------
+    value : the figure at the estimate.
+    samples : (n,) the figure on the bootstrap replicates (n >= 2).
+    bounds : (lo, hi) the physical range of the figure.
+    level : coverage probability, 0.95 by default.
+
+    Returns
+    -------
+    (lo, hi) with bounds[0] <= lo <= hi <= bounds[1]; the estimate itself is always inside.
+    """
+    s = np.asarray(samples, dtype=float)
+    s = s[np.isfinite(s)]
+    lo_b, hi_b = bounds
+    if s.size < 2:
+        v = min(max(value, lo_b), hi_b)
+        return float(v), float(v)
+    bc_lo, bc_hi = bias_corrected_percentile(value, s, level)
+    b_lo, b_hi = basic_interval(value, s, level)
+    lo, hi = min(bc_lo, b_lo, value), max(bc_hi, b_hi, value)
+    return float(min(max(lo, lo_b), hi_b)), float(max(min(hi, hi_b), lo_b))
+
+
+def figure_bounds(name: str, dimension: int) -> Bounds:
+    """Physical range of a figure of merit by its name in the analysis (purity, concurrence, ...)."""
+    if name == "purity":
+        return (1.0 / dimension, 1.0)
+    if name == "linear_entropy":
+        return (0.0, 1.0 - 1.0 / dimension)
+    if name.startswith("stokes_"):
+        return (-1.0, 1.0)
+    if name.startswith(("concurrence", "fidelity", "dop_", "fully_entangled_fraction")):
+        return (0.0, 1.0)
+    if name in ("power", "intensity"):
+        return (0.0, math.inf)
+    return (-math.inf, math.inf)
+
+
+def normal_interval(value: float, std: float, bounds: Bounds = (-math.inf, math.inf),
+                    level: float = LEVEL) -> tuple[float, float]:
+    """value +- z std clipped to ``bounds``: for a figure with no replicates (e.g. a fitted parameter)."""
+    z = float(norm.ppf(0.5 + level / 2.0))
+    lo, hi = value - z * std, value + z * std
+    return float(min(max(lo, bounds[0]), bounds[1])), float(max(min(hi, bounds[1]), bounds[0]))

@@ -1,0 +1,157 @@
+"""A scan run as a scan: readings of every port against the scanned angle, the calibration model fitted to them.
+
+A run of a scan protocol (waveplate-calibration-hwp/qwp, calibration-rotator, calibration-converter,
+or any protocol with `measure: scan:`) determines no state: it is reported as the readings of each
+port against the scanned element's angle, the fit of the calibration model
+(sequencer.analysis.calibration: the optics model with the element's offset, retardance,
+visibility and port gains as unknowns, for the calibration input |H,h>) with every fitted
+parameter's std and 95% interval, the model curve and the residuals. Pure: arrays in, results out.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Sequence
+
+import numpy as np
+
+from lightloom.sequencer.analysis import calibration
+from lightloom.sequencer.analysis.intervals import normal_interval
+from lightloom.sequencer.errors import InputError
+from lightloom.sequencer.optics.analyzer import ELEMENT_NAMES, AnalyzerModel, PortModel
+
+GRID_POINTS = 361
+
+
+def scan_readings(label: str, element: str, readings: Any) -> calibration.ScanReadings:
+    """The readings of a run (a ReadingTable) as a calibration scan of ``element``, columns in ELEMENT_NAMES order."""
+    names = tuple(readings.element_names)
+
+    def columns(a: np.ndarray) -> np.ndarray:
+        a = np.asarray(a, dtype=float)
+        return np.stack([a[:, names.index(n)] if n in names else np.full(len(a), np.nan) for n in ELEMENT_NAMES], 1)
+
+    return calibration.prepare_scan(label, element, readings.kind, columns(readings.commanded),
+                                    columns(readings.readback), readings.values, readings.reference_w)
+
+
+@dataclass(frozen=True)
+class ScanReport:
+    """One scan, fitted: readings and model against the scanned angle (deg), per port.
+
+    ``angle_deg`` (n,) and ``values`` (n, n_ports) are the shutter-open readings (drift-normalised
+    as the fit sees them); ``model`` (n, n_ports) the fit at the same settings (NaN on a port the
+    scan sends no light to); ``grid_deg``, ``grid_model`` the model on a fine grid; ``background``
+    (n_ports,) the mean shutter-closed reading; ``fit`` the calibration fit.
+    """
+
+    label: str
+    scanned: str
+    port_names: tuple[str, ...]
+    unit: str
+    angle_deg: np.ndarray
+    values: np.ndarray
+    model: np.ndarray
+    grid_deg: np.ndarray
+    grid_model: np.ndarray
+    background: np.ndarray
+    fit: calibration.CalibrationFit
+
+    @property
+    def residuals(self) -> np.ndarray:
+        """Readings minus model (n, n_ports), NaN where the port has no model."""
+        return self.values - self.model
+
+
+def scan_report(scan: calibration.ScanReadings, model: AnalyzerModel, ports: Sequence[PortModel],
+                *, unit: str = "W", fit: calibration.CalibrationFit | None = None) -> ScanReport:
+    """Fit the calibration model to ``scan`` (every parameter it determines) and lay it out per port.
+
+    ``fit`` may be given instead: a joint fit of several scans, this one among them (``calibrate``).
+
+    Raises InputError when the scan has no shutter-open readings or the model cannot be fitted.
+    """
+    column = ELEMENT_NAMES.index(scan.scanned)
+    light = ~scan.dark
+    if not light.any():
+        raise InputError(f"scan {scan.label} has no shutter-open readings yet")
+    if fit is None:
+        fit = calibration.fit_calibration([scan], model, ports)
+    settings = np.nan_to_num(scan.settings, nan=0.0)
+    angle = settings[light, column]
+    predicted = calibration.model_readings(fit, scan, model, ports, settings[light])
+    grid = np.linspace(float(angle.min()), float(angle.max()), GRID_POINTS)
+    grid_settings = np.repeat(settings[light][:1], GRID_POINTS, axis=0)
+    grid_settings[:, column] = grid
+    grid_model = calibration.model_readings(fit, scan, model, ports, grid_settings)
+    background = scan.values[scan.dark].mean(axis=0) if scan.dark.any() else np.full(scan.values.shape[1], np.nan)
+    order = np.argsort(angle, kind="stable")
+    return ScanReport(
+        label=scan.label, scanned=scan.scanned, port_names=tuple(p.name for p in ports), unit=unit,
+        angle_deg=angle[order], values=scan.values[light][order], model=predicted[order],
+        grid_deg=grid, grid_model=grid_model, background=background, fit=fit,
+    )
+
+
+def _finite(x: float) -> float | None:
+    return float(x) if np.isfinite(x) else None
+
+
+def scan_json(report: ScanReport) -> dict[str, Any]:
+    """The ``scan`` section of the analysis document."""
+    fit = report.fit
+    params = {}
+    for name, value, std in zip(fit.names, fit.values, fit.std):
+        entry: dict[str, Any] = {"value": float(value), "std": _finite(std)}
+        entry["interval"] = list(normal_interval(value, std)) if np.isfinite(std) else None
+        params[name] = entry
+    ports = {}
+    for j, name in enumerate(report.port_names):
+        ports[name] = {
+            "readings": report.values[:, j].tolist(),
+            "model": [_finite(x) for x in report.model[:, j]],
+            "residuals": [_finite(x) for x in report.residuals[:, j]],
+            "background": _finite(report.background[j]),
+        }
+    return {
+        "scanned_element": report.scanned,
+        "angle_deg": report.angle_deg.tolist(),
+        "unit": report.unit,
+        "ports": ports,
+        "fit": {
+            "model": "optics model of the analyzer for the calibration input |H,h> (a polarizer at H, the h mode), "
+                     "scale and background per port (sequencer.analysis.calibration)",
+            "parameters": params,
+            "residual_rms": fit.residual_rms_w,
+            "reduced_chi2": fit.reduced_chi2,
+            "readings": fit.n_readings,
+            "notes": list(fit.notes),
+        },
+    }
+
+
+def scanned_element(run: Any) -> str | None:
+    """The element a run's protocol scans (e.g. "half_wave_plate"), or None for a run that is no scan."""
+    from lightloom.sequencer.lang.protocol import parse_protocol
+
+    h = run.header
+    try:
+        protocol = parse_protocol(h.protocol_text, f"<protocol stored in the run file>")
+    except InputError:
+        return None
+    return protocol.scan.element if protocol.scan is not None else None
+
+
+def run_scan_report(run: Any, element: str, label: str, bench: Any | None = None) -> ScanReport:
+    """Fit the scan of a run (RunData) on the run's own bench, or on ``bench`` (e.g. a calibration overlay)."""
+    from lightloom.sequencer.lang.bench import parse_bench
+    from lightloom.sequencer.plan.tablemodel import analyzer_model, port_models
+
+    h = run.header
+    if bench is None:
+        bench = parse_bench(h.bench_text, "<bench stored in the run file>")
+    if not (np.asarray(run.readings.kind).astype(str) == "measure").any():
+        raise InputError("the scan has no measure readings yet")
+    scan = scan_readings(label, element, run.readings)
+    unit = "counts" if h.port_units == "counts" else "W"
+    return scan_report(scan, analyzer_model(bench), port_models(bench), unit=unit)
