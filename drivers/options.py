@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import dataclasses
-import difflib
 import math
 import re
 import string
@@ -11,6 +10,7 @@ from dataclasses import dataclass, field
 from types import MappingProxyType
 from typing import Any, Callable, Mapping
 
+from lightloom.sequencer.model.suggest import suggestion
 from lightloom.sequencer.model.vocabulary import IDENTITY_WORD, MESSAGE_FAMILIES, MESSAGE_KINDS
 
 FAMILIES = MESSAGE_FAMILIES
@@ -376,8 +376,7 @@ def _schema(family: str, kind: str) -> dict[str, _Option]:
 
 
 def _nearest(key: str, valid: list[str] | tuple[str, ...]) -> str:
-    match = difflib.get_close_matches(key, list(valid), n=1, cutoff=0.5)
-    return f"; did you mean {match[0]!r}?" if match else ""
+    return suggestion(key, valid, cutoff=0.5)
 
 
 def _parse(

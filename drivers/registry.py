@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import difflib
 from importlib.metadata import entry_points
 from typing import Any, Callable, Mapping, Protocol
 
@@ -10,6 +9,7 @@ from lightloom.drivers.interfaces import Device
 from lightloom.drivers.message_devices import MESSAGE_DEVICE_CLASSES
 from lightloom.drivers.options import FAMILIES, DriverConfigError, parse_config, split_driver
 from lightloom.drivers.transport import LineTransport
+from lightloom.sequencer.model.suggest import suggestion
 from lightloom.sequencer.model.vocabulary import MESSAGE_KINDS
 
 ENTRY_POINT_GROUP = "lightloom.drivers"
@@ -120,8 +120,7 @@ def create_device(
             f"lightloom.drivers.create_device; known here: {', '.join(known)}",
             "driver",
         )
-    match = difflib.get_close_matches(str(driver), list(known), n=1, cutoff=0.5)
-    nearest = f"; did you mean {match[0]!r}?" if match else ""
+    nearest = suggestion(str(driver), known, cutoff=0.5)
     raise DriverConfigError(
         f"unknown driver {driver!r}{nearest} (known: {', '.join(known)})", "driver"
     )

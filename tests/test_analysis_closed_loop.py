@@ -16,7 +16,7 @@ from lightloom.sequencer.cli import main
 from lightloom.sequencer.optics.states import JOINT_KETS, partial_trace
 from lightloom.sequencer.optics.stokes import stokes_from_density
 from lightloom.sequencer.storage.store import load_run
-from legacy_files import make_legacy_runfile
+from helpers.legacy_files import make_legacy_runfile
 
 
 def _run(tmp_path: Path, protocol: str, bench: str, name: str = "run.h5") -> Path:

@@ -115,7 +115,7 @@ def test_move_time_trapezoid_and_triangle() -> None:
     assert move_time_s(0.0, 20.0, 50.0) == 0.0
 
 
-def test_negative_moves_approach_from_the_positive_side() -> None:
+def test_a_move_down_overshoots_by_twice_the_backlash_and_ends_moving_up() -> None:
     assert approach_path(10.0, 20.0, 0.5) == (20.0,)
     assert approach_path(20.0, 10.0, 0.5) == (9.0, 10.0)
     assert path_time_s(20.0, 10.0, K) > path_time_s(10.0, 20.0, K)

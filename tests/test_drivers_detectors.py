@@ -5,7 +5,7 @@ from __future__ import annotations
 import pytest
 
 from lightloom.drivers.errors import BadReply, LimitViolation, NotSupported
-from drivers_fake_server import FAMILIES, Rig
+from helpers.fake_server import FAMILIES, Rig
 
 
 @pytest.fixture

@@ -7,7 +7,7 @@ import pytest
 from lightloom.drivers.errors import BadReply, ConnectionLost, InstrumentTimeout, LimitViolation
 from lightloom.drivers.interfaces import Device
 from lightloom.drivers.retry import backoff_delays_s, call_with_retry
-from drivers_fake_server import FAMILIES, Rig
+from helpers.fake_server import FAMILIES, Rig
 
 
 class CountingDevice(Device):

@@ -7,7 +7,7 @@ import time
 import pytest
 
 from lightloom.drivers.errors import BadReply, DeviceFault, InstrumentTimeout, LimitViolation, NotSupported
-from drivers_fake_server import FAMILIES, Rig
+from helpers.fake_server import FAMILIES, Rig
 
 
 @pytest.fixture

@@ -14,7 +14,7 @@ from lightloom.drivers.errors import (
     InstrumentTimeout,
 )
 from lightloom.drivers.registry import create_device
-from drivers_fake_server import Rig
+from helpers.fake_server import Rig
 
 ALL_PATHS = ["visa", "serial", "visa-asrl"]
 

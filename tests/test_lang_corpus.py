@@ -69,9 +69,9 @@ def test_bad_input_gives_one_line_at_its_file_and_line(
     path: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
 ) -> None:
     monkeypatch.chdir(tmp_path)
-    start = time.perf_counter()
+    start = time.process_time()  # CPU time: the machine may be shared
     status = cli.main(command(path))
-    elapsed = time.perf_counter() - start
+    elapsed = time.process_time() - start
     out, err = capsys.readouterr()
     check_report(path, status, err, out)
     assert list(tmp_path.iterdir()) == []
@@ -105,9 +105,9 @@ def test_file_over_one_mebibyte_is_refused_before_parsing(
     work = tmp_path / "work"
     work.mkdir()
     monkeypatch.chdir(work)
-    start = time.perf_counter()
+    start = time.process_time()
     status = cli.main(["validate", str(big)])
-    elapsed = time.perf_counter() - start
+    elapsed = time.process_time() - start
     _, err = capsys.readouterr()
     assert status == 2
     assert err.startswith(f"lightloom: {big}:1: file is ")

@@ -37,10 +37,11 @@ def test_every_built_in_protocol_says_what_it_determines(name: str) -> None:
 
 
 def test_every_verb_has_a_description_in_its_help() -> None:
-    parser = cli.build_parser()
-    verbs = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
-    assert set(cli.VERBS) <= set(verbs.choices)
-    for verb, sub in verbs.choices.items():
+    # The parser builds a verb's options (and description) only for the verb chosen.
+    for verb in cli.VERBS:
+        parser = cli.build_parser([verb])
+        verbs = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+        sub = verbs.choices[verb]
         assert sub.description and len(sub.description.split()) >= 12, verb
 
 

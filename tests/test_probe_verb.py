@@ -17,7 +17,7 @@ from lightloom.sequencer.lang.bench import load_bench
 from lightloom.simulators.dialects import load_dialect
 from lightloom.simulators.scpi_server import LoopbackServer
 from lightloom.simulators.table import SimulatedTable
-from test_run_complete import write_bench
+from helpers.runs import write_bench
 
 
 class Served:
@@ -166,7 +166,7 @@ def test_list_reports_what_answers_at_given_addresses_without_hanging(served, ca
         elapsed = time.monotonic() - t0
     finally:
         silent.close()
-    assert status == 0 and elapsed < 5.0
+    assert status == 0 and elapsed < 8.0  # 0.3 s timeouts: bounded even with a silent port
     found = {f["address"]: f for f in doc["found"]}
     assert found[stage.visa_address]["identity"].startswith("lightloom,SIM-STAGE")
     assert found[stage.visa_address]["kind_guess"] == "rotation_stage"

@@ -8,7 +8,7 @@ import pytest
 from lightloom.sequencer.run.session import log_path_for
 from lightloom.sequencer.storage import read_runfile
 from lightloom.sequencer.model.records import FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT
-from test_run_complete import assert_complete, run_cli, shutter_watch, write_bench  # noqa: F401
+from helpers.runs import assert_complete, run_cli, write_bench
 
 
 def _clean_and_lossy(tmp_path, base: str, loss: dict, **sections):

@@ -13,7 +13,7 @@ from lightloom.sequencer.storage import read_runfile
 from lightloom.sequencer.storage.errors import StorageWriteError
 from lightloom.sequencer.model.records import FLAG_RETRIED
 from lightloom.sequencer.storage.store import RunStore
-from test_run_complete import assert_complete, log_steps, run_cli, shutter_watch, write_bench  # noqa: F401
+from helpers.runs import assert_complete, log_steps, run_cli, write_bench
 
 _TRANSIENT = re.compile(r"transient fault on (.+?) \(attempt (\d+)\): device '(\w+)'.*retrying in ([\d.]+) s$")
 

@@ -10,7 +10,7 @@ import numpy as np
 
 from lightloom.sequencer.run.session import log_path_for
 from lightloom.sequencer.storage import journal_path_for, read_journal
-from test_run_complete import (
+from helpers.runs import (
     assert_complete, log_steps, run_cli, spawn, wait_for_log_steps, write_bench,
 )
 

@@ -13,7 +13,7 @@ from lightloom.sequencer.lang.protocol import load_protocol
 from lightloom.sequencer.storage import read_runfile
 from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
 from lightloom.sequencer.plan.timing import estimate_steps
-from test_run_complete import REPO, run_cli, write_bench
+from helpers.runs import REPO, run_cli, write_bench
 
 
 def _one_line(err: str) -> str:

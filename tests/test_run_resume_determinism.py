@@ -11,7 +11,7 @@ from lightloom.sequencer.lang.bench import load_bench
 from lightloom.sequencer.run.session import log_path_for
 from lightloom.sequencer.storage import read_runfile
 from lightloom.simulators.table import SimulatedTable
-from test_run_complete import assert_complete, log_steps, run_cli, spawn, wait_for_log_steps, write_bench
+from helpers.runs import assert_complete, log_steps, run_cli, spawn, wait_for_log_steps, write_bench
 
 
 def _by_step(path):

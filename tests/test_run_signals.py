@@ -9,8 +9,8 @@ import pytest
 from lightloom.sequencer.run.session import log_path_for
 from lightloom.sequencer.storage import journal_path_for, read_journal, read_runfile
 from lightloom.sequencer.storage.store import RunStore
-from test_run_complete import (  # noqa: F401
-    assert_complete, run_cli, shutter_watch, spawn, wait_for_log_steps, write_bench,
+from helpers.runs import (
+    assert_complete, run_cli, spawn, wait_for_log_steps, write_bench,
 )
 
 

@@ -16,8 +16,8 @@ from lightloom.sequencer.storage.codec import (
     decode_header, decode_rows, encode_event, encode_header, encode_reading, frame, scan_frames,
     table_from_rows,
 )
-from legacy_files import legacy_header_json
-from test_storage_records import ELEMENTS, PORTS, make_header, make_reading
+from helpers.legacy_files import legacy_header_json
+from helpers.records import ELEMENTS, PORTS, make_header, make_reading
 
 LAYOUT = ReadingLayout(len(ELEMENTS), len(PORTS), 4)
 floats = st.floats(allow_nan=True, allow_infinity=True, width=64)

@@ -17,7 +17,7 @@ from lightloom.sequencer.storage import (
     Event, Journal, JournalDamagedError, RunExistsError, RunInUseError, StorageWriteError,
     read_journal, writer_active,
 )
-from test_storage_records import make_header, make_reading
+from helpers.records import make_header, make_reading
 
 REPO = Path(__file__).resolve().parents[1]
 

@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from lightloom.sequencer.storage import Event, RunStore, load_run, read_journal, read_runfile
-from test_storage_records import make_header, make_reading
+from helpers.records import make_header, make_reading
 
 REPO = Path(__file__).resolve().parents[1]
 

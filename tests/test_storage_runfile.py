@@ -16,8 +16,8 @@ import pytest
 import lightloom.sequencer.storage.runfile as runfile_module
 from lightloom.sequencer.errors import StorageError
 from lightloom.sequencer.storage import Event, ReadingTable, read_runfile, write_runfile
-from legacy_files import make_legacy_runfile
-from test_storage_records import ELEMENTS, PORTS, make_header, make_reading
+from helpers.legacy_files import make_legacy_runfile
+from helpers.records import ELEMENTS, PORTS, make_header, make_reading
 
 REPO = Path(__file__).resolve().parents[1]
 EVENTS = [Event(1.7e9, "start", "go"), Event(1.7e9 + 5, "beam_lost", "2 µW"),
@@ -159,7 +159,7 @@ def test_reader_never_sees_a_half_written_file_while_it_is_replaced(tmp_path):
             import sys
             sys.path.insert(0, {str(REPO / "tests")!r})
             from lightloom.sequencer.storage import write_runfile
-            from test_storage_records import make_header, make_reading
+            from helpers.records import make_header, make_reading
             header = make_header()
             readings = [make_reading(i) for i in range(400)]
             print("ready", flush=True)

@@ -15,7 +15,7 @@ from lightloom.sequencer.storage import (
     Event, RunExistsError, RunStore, journal_path_for, load_run, read_journal, read_runfile,
 )
 from lightloom.sequencer.storage.journal import Journal
-from test_storage_records import make_header, make_reading
+from helpers.records import make_header, make_reading
 
 
 def _clock():

@@ -14,6 +14,7 @@ from rich.console import Console
 from rich.table import Table
 
 from lightloom.sequencer.errors import InputError, LightloomError, UsageError
+from lightloom.sequencer.outputs import check_new_output
 
 SCAN_PROTOCOLS = "waveplate-calibration-hwp, waveplate-calibration-qwp, calibration-rotator, calibration-converter"
 
@@ -52,10 +53,7 @@ def run(args: argparse.Namespace) -> int:
     from lightloom.sequencer.plan.tablemodel import analyzer_model, port_models
 
     out = Path(args.out)
-    if out.exists():
-        raise UsageError(f"{out} exists already; lightloom calibrate never overwrites a file (choose another --out)")
-    if not out.parent.exists():
-        raise UsageError(f"the folder {out.parent} does not exist; create it or choose another --out")
+    check_new_output(out, "--out", f"{out} exists already; lightloom calibrate never overwrites a file (choose another --out)")
     runs = [_read_run(Path(p)) for p in args.runs]
     first = runs[0]
     for r in runs[1:]:

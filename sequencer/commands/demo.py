@@ -12,9 +12,8 @@ from rich.console import Console
 DEFAULT_FOLDER = "lightloom-demo"
 RUN_NAME = "demo-run.h5"
 FIGURES = "figures"
-# Everything a demo writes in its folder; a new demo replaces exactly these and nothing else.
+# Everything a demo writes in its folder (and the PNG files in figures/); a new demo replaces these only.
 DEMO_FILES = (RUN_NAME, RUN_NAME + ".journal", "demo-run.log")
-DEMO_FIGURES = ("density_matrix.png", "poincare.png", "reference.png")
 
 
 def add_parser(sub) -> None:
@@ -51,8 +50,10 @@ def prepare_folder(folder: Path) -> None:
         folder.mkdir(parents=True, exist_ok=True)
         for name in DEMO_FILES:
             (folder / name).unlink(missing_ok=True)
-        for name in DEMO_FIGURES:
-            (folder / FIGURES / name).unlink(missing_ok=True)
+        figures = folder / FIGURES
+        if figures.is_dir():
+            for png in figures.glob("*.png"):  # the figures folder is the demo's own
+                png.unlink()
     except OSError as exc:
         raise UsageError(f"cannot prepare the demo folder {folder}: {exc.strerror or exc}; choose another --out") from None
 

@@ -70,6 +70,7 @@ def _list(args: argparse.Namespace) -> int:
         Found, identify_all, is_visa_address, list_serial_ports, list_visa_resources, serial_port_of,
     )
     from lightloom.sequencer.errors import UsageError
+    from lightloom.sequencer.outputs import check_new_output
 
     if not (0 < args.timeout <= 30):
         raise UsageError(f"--timeout must be in (0, 30] s, got {args.timeout}")
@@ -105,8 +106,7 @@ def _list(args: argparse.Namespace) -> int:
             console.print("note: TCP/IP instruments are not listed by pyvisa-py; add them with --address", highlight=False)
     if args.skeleton:
         out = Path(args.skeleton)
-        if out.exists():
-            raise UsageError(f"{out} exists; choose another --skeleton (it is never overwritten)")
+        check_new_output(out, "--skeleton", f"{out} exists; choose another --skeleton (it is never overwritten)")
         out.write_text(skeleton_text(found), encoding="utf-8")
         if not args.json:
             print(f"bench skeleton: {out}")

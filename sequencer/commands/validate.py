@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import importlib
 import json
 import sys
 from typing import Any
@@ -14,7 +13,6 @@ from lightloom.sequencer.errors import BenchError
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.plan.purpose import plan_determination, protocol_determination
-from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
 
 
 def add_parser(subparsers: Any) -> None:
@@ -84,23 +82,15 @@ def driver_options_check(bench: Bench) -> None:
 
     The bench language passes ``options`` through untouched; the driver families own their keys.
     """
-    try:
-        options_module = importlib.import_module("lightloom.drivers.options")
-    except ModuleNotFoundError as exc:
-        if exc.name not in ("lightloom.drivers", "lightloom.drivers.options"):
-            raise
-        return
-    check = getattr(options_module, "check_options", None)
-    error_type = getattr(options_module, "DriverConfigError", None)
-    if check is None or error_type is None:
-        return
+    from lightloom.drivers.options import DriverConfigError, check_options
+
     for spec in bench.devices.values():
         if spec.family not in ("visa", "serial"):
             continue
         try:
-            check(spec.driver, spec.options, *([spec.states] if spec.kind == "actuator" and spec.states else []))
-        except error_type as exc:
-            path = f"devices.{spec.name}" + (f".{exc.key}" if getattr(exc, "key", None) else "")
+            check_options(spec.driver, spec.options, *([spec.states] if spec.kind == "actuator" and spec.states else []))
+        except DriverConfigError as exc:
+            path = f"devices.{spec.name}" + (f".{exc.key}" if exc.key else "")
             file, line = bench.locate(path)
             raise BenchError(f"{path}: {exc.message}", file, line) from None
 
@@ -186,6 +176,8 @@ def run(args: argparse.Namespace) -> int:
         driver_options_check(bench)
     compiled = None
     if bench is not None:
+        from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
+
         plan = compile_protocol(protocol, bench)
         compiled = compile_check(protocol, bench, plan)
         det = plan_determination(protocol, plan, table_model(bench))

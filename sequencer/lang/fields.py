@@ -6,17 +6,17 @@ what is expected, e.g. ``dwell_s must be > 0 s and at most 3600 s, got -1``.
 
 from __future__ import annotations
 
-import difflib
 import math
 from contextlib import contextmanager
 from dataclasses import dataclass
-from typing import Iterable, Iterator, NoReturn, Sequence
+from typing import Iterator, NoReturn, Sequence
 
 import numpy as np
 
 from lightloom.sequencer.errors import InputError, OpticsError
 from lightloom.sequencer.optics.states import normalize_density, parse_complex
 from lightloom.sequencer.lang.yamlsafe import YMap, YNode, YScalar, YSeq, clip
+from lightloom.sequencer.model.suggest import aside, nearest, suggestion  # noqa: F401 (the languages import them from here)
 
 MISSING: object = object()
 """Default marker: the key is required."""
@@ -59,28 +59,6 @@ def described(node: YNode) -> str:
     if isinstance(node.value, bool):
         return node.text or ("true" if node.value else "false")
     return node.shown()
-
-
-def nearest(word: str, choices: Iterable[str]) -> str | None:
-    """The choice closest to ``word`` (a match ignoring case first), or None."""
-    options = list(choices)
-    for option in options:
-        if option.lower() == word.lower():
-            return option
-    close = difflib.get_close_matches(word, options, n=1, cutoff=0.6)
-    return close[0] if close else None
-
-
-def suggestion(word: str, choices: Iterable[str]) -> str:
-    """``"; did you mean 'x'?"`` for the nearest choice, or an empty string (ends a message)."""
-    close = nearest(word, choices)
-    return f"; did you mean '{close}'?" if close else ""
-
-
-def aside(word: str, choices: Iterable[str]) -> str:
-    """``" (did you mean 'x'?)"`` for the nearest choice, or an empty string (inside a message)."""
-    close = nearest(word, choices)
-    return f" (did you mean '{close}'?)" if close else ""
 
 
 def unit_phrase(unit: str) -> str:

@@ -6,17 +6,18 @@ that azimuth turns it onto the splitter's axis (Hecht, Optics, ch. 8; Goldstein,
 ch. 4). The spatial analyzer is the same with the mode converter and the image rotator (Padgett and
 Courtial, Opt. Lett. 24, 430 (1999)); with the converter at a fixed angle, a target is reachable
 when the converter turns it into a linear (Hermite-Gauss) mode. Retardance errors are handled by a
-few Newton-free polishing steps (scipy minimize) from the closed form; the achieved probability is
+few Levenberg-Marquardt polishing steps from the closed form; the achieved probability is
 returned so callers can refuse a setting that cannot project well enough.
 """
 
 from __future__ import annotations
 
+import cmath
+import math
 from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy.optimize import least_squares
 
 from lightloom.sequencer.errors import OpticsError
 from lightloom.sequencer.optics.analyzer import (
@@ -92,6 +93,16 @@ def _two_element_closed_form(
     return best
 
 
+def _retarder_one(theta: float, retardance: float) -> Complex:
+    """jones.retarder for one angle and one retardance (rad), in scalar arithmetic: the polish
+    evaluates it thousands of times, where numpy's per-call overhead would dominate."""
+    c, s = math.cos(theta), math.sin(theta)
+    e = cmath.exp(1j * retardance)
+    off = (1 - e) * c * s
+    phase = cmath.exp(-0.5j * retardance)
+    return np.array([[(c * c + e * s * s) * phase, off * phase], [off * phase, (s * s + e * c * c) * phase]])
+
+
 def _loss_of(amp):
     """1 - probability from the amplitude left at the other output (the elements are unitary)."""
     return lambda x: abs(amp(x)) ** 2
@@ -99,13 +110,38 @@ def _loss_of(amp):
 
 def _polish(amp, x0: NDArray[np.float64]) -> tuple[NDArray[np.float64], float]:
     """Drive the amplitude at the other output to its minimum from x0 (deg), Levenberg-Marquardt;
-    return (x, probability)."""
+    return (x, probability).
+
+    One or two angles and a two-component residual (the amplitude's real and imaginary parts): a
+    few damped Gauss-Newton steps in numpy, with a central-difference Jacobian, converge from the
+    closed form or a grid point in well under the time scipy.optimize takes to import.
+    """
     def residual(x: NDArray[np.float64]) -> NDArray[np.float64]:
         a = amp(x)
         return np.array([a.real, a.imag])
 
-    res = least_squares(residual, x0, method="lm", xtol=1e-14, ftol=1e-15, gtol=1e-15, max_nfev=400)
-    return res.x, 1.0 - float(abs(amp(res.x)) ** 2)
+    x = np.array(x0, dtype=float)
+    r = residual(x)
+    cost = float(r @ r)
+    damping, eye, h = 1e-3, np.eye(len(x)), 1e-6
+    for _ in range(100):
+        jac = np.column_stack([(residual(x + h * e) - residual(x - h * e)) / (2 * h) for e in eye])
+        accepted = False
+        while damping < 1e12:
+            system = np.vstack([jac, np.sqrt(damping) * eye])
+            step = np.linalg.lstsq(system, np.concatenate([-r, np.zeros(len(x))]), rcond=None)[0]
+            if float(np.max(np.abs(step))) < 1e-12:
+                break  # converged: the next step is below any stage's resolution by far
+            trial = residual(x + step)
+            trial_cost = float(trial @ trial)
+            if trial_cost < cost:
+                x, r, cost, accepted = x + step, trial, trial_cost, True
+                damping = max(damping / 3.0, 1e-12)
+                break
+            damping *= 4.0
+        if not accepted or cost < 1e-30:
+            break
+    return x, 1.0 - float(abs(amp(x)) ** 2)
 
 
 def polarization_setting(target: ArrayLike, port: str, model: AnalyzerModel) -> PolarizationSetting:
@@ -126,7 +162,7 @@ def polarization_setting(target: ArrayLike, port: str, model: AnalyzerModel) -> 
         )
         if p < 1.0 - 1e-12:
             def loss_amp(x: NDArray[np.float64]) -> complex:
-                u = jones.retarder(np.radians(x[1] + h.fast_axis_offset_deg), rh) @ jones.retarder(
+                u = _retarder_one(np.radians(x[1] + h.fast_axis_offset_deg), rh) @ _retarder_one(
                     np.radians(x[0] + q.fast_axis_offset_deg), rq
                 )
                 return complex(u[1 - idx] @ ket)
@@ -142,7 +178,7 @@ def polarization_setting(target: ArrayLike, port: str, model: AnalyzerModel) -> 
     r = np.radians(plate.retardance_deg)
 
     def loss1_amp(x: NDArray[np.float64]) -> complex:
-        u = jones.retarder(np.radians(x[0] + plate.fast_axis_offset_deg), r)
+        u = _retarder_one(np.radians(x[0] + plate.fast_axis_offset_deg), r)
         return complex(u[1 - idx] @ ket)
     loss1 = _loss_of(loss1_amp)
 
@@ -179,7 +215,7 @@ def polarization_setting_variants(target: ArrayLike, port: str, model: AnalyzerM
         h_opt = 0.5 * (theta + idx * np.pi / 2)
 
         def loss_amp(x: NDArray[np.float64]) -> complex:
-            u = jones.retarder(np.radians(x[1] + h.fast_axis_offset_deg), rh) @ jones.retarder(
+            u = _retarder_one(np.radians(x[1] + h.fast_axis_offset_deg), rh) @ _retarder_one(
                 np.radians(x[0] + q.fast_axis_offset_deg), rq
             )
             return complex(u[1 - idx] @ ket)

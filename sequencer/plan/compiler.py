@@ -189,6 +189,7 @@ def compile_requests(
     # sent either way round through the splitter or the sorter): least-motion picks among them.
     variants: list[np.ndarray] = []
     variant_labels: list[list[tuple[str, ...]]] = []
+    solved: dict = {}
     for entry in entries:
         if entry[0] == "elements":
             variants.append(entry[1][None, :])
@@ -201,7 +202,7 @@ def compile_requests(
         for pport in pol_choices:
             for sport in sp_choices:
                 try:
-                    found = _target_settings(table, pp, spp, pol_reg, sp_reg, pport, sport)
+                    found = _target_settings(table, pp, spp, pol_reg, sp_reg, pport, sport, solved)
                 except OpticsError as exc:
                     raise BenchError(f"point {r_index + 1}: {exc}", None, line) from None
                 label = _port_labels(table.ports, pp, spp, pol_reg, sp_reg, analyzes, pport, sport)
@@ -258,13 +259,20 @@ def _park(table: TableModel) -> np.ndarray:
     return s
 
 
-def _target_settings(table, pp, spp, pol_reg, sp_reg, pol_port, sp_port) -> list[np.ndarray]:
-    """Every setting found that sends the pol part to ``pol_port`` and the spatial part to ``sp_port``."""
+def _target_settings(table, pp, spp, pol_reg, sp_reg, pol_port, sp_port, solved: dict) -> list[np.ndarray]:
+    """Every setting found that sends the pol part to ``pol_port`` and the spatial part to ``sp_port``.
+
+    ``solved`` keeps each factor's solution by (factor, basis, port): joint protocols ask for the
+    same polarization and spatial projectors many times over.
+    """
     base = _park(table)
     model = table.analyzer
     if spp is not None:
         b = sp_reg.bases[spp[0]]
-        ss = spatial_setting(b.ket, sp_port, model)
+        key = ("spatial", spp[0], sp_port)
+        if key not in solved:
+            solved[key] = spatial_setting(b.ket, sp_port, model)
+        ss = solved[key]
         if model.mode_converter is not None and "mode_converter" in table.present:
             base[CONVERTER] = CONVERTER_IN if ss.converter_in else CONVERTER_OUT
         elif ss.converter_in:
@@ -276,7 +284,10 @@ def _target_settings(table, pp, spp, pol_reg, sp_reg, pol_port, sp_port) -> list
     if pp is None:
         return [base]
     out = []
-    for ps in polarization_setting_variants(pol_reg.bases[pp[0]].ket, pol_port, model):
+    key = ("polarization", pp[0], pol_port)
+    if key not in solved:
+        solved[key] = polarization_setting_variants(pol_reg.bases[pp[0]].ket, pol_port, model)
+    for ps in solved[key]:
         s = base.copy()
         if ps.quarter_wave_plate_deg is not None:
             s[QWP] = ps.quarter_wave_plate_deg

@@ -9,6 +9,8 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+import numpy as np
+
 
 @dataclass(frozen=True)
 class StageKinematics:
@@ -97,3 +99,54 @@ def nearest_equivalent_deg(angle_deg: float, current_deg: float, period_deg: flo
     if not inside:
         return angle_deg
     return min(inside, key=lambda c: (path_time_s(current_deg, c, k), abs(c)))
+
+
+def _move_times_s(distance_deg: np.ndarray, k: StageKinematics) -> np.ndarray:
+    """move_time_s of every distance at once (same arithmetic, element by element), s."""
+    d = np.abs(distance_deg)
+    v, a = k.speed_deg_per_s, k.acceleration_deg_per_s2
+    if not math.isfinite(a) or a <= 0:
+        out = d / v
+    else:
+        d_ramp = v * v / a
+        out = np.where(d <= d_ramp, 2.0 * np.sqrt(d / a), 2.0 * v / a + (d - d_ramp) / v)
+    return np.where(d == 0.0, 0.0, out)
+
+
+def leg_times_matrix_s(
+    start_deg: np.ndarray, angle_deg: np.ndarray, period_deg: float, k: StageKinematics
+) -> tuple[np.ndarray, np.ndarray]:
+    """Both legs of the move from every start to the nearest equivalent of every angle, s.
+
+    ``start_deg`` (m,) and ``angle_deg`` (n,) give (m, n) arrays (first leg, second leg; 0 where a
+    move has one leg or none), equal element by element to leg_times_s(start,
+    nearest_equivalent_deg(angle, start, period_deg, k), k): the least-motion search needs every
+    transition between the settings, and this is the same rule without a Python loop per pair.
+    """
+    s = np.asarray(start_deg, dtype=float)[:, None, None]
+    angle = np.asarray(angle_deg, dtype=float)[None, :, None]
+    base = angle - period_deg * np.floor((angle - s) / period_deg)
+    cand = base + np.arange(-3, 3)[None, None, :] * period_deg
+    lo, hi = k.min_deg + 2.0 * k.backlash_deg, k.max_deg
+    inside = (lo - 1e-9 <= cand) & (cand <= hi + 1e-9)
+    fallback = (k.min_deg - 1e-9 <= cand) & (cand <= k.max_deg + 1e-9)
+    allowed = np.where(inside.any(axis=2, keepdims=True), inside, fallback)
+    t1, t2 = _legs(np.broadcast_to(s, cand.shape), cand, k)
+    total = np.where(allowed, 0.0 + t1 + t2, np.inf)
+    # min over candidates by (time, |angle|), first in candidate order on a tie
+    best_t = total.min(axis=2, keepdims=True)
+    key = np.where(total == best_t, np.abs(cand), np.inf)
+    pick = np.argmin(key, axis=2)[..., None]
+    target = np.take_along_axis(cand, pick, axis=2)[..., 0]
+    target = np.where(allowed.any(axis=2), target, angle[..., 0] + 0.0 * s[..., 0])
+    return _legs(s[..., 0], target, k)
+
+
+def _legs(start: np.ndarray, target: np.ndarray, k: StageKinematics) -> tuple[np.ndarray, np.ndarray]:
+    """leg_times_s for arrays of starts and targets: (first leg, second leg), 0 for absent legs."""
+    still = np.abs(target - start) < 1e-12
+    two = (k.backlash_deg > 0.0) & ~(target >= start - 1e-12)
+    first_stop = np.where(two, target - 2.0 * k.backlash_deg, target)
+    first = _move_times_s(first_stop - start, k) + k.overhead_s + k.settle_s
+    second = _move_times_s(target - first_stop, k) + k.overhead_s + k.settle_s
+    return np.where(still, 0.0, first), np.where(still | ~two, 0.0, second)

@@ -12,7 +12,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from lightloom.sequencer.plan.kinematics import leg_times_s, nearest_equivalent_deg
+from lightloom.sequencer.plan.kinematics import leg_times_matrix_s
 from lightloom.sequencer.optics.analyzer import CONVERTER
 from lightloom.sequencer.model.elements import COLUMN
 from lightloom.sequencer.model.vocabulary import ORDERS
@@ -27,66 +27,81 @@ PERIOD_DEG: dict[str, float] = {
 }
 
 
-def transition_time_s(a: np.ndarray, b: np.ndarray, table: "TableModel") -> float:
-    """Time to go from settings ``a`` to settings ``b`` with every stage moving at once, s.
+def transition_times_s(a: np.ndarray, b: np.ndarray, table: "TableModel") -> np.ndarray:
+    """Time to go from each row of settings ``a`` (m, 5) to each row of ``b`` (n, 5), s, (m, n).
 
-    Stages move leg by leg together (see kinematics.leg_times_s); the converter switches while the
-    stages move.
+    Stages move leg by leg together (see kinematics.leg_times_s): a transition takes, leg by leg,
+    the slowest stage's leg; the converter switches while the stages move.
     """
-    legs: list[float] = []
+    a, b = np.atleast_2d(a), np.atleast_2d(b)
+    first = np.zeros((len(a), len(b)))
+    second = np.zeros((len(a), len(b)))
     for name, k in table.kinematics.items():
         i = COLUMN[name]
-        if math.isnan(a[i]) or math.isnan(b[i]):
+        moves = ~np.isnan(a[:, i])[:, None] & ~np.isnan(b[:, i])[None, :]
+        if not moves.any():
             continue
-        target = nearest_equivalent_deg(b[i], a[i], PERIOD_DEG[name], k)
-        for j, leg in enumerate(leg_times_s(a[i], target, k)):
-            if j == len(legs):
-                legs.append(leg)
-            else:
-                legs[j] = max(legs[j], leg)
-    t = float(sum(legs))
-    if not (math.isnan(a[CONVERTER]) or math.isnan(b[CONVERTER])) and a[CONVERTER] != b[CONVERTER]:
-        t = max(t, table.converter_switch_s)
-    return t
+        t1, t2 = leg_times_matrix_s(np.nan_to_num(a[:, i]), np.nan_to_num(b[:, i]), PERIOD_DEG[name], k)
+        first = np.maximum(first, np.where(moves, t1, 0.0))
+        second = np.maximum(second, np.where(moves, t2, 0.0))
+    t = 0.0 + first + second
+    ca, cb = a[:, CONVERTER][:, None], b[:, CONVERTER][None, :]
+    switch = ~np.isnan(ca) & ~np.isnan(cb) & (ca != cb)
+    return np.where(switch, np.maximum(t, table.converter_switch_s), t)
+
+
+def transition_time_s(a: np.ndarray, b: np.ndarray, table: "TableModel") -> float:
+    """Time to go from settings ``a`` to settings ``b`` (5,) with every stage moving at once, s."""
+    return float(transition_times_s(a, b, table)[0, 0])
 
 
 def _best_variants(
-    order: list[int], block: list[list[np.ndarray]], start: list[np.ndarray], ref_every: int
+    order: list[int], block: list[list[list[list[float]]]], start: list[list[float]], ref_every: int
 ) -> tuple[float, list[int]]:
     """For a fixed order, the variant of every setting that minimises the total time (Viterbi).
 
-    ``block[i][j]`` (V_i, V_j) holds the transition times between the variants of settings i and
-    j, ``start[i]`` (V_i,) those from the origin. With references, the reference setting is the
+    ``block[i][j][a][b]`` is the transition time from variant a of setting i to variant b of
+    setting j, ``start[i][a]`` from the origin. With references, the reference setting is the
     first setting measured (in the variant chosen for it); the compiler returns to it at the
-    start, after every ``ref_every`` settings and at the end.
+    start, after every ``ref_every`` settings and at the end. Plain lists: settings have one to
+    four variants, where numpy's per-call overhead would cost more than the arithmetic.
     """
     first = order[0]
     candidates = range(len(start[first])) if ref_every > 0 else [None]
     best_total, best_path = math.inf, [0] * len(order)
     for v0 in candidates:
-        t = start[first].copy()
+        t = list(start[first])
         if v0 is not None:
-            t = np.full_like(t, math.inf)
+            t = [math.inf] * len(t)
             t[v0] = start[first][v0]
-        back: list[np.ndarray] = []
+        back: list[list[int]] = []
         for k in range(1, len(order)):
             i, j = order[k - 1], order[k]
             if v0 is not None and k % ref_every == 0:
-                step = block[i][first][:, v0 : v0 + 1] + block[first][j][v0 : v0 + 1, :]
+                out_, in_ = block[i][first], block[first][j][v0]
+                step = [[out_[a][v0] + in_[b] for b in range(len(in_))] for a in range(len(t))]
             else:
                 step = block[i][j]
-            total = t[:, None] + step
-            arg = np.argmin(total, axis=0)
-            back.append(arg)
-            t = total[arg, np.arange(total.shape[1])]
+            args, new_t = [], []
+            for b in range(len(step[0])):
+                best_a, best_v = 0, t[0] + step[0][b]
+                for a in range(1, len(t)):
+                    v = t[a] + step[a][b]
+                    if v < best_v:
+                        best_a, best_v = a, v
+                args.append(best_a)
+                new_t.append(best_v)
+            back.append(args)
+            t = new_t
         if v0 is not None:
-            t = t + block[order[-1]][first][:, v0]
-        end = int(np.argmin(t))
-        if float(t[end]) < best_total:
-            best_total = float(t[end])
+            closing = block[order[-1]][first]
+            t = [t[a] + closing[a][v0] for a in range(len(t))]
+        end = min(range(len(t)), key=t.__getitem__)
+        if t[end] < best_total:
+            best_total = t[end]
             path, w = [end], end
-            for arg in reversed(back):
-                w = int(arg[w])
+            for args in reversed(back):
+                w = args[w]
                 path.append(w)
             best_path = path[::-1]
     return best_total, best_path
@@ -105,12 +120,14 @@ def least_motion_order(
     n = len(variants)
     if n <= 1:
         return list(range(n)), [0] * n
-    block = [
-        [np.array([[transition_time_s(a, b, table) for b in variants[j]] for a in variants[i]]) for j in range(n)]
-        for i in range(n)
-    ]
-    start = [np.array([transition_time_s(origin, a, table) for a in variants[i]]) for i in range(n)]
-    cost = np.array([[block[i][j].min() for j in range(n)] for i in range(n)])
+    rows = np.concatenate(variants)
+    edges = np.cumsum([0] + [len(v) for v in variants])
+    every = transition_times_s(rows, rows, table)
+    blocks = [[every[edges[i]:edges[i + 1], edges[j]:edges[j + 1]] for j in range(n)] for i in range(n)]
+    cost = np.array([[blocks[i][j].min() for j in range(n)] for i in range(n)])
+    block = [[b.tolist() for b in row] for row in blocks]
+    from_origin = transition_times_s(origin, rows, table)[0]
+    start = [from_origin[edges[i]:edges[i + 1]].tolist() for i in range(n)]
     memo: dict[tuple[int, ...], tuple[float, list[int]]] = {}
 
     def total(order: list[int]) -> float:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
 from numpy.typing import NDArray
 
@@ -15,7 +17,9 @@ from lightloom.sequencer.optics.analyzer import (
 )
 from lightloom.sequencer.optics.determination import Determination, determination
 from lightloom.sequencer.optics.states import density
-from lightloom.sequencer.plan.compiler import TableModel
+
+if TYPE_CHECKING:  # the compiler pulls in scipy; validate without a bench does not need it
+    from lightloom.sequencer.plan.compiler import TableModel
 
 FACTORS = ANALYZERS
 

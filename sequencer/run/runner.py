@@ -23,7 +23,8 @@ from lightloom.drivers.interfaces import Device, DiscreteActuator, PhotonCounter
 from lightloom.sequencer.plan.compiler import TableModel
 from lightloom.sequencer.errors import RunFault
 from lightloom.sequencer.plan.kinematics import approach_path
-from lightloom.sequencer.optics.analyzer import complete_port_set, port_operators
+from lightloom.sequencer.optics.analyzer import port_operators
+from lightloom.sequencer.run.beam import beam_level
 from lightloom.sequencer.model.elements import ElementSettings
 from lightloom.sequencer.model.steps import StepList, Step
 from lightloom.sequencer.model.records import (
@@ -145,6 +146,7 @@ class Runner:
         frames: FrameSink | None = None,
         frames_averaged: int | None = None,
         begin_reading: Callable[[int], None] | None = None,
+        beam_baseline: float | None = None,
     ) -> None:
         self.plan = plan
         self.table = table
@@ -168,7 +170,8 @@ class Runner:
         # Told the index of each step just before its detectors are read (a simulated table
         # derives that reading's noise from it, so a resumed run reads what an uninterrupted one would).
         self.begin_reading = begin_reading
-        self._beam = _BeamWatch()
+        # The beam monitor's level the run started from (given on resume; else the first reading's).
+        self._beam = _BeamWatch(baseline=beam_baseline)
         self._positions: dict[str, float] = {}
         self._converter_state: str | None = None
         self._shutter_open: bool | None = None
@@ -178,7 +181,6 @@ class Runner:
         self._pool = ThreadPoolExecutor(max_workers=max(1, len(rig.detectors) + 1), thread_name_prefix="read")
         self._last_refresh = -math.inf
         self._refresh_every_s = policy.refresh_s
-        self._complete_product = _complete_product(table)
 
     def _tell(self, fn: Callable[..., None], *args) -> None:
         """Update the display; a closed terminal or a display bug never stops a run."""
@@ -357,15 +359,6 @@ class Runner:
         ref = values.pop() if self.rig.reference is not None else math.nan
         return np.array(values, dtype=float), ref
 
-    def _beam_level(self, step: Step, values: np.ndarray, ref: float) -> float | None:
-        """The beam monitor's level for this reading, or None when nothing measures the beam."""
-        if not math.isnan(ref):
-            return ref
-        if self._complete_product and step.kind != "background":
-            gains = np.array([p.gain for p in self.table.ports])
-            return float(np.sum(values / gains))
-        return None
-
     def _wait_for_beam(self, level: float) -> None:
         baseline = self._beam.baseline
         assert baseline is not None
@@ -430,7 +423,7 @@ class Runner:
                 self.log(f"an instrument reconnected or lost its position during step {step.index}; measuring that step again")
                 flags |= FLAG_RETRIED
                 continue
-            level = self._beam_level(step, values, ref)
+            level = beam_level(step.kind, values, ref, self.table)
             if level is not None and step.kind != "background":
                 if self._beam.baseline is None:
                     self._beam.baseline = level if level > 0 else None
@@ -551,8 +544,6 @@ class Runner:
             self.sleep(wait)
 
 
-def _complete_product(table: TableModel) -> bool:
-    return complete_port_set([(p.sorter_port, p.splitter_port) for p in table.ports])
 
 
 def _reading_line(step: Step, reading: Reading, units: str) -> str:

@@ -7,7 +7,6 @@ This is the imperative shell around the compiler and the runner; the command-lin
 from __future__ import annotations
 
 import datetime as dt
-import math
 import signal
 import sys
 import time
@@ -25,8 +24,10 @@ from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, Be
 from lightloom.sequencer.optics.states import BASIS_LABELS
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
-from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, _complete_product as _complete_ports
+from lightloom.sequencer.run.beam import initial_beam_level, ports_watch_the_beam
+from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested
 from lightloom.sequencer.run.safety import LASER_SAFETY_CAUTION
+from lightloom.sequencer.outputs import check_new_output
 from lightloom.sequencer.model.records import FORMAT_VERSION, Event, PortLayout, RunHeader, RunSources
 from lightloom.sequencer.storage.store import RunStore
 from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
@@ -238,10 +239,8 @@ def start_run(protocol_spec: str, bench_spec: str, out: str, *, console: Console
         )
     units = port_units(bench)
     out_path = Path(out)
-    if out_path.exists():
-        raise UsageError(f"{out_path} exists already; lightloom never overwrites a run file (use `lightloom resume {out_path}` or another --out)")
-    if not out_path.parent.exists():
-        raise UsageError(f"the folder {out_path.parent} does not exist; create it or choose another --out")
+    check_new_output(out_path, "--out", f"{out_path} exists already; lightloom never overwrites a run file "
+                     f"(use `lightloom resume {out_path}` or another --out)")
     assembled = assemble(bench)
     header = make_header(protocol, bench, plan, units, protocol_spec, bench_spec)
     store = RunStore.create(out_path, header)
@@ -312,21 +311,6 @@ def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
     return protocol, bench
 
 
-def _initial_beam_level(store: RunStore, table) -> float | None:
-    r = store.readings
-    if len(r) == 0:
-        return None
-    usable = ~r.of_kind("background")
-    if not usable.any():
-        return None
-    i = int(np.flatnonzero(usable)[0])
-    ref = float(r.reference_w[i])
-    if not math.isnan(ref):
-        return ref
-    gains = np.array([p.gain for p in table.ports])
-    return float(np.sum(r.values[i] / gains)) if len(table.ports) > 1 else None
-
-
 def _execute(protocol, bench, plan, assembled, store, out_path, done, console, live, *, resumed) -> int:
     table = table_model(bench)
     log = RunLog(log_path_for(out_path))
@@ -343,7 +327,7 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             sys.stderr.write(LASER_SAFETY_CAUTION)
             sys.stderr.flush()
             log("laser-safety caution shown; the shutter will open unattended")
-        if bench.roles.reference is None and not _complete_ports(table):
+        if bench.roles.reference is None and not ports_watch_the_beam(table):
             blind = (
                 "warning: this bench has no beam monitor (no reference meter, and its ports do not "
                 "measure a complete set), so a lost beam cannot be told from a dark projector and "
@@ -369,8 +353,8 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
                         run_start=_run_start(store, assembled.now),
                         parallel_reads=not (bench.is_simulated and bench.simulation.time_scale == 0),
                         begin_reading=getattr(assembled.simulated_table, "begin_step", None),
+                        beam_baseline=initial_beam_level(store.readings, table),
                         **runner_kwargs)
-        runner._beam.baseline = _initial_beam_level(store, table)
         with stop_on_sigterm():
             status, message = runner.execute(done)
     except BaseException as exc:

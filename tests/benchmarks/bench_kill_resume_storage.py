@@ -22,7 +22,7 @@ from lightloom.sequencer.storage import RunStore, load_run, read_journal, read_r
 from test_storage_kill import (  # noqa: E402
     check_run, kill_after_lines, reported_indices, start_writer,
 )
-from test_storage_records import make_header  # noqa: E402
+from helpers.records import make_header  # noqa: E402
 
 
 def append_kills(tmp: Path, kills: int, rng: random.Random, total: int = 100_000) -> None:

@@ -1,7 +1,7 @@
 """Benchmark: median query round trip through pyvisa-py and pyserial to a loopback line server.
 
 Run on demand: ``PYTHONPATH=. python tests/benchmarks/bench_transport_roundtrip.py [N]``.
-Against tests/drivers_fake_server.py on 127.0.0.1, in this one run, prints the median of N
+Against tests/helpers/fake_server.py on 127.0.0.1, in this one run, prints the median of N
 round trips for: the bare libraries (``resource.query``, pyserial ``write`` + ``read_until``),
 the drivers' transports (``query_line``), a stage's ``position_deg()``, and a write followed by
 a query (where Nagle's algorithm costs a delayed ACK unless TCP_NODELAY is set). Ratios are
@@ -26,7 +26,7 @@ from lightloom.drivers.options import parse_config  # noqa: E402
 from lightloom.drivers.registry import create_device  # noqa: E402
 from lightloom.drivers.serial_transport import SerialTransport  # noqa: E402
 from lightloom.drivers.visa_transport import VisaTransport  # noqa: E402
-from drivers_fake_server import FakeInstrument, FakeLineServer, address_for  # noqa: E402
+from helpers.fake_server import FakeInstrument, FakeLineServer, address_for  # noqa: E402
 
 
 def median_ms(call: Callable[[], object], n: int) -> float:
