@@ -24,7 +24,7 @@ from lightloom.simulators.camera import (
     SensorModel, pixel_coordinates, polarization_povm, power_fraction_map, sensor_from_options,
 )
 from lightloom.simulators.table import SimulatedTable
-from test_run_complete import spawn
+from helpers.runs import spawn
 
 
 def bench_with_ket(tmp_path: Path, ket, base: str = "sim-camera", extra: str = "", name: str = "src") -> Path:

@@ -7,7 +7,7 @@ from a run file); the per-frame columns (kind, pass, operators) are small and in
 result is linear in the frames, pass by pass (analysis.imaging: S = A^+ (I - dark) at every pixel),
 so a pass is a weighted sum of its own frames and the work streams: memory holds the chunks in
 flight, not the night. Nothing here chooses where it runs: ``compute`` with the local threaded
-scheduler, or with a dask.distributed Client (see commands.imaging_report).
+scheduler, or with a dask.distributed Client (see sequencer.imaging_report).
 """
 
 from __future__ import annotations

@@ -78,7 +78,7 @@ def run(args: argparse.Namespace) -> int:
             from lightloom.sequencer.analysis.portrait import portrait, portrait_json
 
             doc["field_maps"] = portrait_json(portrait(est.rho))
-    from lightloom.sequencer.commands import imaging_report
+    from lightloom.sequencer import imaging_report
 
     imaging = imaging_report.imaging_result(args.file, data, rng=np.random.default_rng(args.seed),
                                             replicates=args.bootstrap)

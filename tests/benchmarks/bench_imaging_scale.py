@@ -78,7 +78,7 @@ def write_stack(path: Path, frames: int, side: int, seed: int = 1) -> int:
 
 def analyse(path: str, out: str, address: str | None, window: int) -> dict:
     """Series and window maps of the stack; wall time and frame count."""
-    from lightloom.sequencer.commands.imaging_report import imaging_series
+    from lightloom.sequencer.imaging_report import imaging_series
 
     t0 = time.perf_counter()
     result = imaging_series(path, address=address, maps_out=out, passes_per_window=window)
@@ -100,7 +100,7 @@ def child(args: argparse.Namespace) -> None:
     import h5py  # noqa: F401
 
     import lightloom.sequencer.analysis.imaging_dask  # noqa: F401
-    import lightloom.sequencer.commands.imaging_report  # noqa: F401
+    import lightloom.sequencer.imaging_report  # noqa: F401
 
     base = vm_size_bytes()
     cap = base + args.limit_mb * 2**20

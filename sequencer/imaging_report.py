@@ -1,5 +1,6 @@
-"""The imaging part of ``lightloom analyze``: frames of a camera run -> Stokes maps, integrated
-Stokes parameters, non-separability (JSON keys), the maps file (``--maps``) and the figure."""
+"""The imaging part of ``lightloom analyze``, shell glue between storage and analysis: frames of a
+camera run -> Stokes maps, integrated Stokes parameters, non-separability (JSON keys), the maps
+file (``--maps``), and the night out of core (``--series``) on local threads or a dask cluster."""
 
 from __future__ import annotations
 
@@ -9,6 +10,7 @@ import numpy as np
 
 from lightloom.sequencer.analysis.imaging import ImagingResult, analyze_frames, polarization_povms
 from lightloom.sequencer.errors import UsageError
+from lightloom.sequencer.outputs import check_new_output
 
 MAP_NAMES = ("S0", "S1", "S2", "S3", "dop", "orientation_deg", "ellipticity_deg")
 
@@ -68,10 +70,7 @@ def write_maps(result: ImagingResult, out: str) -> Path:
     import h5py
 
     path = Path(out)
-    if path.exists():
-        raise UsageError(f"{path} exists already; choose another --maps file (lightloom never overwrites)")
-    if not path.parent.exists():
-        raise UsageError(f"the folder {path.parent} does not exist; create it or choose another --maps file")
+    check_new_output(path, "--maps", f"{path} exists already; choose another --maps file (lightloom never overwrites)")
     maps = result.maps
     values = dict(zip(MAP_NAMES[:4], maps.stokes))
     values.update(dop=maps.dop, orientation_deg=maps.orientation_deg, ellipticity_deg=maps.ellipticity_deg)
@@ -103,8 +102,9 @@ def imaging_series(path: str, *, address: str | None = None, maps_out: str | Non
     columns = frame_columns(path)
     if len(set(columns.port.tolist())) > 1:
         raise UsageError(f"{path}: the series analysis takes runs with one camera")
-    if maps_out is not None and Path(maps_out).exists():
-        raise UsageError(f"{maps_out} exists already; choose another file (lightloom never overwrites)")
+    if maps_out is not None:
+        check_new_output(Path(maps_out), "--series-maps",
+                         f"{maps_out} exists already; choose another --series-maps file (lightloom never overwrites)")
     layout = night.pass_weights(columns.kind, columns.pass_index, columns.operators)
     stack = frame_stack(path, frames_per_chunk)
     keep = ~night.saturated_anywhere(frame_stack(path, frames_per_chunk, "frames/saturated"))
