@@ -53,6 +53,8 @@ def test_advised_stack_brings_the_simulated_source_to_the_predicted_fidelity(mea
     s = doc["settings"]
     f, std = doc["fidelity"]["value"], doc["fidelity"]["std"]
     assert std is not None and 0 < std < 0.01
+    lo, hi = doc["fidelity"]["interval"]
+    assert 0.0 <= lo <= f <= hi <= 1.0
     settings = StackSettings(s["quarter_wave_plate_1_deg"], s["half_wave_plate_deg"], s["quarter_wave_plate_2_deg"],
                              s["mode_converter_deg"], s["image_rotator_deg"])
     corrected = stack_unitary(settings) @ SOURCE

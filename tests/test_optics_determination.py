@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings, strategies as st
 
 from lightloom.sequencer.optics.determination import determination
 from lightloom.sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, density
@@ -126,3 +127,29 @@ def test_ports_that_sum_to_the_other_factors_identity_are_not_called_tangled() -
     det = determination(ops, BOTH, ("polarization",))
     assert not any("depend" in m for m in det.missing)
     assert det.stokes["polarization"] == (True, True, False, False)
+
+
+def _random_projectors(rng: np.random.Generator, count: int, d: int = 4) -> np.ndarray:
+    kets = rng.normal(size=(count, d)) + 1j * rng.normal(size=(count, d))
+    kets /= np.linalg.norm(kets, axis=1, keepdims=True)
+    return np.einsum("ni,nj->nij", kets, kets.conj())
+
+
+@settings(max_examples=40, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), count=st.integers(1, 24))
+def test_what_is_determined_depends_on_the_span_only(seed: int, count: int) -> None:
+    # Law: rescaling operators (port gains), reordering them or repeating them changes nothing, and
+    # adding operators never loses a determined component.
+    rng = np.random.default_rng(seed)
+    ops = _random_projectors(rng, count)
+    base = determination(ops, BOTH, BOTH)
+    shuffled = ops[rng.permutation(count)] * rng.uniform(0.1, 10.0, size=(count, 1, 1))
+    again = determination(np.concatenate([shuffled, shuffled[:2]]), BOTH, BOTH)
+    assert (again.kind, again.rank, dict(again.stokes)) == (base.kind, base.rank, dict(base.stokes))
+    more = determination(np.concatenate([ops, _random_projectors(rng, 3)]), BOTH, BOTH)
+    assert more.rank >= base.rank
+    for factor in BOTH:
+        assert all(m or not b for m, b in zip(more.stokes[factor], base.stokes[factor]))
+    # Generic projectors: 16 or more span the whole space (rank min(count, 16)).
+    assert base.rank == min(count, 16)
+    assert (base.kind == "joint-state") == (count >= 16)

@@ -1,7 +1,7 @@
 """From a run (its readings and the operators of every port reading) to states and figures of merit.
 
-Pure: takes the RunData read from a file, returns plain results. The corrections, each recorded in
-the result:
+Pure: takes the RunData read from a file, returns plain results. The corrections, each applied
+per reading and recorded in the result:
 
 1. background: the shutter-closed readings of each port, interpolated in time, are subtracted;
    their spread enters the noise model;
@@ -9,7 +9,7 @@ the result:
    file); counts keep gains in the operators, since counts cannot be rescaled;
 3. drift: readings are divided by a smooth drift model fitted to the pick-off reference (or to
    the reference steps' total power), only where the reference shows a drift beyond its own
-   noise (sequencer.analysis.drift);
+   noise (sequencer.analysis.drift); for counts the factor multiplies the operators instead;
 4. normalisation per setting over complementary ports (optional, when the ports of a setting
    measure a complete set): each step's readings are divided by their sum, which cancels drift
    without a reference meter.
@@ -18,9 +18,12 @@ The errors of the background subtraction and of the drift model are drawn into e
 replicate (sequencer.analysis.propagation), and every figure gets a 95% interval inside its
 physical range (sequencer.analysis.intervals).
 
-Single-factor protocols sum the readings of the ports (and expansion steps) that measure the same
-projector on the analysed factor, then reduce the operators to that factor, Tr_other(E) / 2,
-which is exact when the summed operator is A (x) I.
+Then the readings of each (setting, port) are combined into sufficient statistics
+(sequencer.analysis.sufficient), so that the fits cost O(distinct operators). The per-port
+operators stored in the file are the truth: single-factor protocols are reduced to their factor
+by what the operators say, never by the projectors' labels (sequencer.analysis.reduction). What
+the operators determine is checked first (sequencer.analysis.determines): a run that does not yet
+determine the state gives the Stokes components it does determine, and says what is missing.
 """
 
 from __future__ import annotations
@@ -40,15 +43,24 @@ from lightloom.sequencer.analysis.background import BackgroundModel, background_
 from lightloom.sequencer.analysis.drift import DriftModel, fit_drift, no_drift
 from lightloom.sequencer.analysis.intervals import figure_bounds
 from lightloom.sequencer.analysis.propagation import CorrectionNoise, correction_noise
+from lightloom.sequencer.analysis.estimate.errors import EstimationError
+from lightloom.sequencer.analysis.estimate.hermitian import to_matrix, to_vector
+from lightloom.sequencer.analysis.estimate.linear import least_squares_operator
+from lightloom.sequencer.analysis.reduction import reduce_to_factor
+from lightloom.sequencer.analysis.sufficient import CHUNK_ROWS, Sums, accumulate, setting_ids
 from lightloom.sequencer.optics.analyzer import complete_port_set
-from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS, partial_trace
-from lightloom.sequencer.model.steps import StepList
+from lightloom.sequencer.optics.determination import STATE_KIND, Determination, determination
+from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS
+from lightloom.sequencer.optics.stokes import PAULI
 from lightloom.sequencer.model.records import RunData
 
 FACTOR_BASIS = {"polarization": ("H", "V"), "spatial": ("h", "v")}
 BOOTSTRAP_TOLERANCE = 1e-3
 # Floor of the relative spread of a power reading when nothing measures it (no repeats).
 MIN_RELATIVE_SPREAD = 1e-4
+# Relative spread assumed for partial estimates when nothing measures the noise (no repeats and no
+# redundant readings yet): deliberately wide, 1% a reading, and said so in the document.
+UNMEASURED_RELATIVE_SPREAD = 1e-2
 
 
 class AnalysisError(ValueError):
@@ -57,7 +69,11 @@ class AnalysisError(ValueError):
 
 @dataclass(frozen=True)
 class Prepared:
-    """Readings ready for an estimator: one row per (combined) reading."""
+    """Readings ready for an estimator: one row per distinct operator (sufficient statistics).
+
+    ``values`` are mean readings (W) for the Gaussian model with ``sigma`` the std of that mean,
+    or summed counts for the Poisson model (operators then summed too, in counts/s units).
+    """
 
     operators: np.ndarray  # (n, d, d)
     values: np.ndarray  # (n,) counts or W
@@ -66,25 +82,39 @@ class Prepared:
     basis: tuple[str, ...]
     analyzes: tuple[str, ...]
     corrections: dict[str, Any]
-    labels: tuple[str, ...] = ()
     times: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    readings: int = 0  # port readings behind the rows
+    # chi^2 of the readings about their group means, and its degrees of freedom (Gaussian): with
+    # the rows' own chi^2 it gives the per-reading chi^2 that the residual rescaling uses.
+    within_chi2: float = 0.0
+    within_dof: int = 0
     correction_noise: CorrectionNoise | None = None
+    # variance of a row = a^2 x absolute_factor + (b x prediction)^2 x relative_factor (Gaussian):
+    # 1/k for the mean of k readings; reduced rows combine several means
+    absolute_factor: np.ndarray | None = None
+    relative_factor: np.ndarray | None = None
+    segment: dict[str, Any] = field(default_factory=dict)  # kind, index, t_start, t_end
 
 
 @dataclass(frozen=True)
 class Estimate:
     """The result of an analysis: the state, its figures with uncertainties, and how it was made."""
 
-    rho: np.ndarray
-    rho_std: np.ndarray
+    rho: np.ndarray | None  # None when the readings do not determine the state (partial)
+    rho_std: np.ndarray | None
     basis: tuple[str, ...]
     analyzes: tuple[str, ...]
-    figures: dict[str, tuple[float, float, tuple[float, float]]]  # name -> (value, std, 95% interval)
-    stokes: dict[str, list[tuple[float, float, tuple[float, float]]]]  # factor -> [S0..S3] (value, std, interval)
-    closest_mode: tuple[str, float, float, tuple[float, float]] | None
+    figures: dict[str, tuple]  # name -> (value, std, (lo, hi) 95% interval)
+    stokes: dict[str, list[tuple | None]]  # factor -> [S0..S3] (value, std, interval), None if not determined
+    closest_mode: tuple | None  # (name, value, std, interval)
     estimator: dict[str, Any]
     corrections: dict[str, Any]
     linear_rho: np.ndarray | None = None
+    power: tuple | None = None  # (value, std, (lo, hi)): S0 in W or counts/s
+    power_units: str = "W"
+    determined: Determination | None = None
+    partial: bool = False  # True: the state is not determined; only some Stokes components are
+    segment: dict[str, Any] = field(default_factory=dict)
 
 
 def _background(run: RunData) -> tuple[BackgroundModel, np.ndarray]:
@@ -97,6 +127,14 @@ def _background(run: RunData) -> tuple[BackgroundModel, np.ndarray]:
         return model, np.zeros(len(r))
     ref_bg = np.interp(t_mid, t_mid[bg], r.reference_w[bg]) if np.isfinite(r.reference_w[bg]).all() else np.zeros(len(r))
     return model, ref_bg
+
+
+def _background_at(model: BackgroundModel, t_s: np.ndarray) -> np.ndarray:
+    """(n, ports) background under readings at ``t_s``: the model's interpolation, one port at a
+    time (O(n); the model's own weight matrix would be n x background readings)."""
+    if not model.applied:
+        return np.zeros((len(t_s), model.values.shape[1] if model.values.ndim == 2 else 0))
+    return np.column_stack([np.interp(t_s, model.times_s, model.values[:, j]) for j in range(model.values.shape[1])])
 
 
 def _drift_model(run: RunData, ref_bg: np.ndarray, use_complete_sum: bool, gains: np.ndarray) -> DriftModel:
@@ -118,164 +156,273 @@ def _complete_ports(run: RunData) -> bool:
     return complete_port_set([(p.sorter_port, p.splitter_port) for p in run.header.ports])
 
 
-def _spread_model(values: np.ndarray, groups: np.ndarray, bg_std: float) -> tuple[float, float, str]:
-    """(a, b) of sigma^2 = a^2 + (b v)^2 from repeated readings (groups), else fall-backs.
+def _port_gains(run: RunData) -> np.ndarray:
+    h = run.header
+    return np.asarray(h.port_gains, dtype=float)
 
-    With repeats both terms are fitted (non-negative least squares on the unbiased variances),
-    the background spread entering as one more observation of a^2: a few background readings
-    alone estimate the absolute noise, which dominates at low power, too poorly.
+
+def _spread_model(sums: Sums, bg_std: float) -> tuple[float, float, str]:
+    """(a, b) of sigma^2 = a^2 + (b v)^2 from repeated readings (rows of ``sums`` with count >= 2).
+
+    Both terms are fitted (non-negative least squares on the unbiased variances, one observation
+    per reading), the background spread entering as one more observation of a^2: a few
+    background readings alone estimate the absolute noise, which dominates at low power, too poorly.
     """
     a = float(bg_std)
-    uniq, inverse, counts = np.unique(groups, return_inverse=True, return_counts=True)
-    rep = counts[inverse] >= 2
-    if rep.sum() >= 4:
-        means = np.bincount(inverse, weights=values) / counts
-        dev = values - means[inverse]
-        corr = counts[inverse] / np.maximum(counts[inverse] - 1, 1)  # unbiased variance per reading
-        var = (dev**2 * corr)[rep]
-        v2 = (means[inverse] ** 2)[rep]
+    rep = sums.count >= 2
+    if sums.count[rep].sum() >= 4:
         from scipy.optimize import nnls
 
+        k = sums.count[rep]
+        mean = sums.sum_value[rep] / k
+        var = np.clip(sums.sum_value2[rep] - k * mean**2, 0.0, None) / (k - 1)
+        v2 = mean**2
         # var = a^2 + b^2 v^2, weighted by 1 / model variance^2 (the spread of a variance estimate
         # grows with the variance), with the background spread as one more observation of a^2.
         v_scale = max(float(np.median(v2)), 1e-300)
         design = np.column_stack([np.ones(var.size), v2 / v_scale])
         rhs = var
+        weight = k.astype(float)
         if a > 0:
             design = np.vstack([design, [1.0, 0.0]])
             rhs = np.concatenate([var, [a * a]])
-        model_var = np.full(rhs.size, max(float(rhs.mean()), 1e-300))
+            weight = np.concatenate([weight, [1.0]])
+        mean_var = max(float(np.average(rhs, weights=weight)), 1e-300)
+        model_var = np.full(rhs.size, mean_var)
         for _ in range(3):
-            w = 1.0 / model_var
+            w = np.sqrt(weight) / model_var
             sol, _ = nnls(design * w[:, None], rhs * w)
-            model_var = np.maximum(design @ sol, 1e-3 * max(float(rhs.mean()), 1e-300))
+            model_var = np.maximum(design @ sol, 1e-3 * mean_var)
         a2, b2 = float(sol[0]), float(sol[1]) / v_scale
-        return math.sqrt(max(a2, 0.0)), math.sqrt(max(b2, 0.0)), f"from {int(rep.sum())} repeated readings"
+        return math.sqrt(max(a2, 0.0)), math.sqrt(max(b2, 0.0)), f"from {int(k.sum())} repeated readings"
     return a, MIN_RELATIVE_SPREAD, "no repeats: background spread and a relative floor, rescaled by the fit residuals"
 
 
+@dataclass(frozen=True)
+class Segments:
+    """How to cut a run for separate fits: one id per reading (-1: left out), and what each id is."""
+
+    of_reading: np.ndarray  # (n,) int
+    kind: str  # "run" | "pass" | "window"
+    labels: tuple[int, ...]  # the pass index or window number of each segment id
+
+
+def whole_run(n_readings: int) -> Segments:
+    """Every reading in one segment."""
+    return Segments(np.zeros(n_readings, dtype=np.int64), "run", (0,))
+
+
+def by_pass(pass_index: np.ndarray) -> Segments:
+    """One segment per outer pass (sweep) of the protocol."""
+    labels, inverse = np.unique(pass_index, return_inverse=True)
+    return Segments(np.asarray(inverse, dtype=np.int64).reshape(-1), "pass", tuple(int(x) for x in labels))
+
+
+def by_window(t_mid: np.ndarray, window_s: float) -> Segments:
+    """Consecutive time windows of ``window_s`` seconds from the first reading."""
+    if window_s <= 0:
+        raise AnalysisError("a time window must be longer than 0 s")
+    if len(t_mid) == 0:
+        return Segments(np.zeros(0, dtype=np.int64), "window", ())
+    number = np.floor((t_mid - float(np.min(t_mid))) / window_s).astype(np.int64)
+    labels, inverse = np.unique(number, return_inverse=True)
+    return Segments(np.asarray(inverse, dtype=np.int64).reshape(-1), "window", tuple(int(x) for x in labels))
+
+
 def prepare(run: RunData, *, normalize: bool = False, operators: np.ndarray | None = None) -> Prepared:
-    """Readings of the ``measure`` kind, corrected, combined and reduced for the estimators.
+    """Readings of the ``measure`` kind, corrected and reduced to sufficient statistics for the estimators.
 
     ``operators`` may replace the stored ones (e.g. recomputed with a new calibration).
     """
+    prepared = prepare_segments(run, whole_run(len(run.readings)), normalize=normalize, operators=operators)
+    if not prepared:
+        raise AnalysisError("the run has no measure readings yet; wait for the first setting to be measured")
+    return prepared[0]
+
+
+def prepare_segments(
+    run: RunData, segments: Segments, *, normalize: bool = False, operators: np.ndarray | None = None,
+) -> list[Prepared]:
+    """One Prepared per segment that holds measure readings (corrections computed on the whole run).
+
+    Each reading is corrected on its own (background interpolated in time, drift, port gains,
+    optional normalisation), then the readings of each (segment, setting, port) are summed into
+    sufficient statistics (sequencer.analysis.sufficient): the estimators see one row per
+    distinct operator, whatever the length of the night.
+    """
     h = run.header
     r = run.readings
-    meas = r.of_kind("measure")
-    if not meas.any():
-        raise AnalysisError("the run has no measure readings yet; wait for the first setting to be measured")
     counts = h.port_units == "counts"
-    gains = h.port_gains
+    gains = _port_gains(run)
     complete = _complete_ports(run)
+    meas = r.of_kind("measure") & (segments.of_reading >= 0)
+    rows = np.flatnonzero(meas)
+    if rows.size == 0:
+        return []
+    if normalize and not complete:
+        raise AnalysisError("normalisation per setting needs ports that measure a complete set (e.g. all four ports)")
+    t_all = 0.5 * (np.asarray(r.t_start) + np.asarray(r.t_end))
     bg_model, ref_bg = _background(run)
-    bg_info = background_info(bg_model)
-    bg_std = bg_model.sigma if bg_model.applied else np.zeros(r.values.shape[1])
+    bg_std = bg_model.sigma if bg_model.applied else np.zeros(len(gains))
+    bg = _background_at(bg_model, t_all)
     drift_model = _drift_model(run, ref_bg, complete, gains)
-    drift_info = drift_model.info
-    t_all = 0.5 * (r.t_start + r.t_end)
-    ops_all = np.asarray(operators if operators is not None else r.operators)
-    values = (r.values - bg_model.at(t_all))[meas]
-    ops = ops_all[meas]
-    f = drift_model.factor(t_all)[meas]
-    steps = r.step_index[meas]
-    plan = StepList.from_json(h.steps_json)
-    labels_by_step = {s.index: s.port_labels for s in plan.steps}
-    n, n_ports = values.shape
-    corrections: dict[str, Any] = {"background": bg_info, "drift": drift_info}
+    drift = drift_model.factor(t_all)
+    corrections: dict[str, Any] = {"background": background_info(bg_model), "drift": drift_model.info}
+    d = int(h.dimension)
+
+    def corrected(lo: int, hi: int, mask: np.ndarray) -> np.ndarray:
+        v = (np.asarray(r.values[lo:hi]) - bg[lo:hi])[mask]
+        if counts:
+            return np.clip(np.round(v), 0, None)
+        v = v / drift[lo:hi][mask][:, None] / gains[None, :]
+        if normalize:
+            tot = v.sum(axis=1, keepdims=True)
+            if (tot <= 0).any():
+                raise AnalysisError("a setting has no signal at all; normalisation is impossible")
+            v = v / tot
+        return v
+
+    def model_operators(lo: int, hi: int, mask: np.ndarray) -> np.ndarray:
+        e = np.asarray(ops_source[lo:hi])[mask]
+        if counts:
+            # expected counts of a reading: drift x dwell x tr(T E), T in counts/s
+            scale = drift[lo:hi][mask] * np.asarray(r.dwell_s[lo:hi])[mask]
+            return e * scale[:, None, None, None]
+        return e / gains[None, :, None, None]
+
+    ops_source = operators if operators is not None else r.operators
     if counts:
-        values = np.clip(np.round(values / f[:, None]), 0, None)
+        base_var = np.zeros(len(gains))
         corrections["port_gain"] = {"applied": True, "how": "kept in the operators (counts are not rescaled)",
                                     "gains": gains.tolist()}
-        sig = None
+        if drift_model.applied:
+            corrections["drift"] = {**drift_model.info, "how": "folded into the operators with the dwell (counts stay counts)"}
     else:
-        values = values / f[:, None] / gains[None, :]
-        ops = ops / gains[None, :, None, None]
-        sig_bg = np.broadcast_to(bg_std / gains, values.shape)
+        base_var = (bg_std / gains) ** 2
         corrections["port_gain"] = {"applied": True, "how": "divided out of readings and operators",
                                     "gains": gains.tolist()}
-        sig = np.array(sig_bg)
-    if normalize:
-        if not complete:
-            raise AnalysisError("normalisation per setting needs ports that measure a complete set (e.g. all four ports)")
-        tot = values.sum(axis=1, keepdims=True)
-        if (tot <= 0).any():
-            raise AnalysisError("a setting has no signal at all; normalisation is impossible")
-        values = values / tot
-        if sig is not None:
-            sig = sig / tot
-        corrections["normalisation"] = {"applied": True, "how": "each setting's readings divided by their sum over the complementary ports"}
-    else:
-        corrections["normalisation"] = {"applied": False}
-    # Flatten to one row per port reading, keyed for combination.
-    flat_ops = ops.reshape(n * n_ports, 4, 4)
-    flat_vals = values.reshape(-1)
-    flat_sig = sig.reshape(-1) if sig is not None else None
-    labels = [labels_by_step.get(int(s), ("",) * n_ports)[j] for s in steps for j in range(n_ports)]
-    keys = []
-    for i, (p, q, rep) in enumerate(zip(r.pass_index[meas], r.point_index[meas], r.repeat_index[meas])):
-        for j in range(n_ports):
-            keys.append((int(p), int(q), int(rep), labels[i * n_ports + j]))
-    analyzes = h.analyzes
-    t_rows = np.repeat(0.5 * (r.t_start + r.t_end)[meas], n_ports)
-    if len(analyzes) == 1:
-        index: dict[tuple, int] = {}
-        group = np.array([index.setdefault(k, len(index)) for k in keys])
-        m = len(index)
-        g_ops = np.zeros((m, 4, 4), dtype=np.complex128)
-        np.add.at(g_ops, group, flat_ops)
-        g_vals = np.bincount(group, weights=flat_vals, minlength=m)
-        g_sig = np.sqrt(np.bincount(group, weights=flat_sig**2, minlength=m)) if flat_sig is not None else None
-        keep = analyzes[0]
-        red = partial_trace(g_ops, keep) / 2.0
-        out_labels = [None] * m
-        for k, gi in index.items():
-            out_labels[gi] = k[3]
-        t_out = np.bincount(group, weights=t_rows, minlength=m) / np.bincount(group, minlength=m)
-        ops_out, vals_out, sig_out, basis = red, g_vals, g_sig, FACTOR_BASIS[keep]
-        rep_keys = [hash((k[0], k[1], k[3])) for k in sorted(index, key=index.get)]
-        corrections["reduction"] = {"applied": True, "how": f"ports and expansion steps summed per projector, then Tr over the other factor / 2, keeping {keep}"}
-    else:
-        ops_out, vals_out, sig_out, basis = flat_ops, flat_vals, flat_sig, BASIS_LABELS
-        out_labels = labels
-        t_out = t_rows
-        rep_keys = [hash((k[0], k[1], k[3])) for k in keys]
-        corrections["reduction"] = {"applied": False}
-    # Where each port reading goes: its row of the fit, its time, port and divisor (drift x gain).
-    flat_rows = group if len(analyzes) == 1 else np.arange(n * n_ports)
-    flat_div = (f[:, None] * (np.ones(n_ports) if counts else gains)[None, :]).reshape(-1)
-    if sig_out is not None:
-        a = float(np.sqrt(np.mean(sig_out**2))) if len(sig_out) else 0.0
-        a, b, how = _spread_model(vals_out, np.array(rep_keys), a)
-        floor = 1e-6 * float(np.max(np.abs(vals_out))) if len(vals_out) else 0.0
-        sig_out = np.sqrt(a * a + (b * np.abs(vals_out)) ** 2 + floor**2)
-        corrections["noise_model"] = {"model": "gaussian", "absolute_w": a, "relative": b, "how": how}
+    corrections["normalisation"] = (
+        {"applied": True, "how": "each setting's readings divided by their sum over the complementary ports"}
+        if normalize else {"applied": False}
+    )
+    fine, per_fit, row_of_reading = accumulate(
+        rows=rows, segment=segments.of_reading[rows], pass_index=np.asarray(r.pass_index)[rows],
+        setting=setting_ids(np.asarray(r.commanded)[rows]), values_of=corrected, operators_of=model_operators,
+        base_variance=base_var, t_start=np.asarray(r.t_start)[rows], t_end=np.asarray(r.t_end)[rows], d=d,
+    )
+    noise: dict[str, Any] = {"model": "poisson"}
+    a = b = 0.0
+    if not counts:
+        a = float(np.sqrt(np.mean(base_var))) if len(base_var) else 0.0
+        a, b, how = _spread_model(fine, a)
+        noise = {"model": "gaussian", "absolute_w": a, "relative": b, "how": how}
         if bg_model.applied and a > 0:
-            # a is the absolute noise of a fitted row; a row sums `members` port readings.
-            members = max(len(flat_rows) / max(len(vals_out), 1), 1.0)
-            _, group_sizes = np.unique(np.array(rep_keys), return_counts=True)
-            repeat_dof = int(np.sum(group_sizes[group_sizes >= 2] - 1)) if "repeated" in how else 0
-            a_port = a / math.sqrt(members) * gains
+            # a is the absolute noise of one corrected reading (gain divided out)
+            a_port = a * gains
+            repeat_dof = int(np.sum(fine.count[fine.count >= 2] - 1)) if "repeated" in how else 0
             if bg_model.times_s.size < 2:
                 bg_model = background_model(bg_model.times_s, bg_model.values, fallback_sigma=a_port)
             else:
                 bg_model = pooled_reading_noise(bg_model, a_port, repeat_dof)
             corrections["background"] = {**background_info(bg_model), "reading_noise_how":
                                          "background spread pooled with the absolute noise of repeated readings"}
+    elif bg_model.applied and bg_model.times_s.size < 2:
+        # One background reading of counts: its Poisson spread.
+        bg_model = background_model(bg_model.times_s, bg_model.values,
+                                    fallback_sigma=np.sqrt(np.clip(bg_model.values[0], 1.0, None)))
+    divisor = (drift[rows][:, None] * gains[None, :]) if not counts else np.ones((len(rows), len(gains)))
+    if not counts:
+        # the rows are means: each reading enters its row divided by the row's count
+        divisor = divisor * per_fit.count[row_of_reading]
+    noise_map = _correction_noise(t_all[rows], divisor, row_of_reading, per_fit, bg_model, drift_model)
+    out = []
+    for seg in np.unique(per_fit.segment):
+        idx = np.flatnonzero(per_fit.segment == seg)
+        part = per_fit.select(idx)
+        seg_noise = dataclasses.replace(
+            noise_map, background_map=None if noise_map.background_map is None else noise_map.background_map[idx],
+            row_times_s=noise_map.row_times_s[idx])
+        out.append(_rows_for_fit(run, part, counts, a, b, dict(corrections, noise_model=dict(noise)),
+                                 segment=int(seg), segments=segments, correction=seg_noise))
+    return out
+
+
+def _correction_noise(t_mid: np.ndarray, divisor: np.ndarray, row_of_reading: np.ndarray, per_fit: Sums,
+                      background: BackgroundModel, drift: DriftModel) -> CorrectionNoise:
+    """The correction errors mapped onto the rows (sequencer.analysis.propagation), built a chunk of
+    readings at a time: the map is a sum over readings, so only its non-zero entries are ever held."""
+    n_ports = row_of_reading.shape[1] if row_of_reading.ndim == 2 else 0
+    n_rows = len(per_fit)
+    row_times = per_fit.t_sum / np.maximum(per_fit.count, 1)
+    total = None
+    last = None
+    for lo in range(0, len(t_mid), CHUNK_ROWS):
+        hi = min(lo + CHUNK_ROWS, len(t_mid))
+        k = hi - lo
+        last = correction_noise(
+            flat_times_s=np.repeat(t_mid[lo:hi], n_ports), flat_ports=np.tile(np.arange(n_ports), k),
+            flat_divisor=divisor[lo:hi].reshape(-1), flat_rows=row_of_reading[lo:hi].reshape(-1), n_rows=n_rows,
+            row_times_s=row_times, background=background, drift=drift,
+        )
+        if last.background_map is not None:
+            total = last.background_map if total is None else total + last.background_map
+    if last is None:
+        return CorrectionNoise(None, np.zeros(0), drift, row_times)
+    return dataclasses.replace(last, background_map=total)
+
+
+def _rows_for_fit(run: RunData, part: Sums, counts: bool, absolute: float, relative: float,
+                  corrections: dict[str, Any], *, segment: int, segments: Segments,
+                  correction: CorrectionNoise) -> Prepared:
+    """The estimator's rows of one segment: one per (setting, port), reduced to one factor if asked."""
+    analyzes = run.header.analyzes
+    k = part.count
+    within_chi2, within_dof = 0.0, 0
+    abs_factor = rel_factor = 1.0 / k
+    if counts:
+        ops, vals, var = part.sum_operator, part.sum_value, None
     else:
-        corrections["noise_model"] = {"model": "poisson"}
-        if bg_model.applied and bg_model.times_s.size < 2:
-            # One background reading of counts: its Poisson spread.
-            bg_model = background_model(bg_model.times_s, bg_model.values,
-                                        fallback_sigma=np.sqrt(np.clip(bg_model.values[0], 1.0, None)))
-    noise = correction_noise(
-        flat_times_s=np.repeat(t_all[meas], n_ports), flat_ports=np.tile(np.arange(n_ports), n),
-        flat_divisor=flat_div, flat_rows=flat_rows, n_rows=len(vals_out), row_times_s=np.asarray(t_out),
-        background=bg_model, drift=drift_model,
-    )
+        mean = part.sum_value / k
+        ops = part.sum_operator / k[:, None, None]
+        floor = 1e-6 * float(np.max(np.abs(mean))) if len(mean) else 0.0
+        # variance of the mean of k readings, each with sigma^2 = a^2 + (b v)^2 + floor^2
+        var = (k * absolute**2 + relative**2 * part.sum_value2 + k * floor**2) / k**2
+        vals = mean
+        reading_var = var * k
+        within_chi2 = float(np.sum(np.clip(part.sum_value2 - k * mean**2, 0.0, None) / reading_var))
+        within_dof = int(np.sum(k - 1))
+    times = part.t_sum / k
+    if len(analyzes) == 1:
+        keep = analyzes[0]
+        joint_vals = vals
+        ops, vals, var, info, comb = reduce_to_factor(ops, vals, var, keep)
+        basis = FACTOR_BASIS[keep]
+        corrections["reduction"] = {"applied": True, "case": info.case, "how": info.describe(keep),
+                                    "projectors": info.clusters, "exact_projectors": info.exact_clusters,
+                                    "worst_residual": info.worst_residual}
+        weight = np.maximum(comb.sum(axis=1), np.finfo(float).tiny)
+        times = (comb @ times) / weight
+        abs_factor = (comb**2) @ (1.0 / k)
+        summed = comb @ joint_vals
+        rel_factor = ((comb**2) @ (joint_vals**2 / k)) / np.maximum(summed**2, np.finfo(float).tiny)
+        if correction.background_map is not None:
+            from scipy import sparse
+
+            correction = dataclasses.replace(correction, background_map=sparse.csr_matrix(comb) @ correction.background_map)
+        correction = dataclasses.replace(correction, row_times_s=times)
+    else:
+        basis = BASIS_LABELS
+        corrections["reduction"] = {"applied": False}
+    sig = None if var is None else np.sqrt(np.maximum(var, np.finfo(float).tiny))
+    label = segments.labels[segment] if segment < len(segments.labels) else segment
     return Prepared(
-        operators=ops_out, values=vals_out, sigma=sig_out, model="poisson" if counts else "gaussian",
+        operators=ops, values=vals, sigma=sig, model="poisson" if counts else "gaussian",
         basis=tuple(basis), analyzes=tuple(analyzes), corrections=corrections,
-        labels=tuple(str(x) for x in out_labels), times=np.asarray(t_out), correction_noise=noise,
+        times=np.asarray(times), readings=int(k.sum()), within_chi2=within_chi2, within_dof=within_dof,
+        segment={"kind": segments.kind, "index": int(label),
+                 "t_start": float(part.t_min.min()), "t_end": float(part.t_max.max())},
+        correction_noise=correction, absolute_factor=np.broadcast_to(abs_factor, np.shape(vals)).copy(),
+        relative_factor=np.broadcast_to(rel_factor, np.shape(vals)).copy(),
     )
 
 
@@ -302,19 +449,47 @@ def _functions(analyzes: tuple[str, ...], target: np.ndarray | None):
 
 
 def _rescale_sigma(prep: Prepared, fit: MleResult) -> tuple[np.ndarray, float]:
-    """Scale the relative part of sigma so that chi^2 per degree of freedom is 1 (no repeats case)."""
+    """Scale sigma so that the per-reading chi^2 per degree of freedom is at least 1.
+
+    The per-reading chi^2 is the rows' chi^2 about the fit plus that of the readings about their
+    row means (Prepared.within_chi2), so aggregation does not change the rule.
+    """
     assert prep.sigma is not None
     pred = np.einsum("ij,nji->n", fit.intensity * fit.rho, prep.operators).real
     resid = prep.values - pred
     d = prep.operators.shape[-1]
-    dof = max(1, len(prep.values) - d * d)
-    chi2 = float(np.sum((resid / prep.sigma) ** 2))
+    dof = max(1, len(prep.values) - d * d + prep.within_dof)
+    chi2 = float(np.sum((resid / prep.sigma) ** 2)) + prep.within_chi2
     scale = math.sqrt(max(chi2 / dof, 1.0))
     return prep.sigma * scale, scale
 
 
+def _power_std(prep: Prepared, fit: MleResult, sigma: np.ndarray | None) -> float:
+    """Std of tr(T) (W or counts/s) by linear propagation through the least-squares estimator."""
+    design = to_vector(prep.operators)
+    if sigma is None:
+        var = np.maximum(fit.intensity * np.real(np.einsum("nij,ji->n", prep.operators, fit.rho)), 1.0)
+    else:
+        var = np.asarray(sigma) ** 2
+    solve, _ = least_squares_operator(design, 1.0 / var)
+    d = prep.operators.shape[-1]
+    trace_row = solve[:d].sum(axis=0)  # the first d coordinates are the diagonal of T
+    return float(np.sqrt(np.sum(trace_row**2 * var)))
+
+
+def _power_units(prep: Prepared) -> str:
+    return "counts/s" if prep.model == "poisson" else "W"
+
+
 def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Generator, n_bootstrap: int = 200) -> Estimate:
-    """Maximum likelihood with the run's noise model, figures of merit, bootstrap uncertainties."""
+    """Maximum likelihood with the run's noise model, figures of merit, bootstrap uncertainties.
+
+    When the rows do not determine the state (a run part way, an incomplete protocol), the
+    Stokes components they do determine are estimated by least squares instead (``partial``).
+    """
+    determined = _determination(prep)
+    if determined.kind != STATE_KIND[tuple(prep.analyzes)]:
+        return _partial_estimate(prep, determined, rng=rng, n_bootstrap=n_bootstrap)
     if prep.model == "poisson":
         if prep.values.sum() <= 0:
             raise AnalysisError("no counts above background in the measure readings")
@@ -326,15 +501,16 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
             raise AnalysisError("no power above background in the measure readings: was the beam on?")
         fit = mle_gaussian(prep.operators, prep.values, prep.sigma)
         nm = prep.corrections.get("noise_model", {})
-        if nm.get("relative", 0.0) > 0:
+        if nm.get("relative", 0.0) > 0 and prep.absolute_factor is not None:
             # The relative part of the spread from the fitted readings rather than the measured
             # ones: weights that follow each reading's own noise bias the fit (a reading that
             # fluctuates up is down-weighted), and the bootstrap, whose sigma is fixed, would not
             # show that bias (iteratively reweighted least squares, common practice, no source).
             pred = np.clip(np.einsum("ij,nji->n", fit.intensity * fit.rho, prep.operators).real, 0.0, None)
             floor = 1e-6 * float(np.max(np.abs(prep.values)))
-            refined = np.sqrt(nm["absolute_w"] ** 2 + (nm["relative"] * pred) ** 2 + floor**2)
-            prep = dataclasses.replace(prep, sigma=refined)
+            refined = np.sqrt(nm["absolute_w"] ** 2 * prep.absolute_factor
+                              + (nm["relative"] * pred) ** 2 * prep.relative_factor + floor**2 * prep.absolute_factor)
+            prep = dataclasses.replace(prep, sigma=np.maximum(refined, np.finfo(float).tiny))
             fit = mle_gaussian(prep.operators, prep.values, prep.sigma)
         sigma, scale = _rescale_sigma(prep, fit)
         if scale > 1.0:
@@ -359,7 +535,7 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
     for i in range(d):
         for j in range(d):
             rho_std[i, j] = figs.pop(f"_re_{i}{j}")[1] + 1j * figs.pop(f"_im_{i}{j}")[1]
-    stokes: dict[str, list[tuple[float, float]]] = {}
+    stokes: dict[str, list[tuple[float, float] | None]] = {}
     for factor in prep.analyzes if len(prep.analyzes) == 1 else ("polarization", "spatial"):
         stokes[factor] = [(1.0, 0.0, (1.0, 1.0))] + [figs.pop(f"stokes_{factor}_{k}") for k in range(1, 4)]
     closest = None
@@ -379,10 +555,101 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
             "log_likelihood": fit.log_likelihood, "certified_gap": fit.certified_gap,
             "iterations": fit.iterations, "converged": bool(fit.converged), "intensity": fit.intensity,
             "bootstrap_resamples": boot.n_resamples, "bootstrap_converged": boot.n_converged,
-            "readings": int(len(prep.values)),
+            "readings": int(prep.readings), "distinct_operators": int(len(prep.values)),
         },
         corrections=corrections,
         linear_rho=lin.rho,
+        power=_with_interval(float(fit.intensity), _power_std(prep, fit, sigma), 0.0, np.inf),
+        power_units=_power_units(prep),
+        determined=determined,
+        segment=dict(prep.segment),
+    )
+
+
+def _factors(prep: Prepared) -> tuple[str, ...]:
+    """The factors of the rows' space: the analysed one (2x2 rows) or both (4x4)."""
+    return tuple(prep.analyzes) if prep.operators.shape[-1] == 2 else ("polarization", "spatial")
+
+
+def _determination(prep: Prepared) -> Determination:
+    """What the rows determine (sequencer.optics.determination, shared with validate and dry-run)."""
+    return determination(prep.operators, _factors(prep), prep.analyzes)
+
+
+def _observables(prep: Prepared) -> dict[str, list[np.ndarray]]:
+    """Per factor, the observables [s0, s1, s2, s3] of its Stokes parameters in the rows' space."""
+    if prep.operators.shape[-1] == 2:
+        return {prep.analyzes[0]: [PAULI[k] for k in range(4)]}
+    eye = PAULI[0]
+    return {"polarization": [np.kron(PAULI[k], eye) for k in range(4)],
+            "spatial": [np.kron(eye, PAULI[k]) for k in range(4)]}
+
+
+def _partial_estimate(prep: Prepared, determined: Determination, *, rng: np.random.Generator,
+                      n_bootstrap: int) -> Estimate:
+    """The Stokes components the rows determine, by weighted least squares (minimum-norm solution:
+    every determined functional has the same value on all solutions), std from replicate readings."""
+    d = prep.operators.shape[-1]
+    design = to_vector(prep.operators)
+    v = np.asarray(prep.values, dtype=float)
+    noise = "Poisson counts"
+    if prep.model == "poisson":
+        var = np.maximum(v, 1.0)
+        solve, rank = least_squares_operator(design, 1.0 / var)
+        x = solve @ v
+        replicas = rng.poisson(np.maximum(v, 0.0), size=(n_bootstrap, v.size)).astype(float)
+    else:
+        var = np.asarray(prep.sigma) ** 2
+        solve, rank = least_squares_operator(design, 1.0 / var)
+        x = solve @ v
+        # the same residual rule as the full fit: per-reading chi^2 per degree of freedom at least 1
+        dof = len(v) - rank + prep.within_dof
+        chi2 = float(np.sum((v - design @ x) ** 2 / var)) + prep.within_chi2
+        if dof > 0:
+            var = var * max(chi2 / dof, 1.0)
+            noise = f"Gaussian, rescaled by the residuals ({dof} degrees of freedom)"
+        else:
+            var = np.maximum(var, (UNMEASURED_RELATIVE_SPREAD * v) ** 2 / max(prep.readings / len(v), 1.0))
+            noise = (f"not measured yet (no repeats, no redundant readings): {UNMEASURED_RELATIVE_SPREAD:.0%} "
+                     "a reading assumed")
+        replicas = v[None, :] + np.sqrt(var)[None, :] * rng.standard_normal((n_bootstrap, v.size))
+    xs = replicas @ solve.T
+    stokes: dict[str, list[tuple[float, float] | None]] = {}
+    figures: dict[str, tuple[float, float]] = {}
+    power = None
+    for factor, obs in _observables(prep).items():
+        flags = determined.stokes.get(factor, (False,) * 4)
+        fixed = tuple(k for k in (1, 2, 3) if flags[0] and flags[k])
+        if not fixed:
+            continue
+        coords = to_vector(np.asarray(obs))
+        s0, s0s = coords[0] @ x, xs @ coords[0]
+        entry: list[tuple | None] = [(1.0, 0.0, (1.0, 1.0))]
+        for k in (1, 2, 3):
+            if k in fixed:
+                reps = (xs @ coords[k]) / s0s
+                entry.append((float(coords[k] @ x / s0), float(np.std(reps, ddof=1)),
+                              _percentile_interval(reps, -1.0, 1.0)))
+            else:
+                entry.append(None)
+        stokes[factor] = entry
+        if len(fixed) == 3:
+            dop = np.sqrt(sum((xs @ coords[k] / s0s) ** 2 for k in (1, 2, 3)))
+            figures[f"dop_{factor}"] = (float(np.sqrt(sum(entry[k][0] ** 2 for k in (1, 2, 3)))),
+                                        float(np.std(dop, ddof=1)), _percentile_interval(dop, 0.0, 1.0))
+        if power is None:
+            power = (float(s0), float(np.std(s0s, ddof=1)), _percentile_interval(s0s, 0.0, np.inf))
+    rank_info = f"{determined.rank} of {determined.full_rank} parameters determined"
+    return Estimate(
+        rho=None, rho_std=None, basis=prep.basis, analyzes=prep.analyzes, figures=figures, stokes=stokes,
+        closest_mode=None,
+        estimator={
+            "method": "weighted least squares on the determined components (the state is not determined)",
+            "model": prep.model, "determined": rank_info, "noise": noise, "bootstrap_resamples": int(n_bootstrap),
+            "readings": int(prep.readings), "distinct_operators": int(len(v)),
+        },
+        corrections=dict(prep.corrections), power=power, power_units=_power_units(prep),
+        determined=determined, partial=True, segment=dict(prep.segment),
     )
 
 
@@ -394,43 +661,124 @@ def target_of(run: RunData) -> np.ndarray | None:
     return None if h.factor_target_state is None else np.asarray(h.factor_target_state)
 
 
+def _vs(fig: tuple | None) -> dict[str, Any] | None:
+    """{value, std, interval} of a figure (value, std, (lo, hi))."""
+    if fig is None:
+        return None
+    out: dict[str, Any] = {"value": float(fig[0]), "std": float(fig[1])}
+    if len(fig) > 2 and fig[2] is not None:
+        out["interval"] = [float(fig[2][0]), float(fig[2][1])]
+    return out
+
+
+def _with_interval(value: float, std: float, lo: float, hi: float) -> tuple[float, float, tuple[float, float]]:
+    """(value, std, interval): value +- 1.96 std cut to the physical range [lo, hi] (normal
+    approximation, for quantities estimated linearly)."""
+    return value, std, (float(max(lo, value - 1.96 * std)), float(min(hi, value + 1.96 * std)))
+
+
+def _percentile_interval(samples: np.ndarray, lo: float, hi: float) -> tuple[float, float]:
+    """The 2.5% and 97.5% points of replicate values, inside [lo, hi]."""
+    a, b = np.percentile(samples, [2.5, 97.5])
+    return float(np.clip(a, lo, hi)), float(np.clip(b, lo, hi))
+
+
+def run_section(run: RunData) -> dict[str, Any]:
+    """The ``run`` section of the document: status and progress."""
+    return {
+        "status": run.status,
+        "steps_done": int(run.steps_done),
+        "steps_total": int(run.header.steps_total),
+        "message": run.message,
+        "protocol": run.header.protocol_name,
+        "bench": run.header.bench_name,
+    }
+
+
+def empty_document(run: RunData, reason: str) -> dict[str, Any]:
+    """The document of a run that has nothing to estimate yet (no measure readings, no signal)."""
+    basis = FACTOR_BASIS[run.header.analyzes[0]] if len(run.header.analyzes) == 1 else BASIS_LABELS
+    return {"basis": list(basis), "determines": "partial", "missing": [reason], "run": run_section(run)}
+
+
 def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
     """The fixed ``analyze --json`` document (DESIGN.md), plus extras."""
-    def vs(fig: tuple) -> dict[str, Any]:
-        out = {"value": float(fig[0]), "std": float(fig[1])}
-        if len(fig) > 2:
-            out["interval"] = [float(fig[2][0]), float(fig[2][1])]
-        return out
-
-    out: dict[str, Any] = {
-        "basis": list(est.basis),
-        "density_matrix": {"real": est.rho.real.tolist(), "imag": est.rho.imag.tolist()},
-        "density_matrix_std": {"real": est.rho_std.real.tolist(), "imag": est.rho_std.imag.tolist()},
-        "purity": vs(est.figures["purity"]),
-        "linear_entropy": vs(est.figures["linear_entropy"]),
-        "stokes": {f: [vs(x) for x in s] for f, s in est.stokes.items()},
-        "degree_of_polarization": {f: vs(est.figures[f"dop_{f}"]) for f in est.stokes},
-        "run": {
-            "status": run.status,
-            "steps_done": int(run.steps_done),
-            "steps_total": int(run.header.steps_total),
-            "message": run.message,
-            "protocol": run.header.protocol_name,
-            "bench": run.header.bench_name,
-        },
-        "estimator": est.estimator,
-        "corrections": est.corrections,
-    }
+    out: dict[str, Any] = {"basis": list(est.basis)}
+    if est.rho is not None:
+        out["density_matrix"] = {"real": est.rho.real.tolist(), "imag": est.rho.imag.tolist()}
+        out["density_matrix_std"] = {"real": est.rho_std.real.tolist(), "imag": est.rho_std.imag.tolist()}
+        out["purity"] = _vs(est.figures["purity"])
+        out["linear_entropy"] = _vs(est.figures["linear_entropy"])
+    out["stokes"] = {f: [_vs(x) for x in s] for f, s in est.stokes.items()}
+    out["degree_of_polarization"] = {f: _vs(est.figures[f"dop_{f}"]) for f in est.stokes if f"dop_{f}" in est.figures}
+    if est.power is not None:
+        out["power"] = {**_vs(est.power), "units": est.power_units}
+    if est.linear_rho is not None:
+        out["linear_inversion"] = {
+            "real": est.linear_rho.real.tolist(), "imag": est.linear_rho.imag.tolist(),
+            "min_eigenvalue": float(np.linalg.eigvalsh(est.linear_rho).min()),
+        }
+    determined = est.determined
+    out["determines"] = determined.kind if determined is not None else "partial"
+    out["missing"] = list(determined.missing) if determined is not None else []
+    if est.partial and determined is not None:
+        out["missing"].append(
+            f"the {'joint 4x4' if len(est.analyzes) == 2 else '2x2 ' + est.analyzes[0]} state: the readings "
+            f"fix {determined.rank} of its {determined.full_rank} real parameters")
+    out["run"] = run_section(run)
+    out["estimator"] = est.estimator
+    out["corrections"] = est.corrections
     if "concurrence" in est.figures:
-        out["concurrence"] = vs(est.figures["concurrence"])
-        out["fully_entangled_fraction"] = vs(est.figures["fully_entangled_fraction"])
+        out["concurrence"] = _vs(est.figures["concurrence"])
+        out["fully_entangled_fraction"] = _vs(est.figures["fully_entangled_fraction"])
     if "fidelity" in est.figures:
-        out["fidelity"] = vs(est.figures["fidelity"])
+        out["fidelity"] = _vs(est.figures["fidelity"])
         out["target"] = run.header.target_label
     if est.closest_mode is not None:
         name, *fig = est.closest_mode
-        out["closest_vector_mode"] = {"name": name, "fidelity": vs(tuple(fig))}
+        out["closest_vector_mode"] = {"name": name, "fidelity": _vs(tuple(fig))}
         out["vector_mode_fidelities"] = {
-            k[len("fidelity_to_"):]: vs(v) for k, v in est.figures.items() if k.startswith("fidelity_to_")
+            k[len("fidelity_to_"):]: _vs(v) for k, v in est.figures.items() if k.startswith("fidelity_to_")
         }
+    if est.segment.get("kind") in ("pass", "window"):
+        out[est.segment["kind"]] = est.segment["index"]
+        out["t_start"] = est.segment["t_start"]
+        out["t_end"] = est.segment["t_end"]
     return out
+
+
+def _document(run: RunData, prep: Prepared, *, target: np.ndarray | None, rng: np.random.Generator,
+              n_bootstrap: int) -> tuple[dict[str, Any], Estimate | None]:
+    """The document of one Prepared; an estimation that cannot proceed says why in ``missing``."""
+    try:
+        est = estimate(prep, target=target, rng=rng, n_bootstrap=n_bootstrap)
+    except (AnalysisError, EstimationError) as exc:
+        doc = empty_document(run, str(exc))
+        doc["corrections"] = prep.corrections
+        if prep.segment.get("kind") in ("pass", "window"):
+            doc.update({prep.segment["kind"]: prep.segment["index"], "t_start": prep.segment["t_start"],
+                        "t_end": prep.segment["t_end"]})
+        return doc, None
+    return result_json(run, est), est
+
+
+def analyse_run(
+    run: RunData, *, rng: np.random.Generator, n_bootstrap: int = 200, normalize: bool = False,
+    operators: np.ndarray | None = None, segments: Segments | None = None,
+) -> tuple[dict[str, Any], Estimate | None, list[tuple[dict[str, Any], Estimate | None]]]:
+    """The whole-run document (always one, whatever the state of the run) and, with ``segments``,
+    one document per segment (pass or time window) that holds measure readings.
+
+    Returns (document, its Estimate or None, [(segment document, Estimate or None), ...]).
+    """
+    target = target_of(run)
+    whole = prepare_segments(run, whole_run(len(run.readings)), normalize=normalize, operators=operators)
+    if whole:
+        doc, est = _document(run, whole[0], target=target, rng=rng, n_bootstrap=n_bootstrap)
+    else:
+        doc, est = empty_document(run, "no measure readings yet: the first analyzer setting has not been read"), None
+    parts: list[tuple[dict[str, Any], Estimate | None]] = []
+    if segments is not None:
+        for prep in prepare_segments(run, segments, normalize=normalize, operators=operators):
+            parts.append(_document(run, prep, target=target, rng=rng, n_bootstrap=n_bootstrap))
+    return doc, est, parts

@@ -72,8 +72,14 @@ def parse_state(text: str, what: str):
         raise UsageError(f"{expected}; got {text!r} ({exc})") from None
 
 
-def _fmt_vs(value: float, std: float | None) -> str:
-    return f"{value:.4f}" if std is None else f"{value:.4f} ± {std:.4f}"
+def _fmt_vs(figure: dict) -> str:
+    text = f"{figure['value']:.4f}"
+    if figure.get("std") is not None:
+        text += f" ± {figure['std']:.2g}"
+    if figure.get("interval"):
+        lo, hi = figure["interval"]
+        text += f"  (95% {lo:.4f} to {hi:.4f})"
+    return text
 
 
 def run(args: argparse.Namespace) -> int:
@@ -103,7 +109,7 @@ def run(args: argparse.Namespace) -> int:
     adv = advise(rho, target, converter_axis_deg=args.converter_axis, tol=args.tolerance,
                  rng=np.random.default_rng(args.seed))
 
-    std_fidelity = std_best = std_now = None
+    std_fidelity = std_best = std_now = (None, None)
     if estimates is not None:
         std_now = estimates(np.outer(target, target.conj()))
         std_fidelity = estimates(pulled_back_target(target, adv.unitary))
@@ -119,10 +125,10 @@ def run(args: argparse.Namespace) -> int:
             "concurrence": adv.target_concurrence,
         },
         "settings": adv.settings.as_json(),
-        "fidelity": {"value": adv.fidelity, "std": std_fidelity},
-        "fidelity_without_correction": {"value": adv.fidelity_now, "std": std_now},
+        "fidelity": {"value": adv.fidelity, "std": std_fidelity[0], "interval": std_fidelity[1]},
+        "fidelity_without_correction": {"value": adv.fidelity_now, "std": std_now[0], "interval": std_now[1]},
         "best_local_fidelity": {
-            "value": adv.best_local.value, "std": std_best,
+            "value": adv.best_local.value, "std": std_best[0], "interval": std_best[1],
             "upper_bound": adv.best_local.upper_bound, "method": adv.best_local.method,
         },
         "certificate": {
@@ -168,8 +174,8 @@ def _from_analysis_json(path: str):
 
 
 def _measured(args: argparse.Namespace):
-    """The maximum-likelihood 4x4 state of the run, and a function giving the bootstrap std of the
-    fidelity to any (pulled-back) target density matrix."""
+    """The maximum-likelihood 4x4 state of the run, and a function giving the bootstrap std and 95%
+    interval of the fidelity to any (pulled-back) target density matrix."""
     import numpy as np
 
     from lightloom.sequencer.analysis.pipeline import AnalysisError, estimate, prepare
@@ -188,10 +194,12 @@ def _measured(args: argparse.Namespace):
     except AnalysisError as exc:
         raise UsageError(f"{args.source}: {exc}") from None
 
-    def std_of_fidelity_to(target_rho) -> float:
+    def std_of_fidelity_to(target_rho) -> tuple[float, list[float] | None]:
         # Same seed for every call: the same replicates, so the stds are comparable.
         est = estimate(prep, target=target_rho, rng=np.random.default_rng(args.seed), n_bootstrap=args.bootstrap)
-        return float(est.figures["fidelity"][1])
+        fig = est.figures["fidelity"]
+        interval = [float(fig[2][0]), float(fig[2][1])] if len(fig) > 2 else None
+        return float(fig[1]), interval
 
     return first.rho, std_of_fidelity_to
 
@@ -214,14 +222,15 @@ def _print_text(doc: dict) -> None:
     table.add_row("image rotator", "out" if s["image_rotator"] == "out" else f"in, {s['image_rotator_deg']:.2f} deg")
     console.print(table)
     f, b, n = doc["fidelity"], doc["best_local_fidelity"], doc["fidelity_without_correction"]
-    console.print(f"  fidelity after these settings   {_fmt_vs(f['value'], f['std'])}", highlight=False)
-    console.print(f"  best with any local transform   {_fmt_vs(b['value'], b['std'])}"
-                  f"   (certified bound {b['upper_bound']:.4f})", highlight=False)
-    console.print(f"  fidelity as measured            {_fmt_vs(n['value'], n['std'])}", highlight=False)
+    console.print(f"  fidelity after these settings   {_fmt_vs(f)}", highlight=False)
+    console.print(f"  best with any local transform   {_fmt_vs(b)}", highlight=False)
+    console.print(f"  fidelity as measured            {_fmt_vs(n)}", highlight=False)
     if doc["remaining_error"] == "source":
-        console.print("  these settings reach the best any local transformation can: what is left is in the source",
-                      highlight=False)
+        console.print("  these settings reach the best any local transformation can:", highlight=False)
+        console.print("  what is left is in the source", highlight=False)
     else:
-        console.print("  the elements on hand cannot reach the local optimum: a more general spatial transformation "
-                      "would gain the difference", highlight=False)
-    console.print(f"  search: {doc['certificate']['how']} (gap {doc['certificate']['gap']:.1e})", highlight=False)
+        console.print("  the elements on hand cannot reach the local optimum: a more general", highlight=False)
+        console.print("  spatial transformation would gain the difference", highlight=False)
+    c = doc["certificate"]
+    console.print(f"  certified: at most {c['upper_bound']:.4f} reachable (gap {c['gap']:.1e})", highlight=False)
+    console.print(f"  how: {c['how']}", highlight=False)

@@ -1,26 +1,36 @@
-"""``lightloom analyze FILE.h5 [--json] [--plots DIR]``: states, figures of merit and error bars."""
+"""``lightloom analyze FILE.h5 [FILE.h5 ...] [--json | --csv] [--plots DIR] [--per-pass | --window DURATION]``."""
 
 from __future__ import annotations
 
 import argparse
 import json
+import sys
+from typing import Any
 
 import numpy as np
-from rich.console import Console
 
 
 def add_parser(sub) -> None:
     p = sub.add_parser(
-        "analyze", help="reconstruct the state of a run (complete, interrupted or still running)",
+        "analyze",
+        help="reconstruct the state of a run (complete, interrupted or still running); several runs: one summary table",
         description=(
             "Reconstruct the state measured in a run file (finished, stopped or still running) with error"
             " bars: density matrix, purity, concurrence, Stokes parameters and fidelity to the protocol's"
-            " target, as tables, as JSON (--json) or as figures (--plots DIR)."
+            " target, as tables, as JSON (--json) or as figures (--plots DIR); what the readings do not"
+            " determine yet is listed as missing. Each pass or time window on its own with --per-pass or"
+            " --window; several files give one summary table (--json, --csv)."
         ),
     )
-    p.add_argument("file", help="run file (FILE.h5) or its journal")
-    p.add_argument("--json", action="store_true", help="print the result as JSON")
+    p.add_argument("files", nargs="+", metavar="FILE", help="run file (FILE.h5) or its journal; several for a summary table")
+    out = p.add_mutually_exclusive_group()
+    out.add_argument("--json", action="store_true", help="print the result as JSON")
+    out.add_argument("--csv", action="store_true", help="print one summary row per run as CSV")
     p.add_argument("--plots", metavar="DIR", help="write PNG figures into DIR")
+    split = p.add_mutually_exclusive_group()
+    split.add_argument("--per-pass", action="store_true", help="also fit each pass of the protocol's sweep on its own")
+    split.add_argument("--window", metavar="DURATION",
+                       help="also fit each time window on its own, e.g. 900s, 30min, 2h (for runs without passes)")
     p.add_argument("--bench", help="recompute the operators from the read-back positions with this bench's calibration (e.g. a calibrate overlay)")
     p.add_argument("--normalize", action="store_true", help="normalise each setting over its complementary ports (cancels drift without a reference meter)")
     p.add_argument("--bootstrap", type=int, default=200, metavar="N", help="bootstrap resamples for the error bars (default 200)")
@@ -39,48 +49,81 @@ def add_parser(sub) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from lightloom.sequencer.analysis.pipeline import AnalysisError, estimate, prepare, result_json, target_of
-    from lightloom.sequencer.analysis.estimate import EstimationError
+    from lightloom.sequencer.analysis.summary import parse_duration_s
     from lightloom.sequencer.errors import UsageError
-    from lightloom.sequencer.storage.store import load_run
 
     if args.bootstrap < 2:
         raise UsageError("--bootstrap needs at least 2 resamples")
-    data = load_run(args.file)
-    # --- scans and stability (sequencer.analysis.scans / .stability) ---
+    window_s = None
+    if args.window is not None:
+        try:
+            window_s = parse_duration_s(args.window)
+        except ValueError as exc:
+            raise UsageError(f"--window: {exc}") from None
+    if len(args.files) > 1:
+        if args.per_pass or window_s is not None or args.plots or args.bench or args.field_maps or args.stability:
+            raise UsageError("--per-pass, --window, --plots, --bench, --field-maps and --stability take one run file; "
+                             "give one file, or drop them for the summary table")
+        return _many(args)
+    return _one(args, args.files[0], window_s)
+
+
+def _analyse(args: argparse.Namespace, path: str, window_s: float | None, data=None):
+    """(RunData, document, whole-run Estimate or None, [(segment document, Estimate or None)])."""
+    from lightloom.sequencer.analysis.pipeline import AnalysisError, analyse_run, by_pass, by_window
+    from lightloom.sequencer.errors import UsageError
+    from lightloom.sequencer.storage.store import load_run
+
+    if data is None:
+        data = load_run(path)
     from lightloom.sequencer.analysis.scans import scanned_element
 
     element = scanned_element(data)
     if element is not None:
-        return _scan(args, data, element)
-    stability = _stability(args, data)
-    # --- state estimate ---
-    operators = None
-    if args.bench:
-        operators = _recomputed_operators(data, args.bench)
+        doc, _ = _scan_document(args, path, data, element)
+        return data, doc, None, []
+    operators = _recomputed_operators(data, args.bench) if getattr(args, "bench", None) else None
+    segments = None
+    if getattr(args, "per_pass", False):
+        segments = by_pass(np.asarray(data.readings.pass_index))
+    elif window_s is not None:
+        segments = by_window(0.5 * (np.asarray(data.readings.t_start) + np.asarray(data.readings.t_end)), window_s)
     try:
-        prep = prepare(data, normalize=args.normalize, operators=operators)
-        est = estimate(prep, target=target_of(data), rng=np.random.default_rng(args.seed), n_bootstrap=args.bootstrap)
-    except (AnalysisError, EstimationError) as exc:
-        if stability is None:
-            if isinstance(exc, AnalysisError):
-                raise UsageError(f"{args.file}: {exc}") from None
-            raise
-        est = None
-        doc = {"run": _run_section(data), "state": f"not determined: {exc}"}
-    if est is not None:
-        doc = result_json(data, est)
-        if args.bench:
-            doc["corrections"]["operators"] = f"recomputed from read-back positions with the calibration of {args.bench}"
-        if args.field_maps:
-            if est.rho.shape != (4, 4):
-                raise UsageError(f"{args.file}: --field-maps needs a joint (polarization and spatial) run")
-            from lightloom.sequencer.analysis.portrait import portrait, portrait_json
+        doc, est, parts = analyse_run(
+            data, rng=np.random.default_rng(args.seed), n_bootstrap=args.bootstrap,
+            normalize=args.normalize, operators=operators, segments=segments,
+        )
+    except AnalysisError as exc:
+        raise UsageError(f"{path}: {exc}") from None
+    if args.bench:
+        doc.setdefault("corrections", {})["operators"] = f"recomputed from read-back positions with the calibration of {args.bench}"
+    if getattr(args, "field_maps", False):
+        if est is None or est.rho is None or est.rho.shape != (4, 4):
+            raise UsageError(f"{path}: --field-maps needs a joint (polarization and spatial) state, determined by the readings")
+        from lightloom.sequencer.analysis.portrait import portrait, portrait_json
 
-            doc["field_maps"] = portrait_json(portrait(est.rho))
+        doc["field_maps"] = portrait_json(portrait(est.rho))
+    if doc.get("determines") == "partial":
+        doc["state"] = "not determined: " + "; ".join(doc.get("missing", []))
+    if segments is not None:
+        doc["passes"] = [d for d, _ in parts]
+    return data, doc, est, parts
+
+
+def _one(args: argparse.Namespace, path: str, window_s: float | None) -> int:
+    from lightloom.sequencer.analysis.scans import scanned_element
+    from lightloom.sequencer.storage.store import load_run
+
+    data = load_run(path)
+    element = scanned_element(data)
+    if element is not None:
+        return _scan(args, path, data, element)
+    data, doc, est, parts = _analyse(args, path, window_s, data)
+    stability = _stability(args, data)
     from lightloom.sequencer import imaging_report
+    from lightloom.sequencer.errors import UsageError
 
-    imaging = imaging_report.imaging_result(args.file, data, rng=np.random.default_rng(args.seed),
+    imaging = imaging_report.imaging_result(path, data, rng=np.random.default_rng(args.seed),
                                             replicates=args.bootstrap)
     if imaging is not None:
         imaging_report.add_to_document(doc, imaging)
@@ -90,15 +133,15 @@ def run(args: argparse.Namespace) -> int:
         if args.series_window < 1:
             raise UsageError("--series-window needs at least 1 pass")
         doc["imaging_series"] = imaging_report.imaging_series(
-            args.file, address=args.dask, maps_out=args.series_maps, passes_per_window=args.series_window)
+            path, address=args.dask, maps_out=args.series_maps, passes_per_window=args.series_window)
     if (args.maps or args.series or args.series_maps) and imaging is None:
-        raise UsageError(f"{args.file}: --maps and --series need an imaging run (a camera behind the analyzer); this run has no frames")
+        raise UsageError(f"{path}: --maps and --series need an imaging run (a camera behind the analyzer); this run has no frames")
     if stability is not None:
         from lightloom.sequencer.analysis.stability import stability_json
 
         doc["stability"] = stability_json(stability)
     if args.plots:
-        doc["plots"] = [str(p) for p in _plots(data, est, args.plots)] if est is not None else []
+        doc["plots"] = [str(p) for p in write_figures(data, doc, est, args.plots)]
         if stability is not None:
             doc["plots"].append(str(_stability_plot(data, stability, args.plots)))
         if imaging is not None:
@@ -110,14 +153,17 @@ def run(args: argparse.Namespace) -> int:
                                                   title=f"{data.header.protocol_name}: polarization map")))
     if args.json:
         print(json.dumps(doc, indent=1))
+    elif args.csv:
+        _print_csv([(path, doc)])
     else:
-        from lightloom.sequencer.present.report import print_report
+        from rich.console import Console
+
+        from lightloom.sequencer.present.report import print_passes, print_report
 
         console = Console()
-        if est is not None:
-            print_report(console, doc)
-        else:
-            console.print(f"{data.header.protocol_name}: {doc['state']}", highlight=False, markup=False)
+        print_report(console, doc)
+        if "passes" in doc:
+            print_passes(console, doc["passes"])
         if stability is not None:
             from lightloom.sequencer.present.report import print_stability
 
@@ -125,6 +171,42 @@ def run(args: argparse.Namespace) -> int:
         for p in doc.get("plots", []):
             console.print(f"  figure: {p}", highlight=False)
     return 0
+
+
+def _many(args: argparse.Namespace) -> int:
+    from lightloom.sequencer.errors import LightloomError
+
+    results: list[tuple[str, dict[str, Any]]] = []
+    unreadable = 0
+    for path in args.files:
+        try:
+            _, doc, _, _ = _analyse(args, path, None)
+        except LightloomError as exc:
+            unreadable += 1
+            doc = {"error": str(exc)}
+        results.append((path, doc))
+    if args.json:
+        print(json.dumps({"runs": [{"file": f, **d} for f, d in results]}, indent=1))
+    elif args.csv:
+        _print_csv(results)
+    else:
+        from rich.console import Console
+
+        from lightloom.sequencer.present.report import print_summary
+
+        print_summary(Console(), results)
+    return 2 if unreadable else 0
+
+
+def _print_csv(results: list[tuple[str, dict[str, Any]]]) -> None:
+    import csv
+
+    from lightloom.sequencer.analysis.summary import SUMMARY_COLUMNS, summary_row
+
+    writer = csv.DictWriter(sys.stdout, fieldnames=list(SUMMARY_COLUMNS), lineterminator="\n")
+    writer.writeheader()
+    for path, doc in results:
+        writer.writerow({k: ("" if v is None else v) for k, v in summary_row(path, doc).items()})
 
 
 def _recomputed_operators(data, bench_spec: str) -> np.ndarray:
@@ -143,39 +225,38 @@ def _recomputed_operators(data, bench_spec: str) -> np.ndarray:
     return port_operators(table.analyzer, table.ports, data.readings.readback)
 
 
-def _plots(data, est, directory: str) -> list:
+def write_figures(data, doc: dict[str, Any], est, directory: str) -> list:
+    """The PNG figures of an analysed run into ``directory``; returns their paths."""
     from pathlib import Path
 
     from lightloom.sequencer.errors import UsageError
 
     try:
-        from lightloom.sequencer.present import plots
+        from lightloom.sequencer.present import plots, timeline
     except ImportError as exc:  # plots extra missing
         raise UsageError(f"plots need matplotlib: pip install 'lightloom[plots]' ({exc})") from None
     out = Path(directory)
     written = []
     try:
-        written.append(plots.plot_density_matrix(est.rho, list(est.basis), out / "density_matrix.png",
-                                                 title=f"{data.header.protocol_name}: reconstructed state"))
-        points = {f: np.array([v for v, *_ in s]) for f, s in est.stokes.items()}
-        unc = {f: float(np.sqrt(sum(sd**2 for _, sd, *_ in s[1:]))) for f, s in est.stokes.items()}
-        written.append(plots.plot_poincare(points, out / "poincare.png", title="reduced states", uncertainties=unc))
-        if est.rho.shape == (4, 4):
-            from lightloom.sequencer.analysis.portrait import portrait
-            from lightloom.sequencer.present.portrait import plot_portrait
+        if est is not None and est.rho is not None:
+            written.append(plots.plot_density_matrix(est.rho, list(est.basis), out / "density_matrix.png",
+                                                     title=f"{data.header.protocol_name}: reconstructed state"))
+            points = {f: np.array([v for v, *_ in s]) for f, s in est.stokes.items()}
+            unc = {f: float(np.sqrt(sum(sd**2 for _, sd, *_ in s[1:]))) for f, s in est.stokes.items()}
+            written.append(plots.plot_poincare(points, out / "poincare.png", title="reduced states", uncertainties=unc))
+            if est.rho.shape == (4, 4):
+                from lightloom.sequencer.analysis.portrait import portrait
+                from lightloom.sequencer.present.portrait import plot_portrait
 
-            written.append(plot_portrait(portrait(est.rho), out / "portrait.png",
-                                         title=f"{data.header.protocol_name}: polarization portrait"))
-        r = data.readings
-        lit = ~r.of_kind("background")
-        ref = r.reference_w[lit]
-        t = 0.5 * (r.t_start + r.t_end)[lit]
-        if np.isfinite(ref).any():
-            flagged = (r.flags[lit] & 1) != 0
-            t0 = float(t.min()) if len(t) else 0.0
-            events = [(e.t - t0, e.kind) for e in data.events if e.kind in ("beam_lost", "beam_back", "drift", "fault", "interrupted", "resume")]
-            written.append(plots.plot_reference_trace(t - t0, ref, out / "reference.png",
-                                                      title="reference (pick-off) power", flagged=flagged, events=events))
+                written.append(plot_portrait(portrait(est.rho), out / "portrait.png",
+                                             title=f"{data.header.protocol_name}: polarization portrait"))
+        series = timeline.reference_series(data)
+        if series.lines:
+            written.append(timeline.plot_reference_series(series, out / "reference.png",
+                                                          title="source power over the run"))
+        if doc.get("passes"):
+            written.append(timeline.plot_results_over_time(doc["passes"], out / "over_time.png",
+                                                           title=f"{data.header.protocol_name}: results over time"))
     except getattr(plots, "PlotsUnavailable", ImportError) as exc:
         raise UsageError(str(exc)) from None
     return written
@@ -184,16 +265,9 @@ def _plots(data, est, directory: str) -> list:
 # ---------------------------------------------------------------- scans and stability
 
 
-def _run_section(data) -> dict:
-    return {
-        "status": data.status, "steps_done": int(data.steps_done), "steps_total": int(data.header.steps_total),
-        "message": data.message, "protocol": data.header.protocol_name, "bench": data.header.bench_name,
-    }
-
-
 def _stability(args: argparse.Namespace, data):
     """Stability series when asked (--stability) or for a run of the stability protocol, else None."""
-    if not (args.stability or data.header.protocol_name == "stability"):
+    if not (getattr(args, "stability", False) or data.header.protocol_name == "stability"):
         return None
     from lightloom.sequencer.analysis.stability import stability_of_run
 
@@ -214,26 +288,46 @@ def _stability_plot(data, stability, directory: str):
         raise UsageError(str(exc)) from None
 
 
-def _scan(args: argparse.Namespace, data, element: str) -> int:
-    """A scan run: readings per port against the scanned angle, the calibration model fitted."""
+def _scan_document(args: argparse.Namespace, path: str, data, element: str):
+    """The document of a scan run (readings per port against the scanned angle, the calibration
+    model fitted) and the scan report (None while there is nothing to fit)."""
     from pathlib import Path
 
+    from lightloom.sequencer.analysis.pipeline import run_section
     from lightloom.sequencer.analysis.scans import run_scan_report, scan_json
-    from lightloom.sequencer.errors import InputError, UsageError
+    from lightloom.sequencer.errors import InputError
 
     bench = None
-    if args.bench:
+    if getattr(args, "bench", None):
         from lightloom.sequencer.lang.bench import load_bench
 
         bench = load_bench(args.bench)
-    doc = {"run": _run_section(data), "determines": "scan"}
+    doc = {"run": run_section(data), "determines": "scan"}
+    # A scan whose operators determine a state (a rotating quarter-wave plate in front of a
+    # polarizer is a polarimeter) also gets the state, its figures and Stokes parameters.
+    from lightloom.sequencer.analysis.pipeline import analyse_run
+
+    state, est, _ = analyse_run(data, rng=np.random.default_rng(getattr(args, "seed", 0)),
+                                n_bootstrap=getattr(args, "bootstrap", 200), normalize=getattr(args, "normalize", False))
+    if est is not None and est.rho is not None:
+        doc = {**state, **doc, "state_determined": state["determines"]}
     try:
-        report = run_scan_report(data, element, Path(args.file).stem, bench)
+        report = run_scan_report(data, element, Path(path).stem, bench)
         doc["scan"] = scan_json(report)
     except InputError as exc:  # nothing to fit yet (a run just started): say so, exit 0
         report = None
         doc["scan"] = None
         doc["missing"] = exc.message
+    return doc, report
+
+
+def _scan(args: argparse.Namespace, path: str, data, element: str) -> int:
+    """A scan run: readings per port against the scanned angle, the calibration model fitted."""
+    from pathlib import Path
+
+    from lightloom.sequencer.errors import UsageError
+
+    doc, report = _scan_document(args, path, data, element)
     if args.plots and report is not None:
         from lightloom.sequencer.present.plots import PlotsUnavailable
         from lightloom.sequencer.present.scan_figures import plot_scan
@@ -245,10 +339,18 @@ def _scan(args: argparse.Namespace, data, element: str) -> int:
             raise UsageError(str(exc)) from None
     if args.json:
         print(json.dumps(doc, indent=1))
+    elif args.csv:
+        _print_csv([(path, doc)])
     else:
+        from rich.console import Console
+
         from lightloom.sequencer.present.report import print_scan
 
         console = Console()
+        if "density_matrix" in doc:
+            from lightloom.sequencer.present.report import print_report
+
+            print_report(console, doc)
         print_scan(console, doc)
         for p in doc.get("plots", []):
             console.print(f"  figure: {p}", highlight=False)

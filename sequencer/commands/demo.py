@@ -96,9 +96,9 @@ def run(args: argparse.Namespace) -> int:
             highlight=False,
         )
     try:
-        from lightloom.sequencer.commands.analyze import _plots
+        from lightloom.sequencer.commands.analyze import write_figures
 
-        figures = list(_plots(data, est, str(folder / FIGURES)))
+        figures = list(write_figures(data, doc, est, str(folder / FIGURES)))
     except UsageError as exc:
         figures = []
         console.print(f"  (no figures: {exc})", highlight=False, markup=False)

@@ -133,7 +133,7 @@ def run(args: argparse.Namespace) -> int:
     t = Table(title=f"{protocol.name} on {bench.name} ({plan.order} order)", box=box.SIMPLE_HEAD,
               pad_edge=False, title_justify="left")
     t.add_column("step", justify="right", no_wrap=True)
-    t.add_column("setting", justify="left", no_wrap=True)
+    t.add_column("setting", justify="left", overflow="fold")  # long labels wrap, never cut
     for i in present:
         name = plan.element_names[i]
         t.add_column(SHORT_NAMES.get(name, name), justify="right", no_wrap=True)

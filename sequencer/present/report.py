@@ -2,19 +2,38 @@
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import numpy as np
+from rich import box
 from rich.console import Console
 from rich.table import Table
 
 
-def _pm(x: dict[str, Any], digits: int = 4) -> str:
+def _pm(x: dict[str, Any] | None, digits: int = 4) -> str:
+    if x is None:
+        return "not yet"
     text = f"{x['value']:.{digits}f} ± {x['std']:.{digits}f}"
     if x.get("interval") is not None:
         lo, hi = x["interval"]
         text += f" [{lo:.{digits}f}, {hi:.{digits}f}]"
     return text
+
+
+def _power(x: dict[str, Any]) -> str:
+    return f"{x['value']:.5g} ± {x['std']:.2g} {x.get('units', '')}"
+
+
+def _matrix_table(title: str, basis: list[str], m: dict[str, Any]) -> Table:
+    rho = np.array(m["real"]) + 1j * np.array(m["imag"])
+    t = Table(title=title)
+    t.add_column("")
+    for b in basis:
+        t.add_column(b, justify="right")
+    for i, b in enumerate(basis):
+        t.add_row(b, *[f"{rho[i, j].real:+.3f}{rho[i, j].imag:+.3f}j" for j in range(len(basis))])
+    return t
 
 
 def print_report(console: Console, doc: dict[str, Any]) -> None:
@@ -29,19 +48,21 @@ def print_report(console: Console, doc: dict[str, Any]) -> None:
     )
     console.print(head)
     basis = doc["basis"]
-    rho = np.array(doc["density_matrix"]["real"]) + 1j * np.array(doc["density_matrix"]["imag"])
-    t = Table(title="density matrix (maximum likelihood)")
-    t.add_column("")
-    for b in basis:
-        t.add_column(b, justify="right")
-    for i, b in enumerate(basis):
-        t.add_row(b, *[f"{rho[i, j].real:+.3f}{rho[i, j].imag:+.3f}j" for j in range(len(basis))])
-    console.print(t)
+    if "density_matrix" not in doc:
+        _print_partial(console, doc)
+        return
+    console.print(_matrix_table("density matrix (maximum likelihood)", basis, doc["density_matrix"]))
+    if "linear_inversion" in doc:
+        li = doc["linear_inversion"]
+        console.print(_matrix_table(
+            f"density matrix (linear inversion; lowest eigenvalue {li['min_eigenvalue']:+.4f})", basis, li))
     f = Table(title="figures of merit (value ± std [95% interval], parametric bootstrap)")
     f.add_column("quantity")
     f.add_column("value", justify="right")
     f.add_row("purity tr(rho^2)", _pm(doc["purity"]))
     f.add_row("linear entropy", _pm(doc["linear_entropy"]))
+    if "power" in doc:
+        f.add_row("power S0", _power(doc["power"]))
     if "concurrence" in doc:
         f.add_row("concurrence", _pm(doc["concurrence"]))
         f.add_row("fully entangled fraction", _pm(doc["fully_entangled_fraction"]))
@@ -59,8 +80,31 @@ def print_report(console: Console, doc: dict[str, Any]) -> None:
     for k in ("S1", "S2", "S3", "degree"):
         s.add_column(k, justify="right")
     for factor, vals in doc["stokes"].items():
-        s.add_row(factor, *[_pm(v, 3) for v in vals[1:]], _pm(doc["degree_of_polarization"][factor], 3))
+        s.add_row(factor, *[_pm(v, 3) for v in vals[1:]], _pm(doc["degree_of_polarization"].get(factor), 3))
     console.print(s)
+    _print_corrections(console, doc)
+
+
+def _print_partial(console: Console, doc: dict[str, Any]) -> None:
+    """A run whose readings do not determine the state yet: what they do give, and what is missing."""
+    if doc.get("stokes"):
+        s = Table(title="Stokes parameters determined so far (normalised, S0 = 1)")
+        s.add_column("factor")
+        for k in ("S1", "S2", "S3", "degree"):
+            s.add_column(k, justify="right")
+        for factor, vals in doc["stokes"].items():
+            s.add_row(factor, *[_pm(v, 3) for v in vals[1:]], _pm(doc.get("degree_of_polarization", {}).get(factor), 3))
+        console.print(s)
+    if "power" in doc:
+        console.print(f"  power S0: {_power(doc['power'])}", highlight=False)
+    console.print("  the state is not determined yet; still missing:", highlight=False)
+    for line in doc.get("missing", []):
+        console.print(f"   - {line}", highlight=False, markup=False)
+    if "corrections" in doc and "estimator" in doc:
+        _print_corrections(console, doc)
+
+
+def _print_corrections(console: Console, doc: dict[str, Any]) -> None:
     corr = doc["corrections"]
     lines = []
     bg = corr.get("background", {})
@@ -79,13 +123,89 @@ def print_report(console: Console, doc: dict[str, Any]) -> None:
         lines.append(f"noise: Gaussian, {nm['absolute_w']:.3g} W + {nm['relative']:.2%} relative ({nm['how']}), residual scale {nm.get('residual_scale', 1):.2f}")
     else:
         lines.append("noise: Poisson counts")
+    red = corr.get("reduction", {})
+    if red.get("applied"):
+        lines.append(f"reduction: {red['how']}")
     e = doc["estimator"]
-    lines.append(
-        f"estimator: {e['method']}, {e['readings']} readings, log-likelihood {e['log_likelihood']:.6g}, "
-        f"certified gap {e['certified_gap']:.2g}, {e['bootstrap_resamples']} bootstrap resamples"
-    )
+    if "log_likelihood" in e:
+        lines.append(
+            f"estimator: {e['method']}, {e['readings']} readings in {e.get('distinct_operators', '?')} distinct "
+            f"operators, log-likelihood {e['log_likelihood']:.6g}, certified gap {e['certified_gap']:.2g}, "
+            f"{e['bootstrap_resamples']} bootstrap resamples"
+        )
+    else:
+        lines.append(f"estimator: {e['method']}, {e['readings']} readings, {e.get('determined', '')}")
     for line in lines:
         console.print(f"  {line}", highlight=False, markup=False)
+
+
+def print_passes(console: Console, passes: list[dict[str, Any]]) -> None:
+    """One row per pass or time window of an analysis with --per-pass or --window."""
+    if not passes:
+        console.print("  no pass holds measure readings yet", highlight=False)
+        return
+    kind = "pass" if "pass" in passes[0] else "window"
+    t0 = min(p["t_start"] for p in passes)
+    stokes = "polarization" if any("polarization" in p.get("stokes", {}) for p in passes) else "spatial"
+    t = Table(title=f"results per {kind}: value(std in its last digits), middle h:mm:ss",
+              box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, padding=(0, 1), collapse_padding=True)
+    for col in (kind, "middle", "purity", "conc.", "fid.", f"{stokes[:3]}. S1", "S2", "S3"):
+        t.add_column(col, justify="right", no_wrap=True)
+    for p in passes:
+        s = p.get("stokes", {}).get(stokes) or [None] * 4
+        t.add_row(str(p.get(kind)), _clock(0.5 * (p["t_start"] + p["t_end"]) - t0),
+                  _tight(p.get("purity")), _tight(p.get("concurrence")), _tight(p.get("fidelity")),
+                  *[_tight(x, 3) for x in s[1:4]])
+    console.print(t)
+    for p in passes:
+        if p.get("missing"):
+            console.print(f"  {kind} {p.get(kind)}: not determined: " + "; ".join(p["missing"]), highlight=False, markup=False)
+
+
+def _tight(x: dict[str, Any] | None, digits: int = 4) -> str:
+    """Value with its std in the last digits, in parentheses: 0.9490(2) is 0.9490 ± 0.0002."""
+    if x is None:
+        return "-"
+    return f"{x['value']:.{digits}f}({int(round(x['std'] * 10**digits))})"
+
+
+def _clock(seconds: float) -> str:
+    s = int(round(seconds))
+    return f"{s // 3600}:{s % 3600 // 60:02d}:{s % 60:02d}"
+
+
+def print_summary(console: Console, results: list[tuple[str, dict[str, Any]]]) -> None:
+    """One row per run file (its name; the JSON and CSV give the paths): protocol, status, purity,
+    concurrence, fidelity, Stokes."""
+    from lightloom.sequencer.analysis.summary import summary_row
+
+    t = Table(title="runs: value(std in its last digits)", box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, padding=(0, 1), collapse_padding=True)
+    t.add_column("file", overflow="fold", min_width=8)
+    t.add_column("protocol", no_wrap=True, overflow="ellipsis", max_width=16)
+    t.add_column("status", overflow="fold", min_width=8)
+    for col in ("purity", "conc.", "fid.", "pol. S1-S3", "spat. S1-S3"):
+        t.add_column(col, no_wrap=True)
+
+    def pm(row: dict[str, Any], key: str, digits: int = 4) -> str:
+        if row[key] is None:
+            return "-"
+        return _tight({"value": row[key], "std": row[key + "_std"]}, digits)
+
+    for path, doc in results:
+        row = summary_row(path, doc)
+        status = row["status"] or "-"
+        if row["steps_total"]:
+            status += f" {row['steps_done']}/{row['steps_total']}"
+        stokes = {f: "\n".join("-" if row[f"{f}_S{k}"] is None else f"{row[f'{f}_S{k}']:+.3f}" for k in (1, 2, 3))
+                  for f in ("polarization", "spatial")}
+        t.add_row(Path(path).name, row["protocol"] or "-", status, pm(row, "purity"), pm(row, "concurrence"),
+                  pm(row, "fidelity"), stokes["polarization"], stokes["spatial"])
+    console.print(t)
+    for path, doc in results:
+        if "error" in doc:
+            console.print(f"  {path}: {doc['error']}", highlight=False, markup=False)
+        elif doc.get("missing"):
+            console.print(f"  {path}: not yet determined: " + "; ".join(doc["missing"]), highlight=False, markup=False)
 
 
 def print_scan(console: Console, doc: dict[str, Any]) -> None:
