@@ -26,7 +26,10 @@ VERBS: dict[str, Verb] = {
     "dry-run": Verb("dry_run", "show the compiled steps, motion, limit checks and a time estimate"),
     "run": Verb("run", "run a protocol on a bench, recording every reading to FILE.h5"),
     "resume": Verb("resume", "continue an interrupted run; every step is recorded exactly once"),
-    "analyze": Verb("analyze", "reconstruct the state of a run (complete, interrupted or still running)"),
+    "analyze": Verb(
+        "analyze",
+        "reconstruct the state of a run (complete, interrupted or still running); several runs: one summary table",
+    ),
     "advise": Verb(
         "advise",
         "settings of a quarter-half-quarter stack, mode converter and image rotator that steer the "

@@ -74,14 +74,7 @@ class SimulatedTable:
         self.seed = sim.seed
         seeds = np.random.SeedSequence(sim.seed)
         fault_seed, drift_seed, *device_seeds = seeds.spawn(2 + len(bench.devices))
-        self.faults = FaultInjector(
-            [
-                {k: v for k, v in (("kind", f.kind), ("device", f.device), ("at_s", f.at_s),
-                                   ("probability", f.probability), ("duration_s", f.duration_s)) if v is not None}
-                for f in sim.faults
-            ],
-            rng=np.random.default_rng(fault_seed),
-        )
+        self.faults = FaultInjector(sim.faults, rng=np.random.default_rng(fault_seed))
         self.drift = Drift(sim.drift.amplitude, sim.drift.period_s,
                            float(np.random.default_rng(drift_seed).uniform(0, 2 * math.pi)))
         self.power_w = sim.source.power_w

@@ -160,7 +160,7 @@ def test_reader_never_sees_a_half_written_file_while_it_is_replaced(tmp_path):
             sys.path.insert(0, {str(REPO / "tests")!r})
             from lightloom.sequencer.storage import write_runfile
             from helpers.records import make_header, make_reading
-            header = make_header()
+            header = make_header(400)
             readings = [make_reading(i) for i in range(400)]
             print("ready", flush=True)
             for n in range(2, 60):

@@ -69,12 +69,20 @@ class Sums:
 
 
 def setting_ids(commanded: np.ndarray) -> np.ndarray:
-    """Index (n,) of each row's commanded setting among the distinct ones (NaN = element unused)."""
-    c = np.round(np.where(np.isnan(commanded), np.inf, commanded), SETTING_DECIMALS)
-    if c.shape[0] == 0:
+    """Index (n,) of each row's commanded setting among the distinct ones (NaN = element unused).
+
+    One 1-D sort per element column, then one of the combined codes: no copy of the table as rows.
+    """
+    n = commanded.shape[0]
+    if n == 0:
         return np.zeros(0, dtype=np.int64)
-    _, inverse = np.unique(c, axis=0, return_inverse=True)
-    return np.asarray(inverse, dtype=np.int64).reshape(-1)
+    combined = np.zeros(n, dtype=np.int64)
+    for j in range(commanded.shape[1]):
+        col = np.round(np.where(np.isnan(commanded[:, j]), np.inf, commanded[:, j]), SETTING_DECIMALS)
+        values, inverse = np.unique(col, return_inverse=True)
+        combined = combined * len(values) + np.asarray(inverse, dtype=np.int64).reshape(-1)
+    _, ids = np.unique(combined, return_inverse=True)
+    return np.asarray(ids, dtype=np.int64).reshape(-1)
 
 
 def _dense(*columns: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -73,11 +73,13 @@ def partial_warning(det: Any, protocol: Any, where: str) -> str | None:
 
 
 def run(args: argparse.Namespace) -> int:
+    import numpy as np
     from rich import box
     from rich.console import Console
     from rich.table import Table
 
     from lightloom.sequencer.lang.bench import load_bench
+    from lightloom.sequencer.model.steps import STEP_KINDS
     from lightloom.sequencer.lang.protocol import load_protocol
     from lightloom.sequencer.plan.purpose import plan_determination
     from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
@@ -92,7 +94,7 @@ def run(args: argparse.Namespace) -> int:
     warning = partial_warning(det, protocol, f"on bench '{bench.name}'")
     if warning:
         print(warning, file=sys.stderr)
-    measure = [s for s in plan.steps if s.kind == "measure"]
+    n_measure = int(np.count_nonzero(plan.columns.kind == STEP_KINDS.index("measure")))
     exposures = _exposure_checks(bench, plan)
     if args.json:
         out = {
@@ -100,7 +102,7 @@ def run(args: argparse.Namespace) -> int:
             "bench": bench.name,
             "points": len(plan.steps),
             "settings": plan.n_settings,
-            "measure_steps": len(measure),
+            "measure_steps": n_measure,
             "estimated_seconds": round(est.total_seconds, 3),
             "motion_seconds": round(est.motion_seconds, 3),
             "dwell_seconds": round(est.dwell_seconds, 3),
@@ -127,9 +129,7 @@ def run(args: argparse.Namespace) -> int:
         return 2 if plan.violations else 0
     console = Console(highlight=False)
     # Only the elements this bench has get a column, so that the table fits 80 columns.
-    used = {n for s in plan.steps for n in s.settings.stage_angles()}
-    used |= {"mode_converter" for s in plan.steps if s.settings.mode_converter is not None}
-    present = [i for i, name in enumerate(plan.element_names) if name in used]
+    present = [int(i) for i in np.flatnonzero(~np.all(np.isnan(plan.columns.settings), axis=0))]
     t = Table(title=f"{protocol.name} on {bench.name} ({plan.order} order)", box=box.SIMPLE_HEAD,
               pad_edge=False, title_justify="left")
     t.add_column("step", justify="right", no_wrap=True)
@@ -151,7 +151,7 @@ def run(args: argparse.Namespace) -> int:
     if len(shown) < len(plan.steps):
         console.print(f"... {len(plan.steps) - len(shown)} more steps (--all lists them)")
     console.print(
-        f"{len(plan.steps)} steps: {plan.n_settings} settings, {len(measure)} measurements,"
+        f"{len(plan.steps)} steps: {plan.n_settings} settings, {n_measure} measurements,"
         f" {plan.passes} pass{'es' if plan.passes != 1 else ''}"
     )
     console.print(f"estimated {hms(est.total_seconds)} (h:mm:ss)")

@@ -30,6 +30,7 @@ from lightloom.sequencer.lang.fields import (
 )
 from lightloom.sequencer.lang.fields import text as read_text
 from lightloom.sequencer.lang.yamlsafe import YMap, YNode, YScalar, YSeq, dump_plain, merge, parse_bytes, parse_text, to_plain
+from lightloom.sequencer.model.faults import FAULT_KEYS, FaultRuleError, FaultSpec, check_fault
 from lightloom.sequencer.model.vocabulary import (
     DETECTOR_KINDS, DEVICE_KINDS, DRIVER_FAMILIES, FAULT_KINDS, ROLE_NAMES, SORTER_PORTS, SPLITTER_PORTS,
 )
@@ -264,18 +265,6 @@ class Drift:
 
 
 @dataclass(frozen=True)
-class Fault:
-    """An injected fault: at a simulated time (``at_s``, for ``duration_s`` or until the end) or per operation."""
-
-    kind: str
-    device: str | None
-    at_s: float | None
-    probability: float | None
-    duration_s: float | None
-    line: int = field(compare=False)
-
-
-@dataclass(frozen=True)
 class Simulation:
     """The ``simulation:`` section: what the virtual bench does."""
 
@@ -285,7 +274,7 @@ class Simulation:
     table: Table
     noise: Noise
     drift: Drift
-    faults: tuple[Fault, ...]
+    faults: tuple[FaultSpec, ...]
 
 
 @dataclass(frozen=True)
@@ -737,39 +726,34 @@ def _drift(sec: Section | None) -> Drift:
                  sec.number("period_s", "s", 3600.0, gt=0.0, le=1.0e7))
 
 
-def _faults(seq: YSeq | None, devices: Mapping[str, DeviceSpec]) -> tuple[Fault, ...]:
+def _faults(seq: YSeq | None, devices: Mapping[str, DeviceSpec]) -> tuple[FaultSpec, ...]:
+    """The injected faults: values read at their lines, then the rules every fault follows
+    (model.faults.check_fault, the same the simulators apply)."""
     if seq is None:
         return ()
     faults = []
     for i, item in enumerate(seq.items):
         sec = Section.of(item, f"simulation.faults[{i}]", "bench", "kind, device, at_s or probability")
-        sec.check_keys(("kind", "device", "at_s", "probability", "duration_s"))
-        kind = sec.choice("kind", FAULT_KINDS)
-        device = None
-        if kind == "beam_loss":
-            if sec.has("device"):
-                fail(f"{sec.name('device')}: a beam_loss fault blocks the source and names no device; remove it",
-                     sec.get("device"))  # type: ignore[arg-type]
-        else:
-            node = sec.require("device", "the name of the device that misbehaves")
-            device = read_text(node, sec.name("device"))
-            if device not in devices:
+        sec.check_keys(FAULT_KEYS)
+        values: dict[str, object] = {"kind": sec.choice("kind", FAULT_KINDS)}
+        if sec.has("device"):
+            node = sec.get("device")
+            device = read_text(node, sec.name("device"))  # type: ignore[arg-type]
+            if values["kind"] != "beam_loss" and device not in devices:
                 fail(f"{sec.name('device')}: no device named '{device}'{aside(device, devices)}; devices"
-                     f" are {', '.join(devices)}", node)
-        timing = [k for k in ("at_s", "probability") if sec.has(k)]
-        if kind == "beam_loss" and timing != ["at_s"]:
-            fail(f"{sec.where}: a beam_loss fault needs at_s (simulated seconds) and optionally duration_s",
-                 sec.node)
-        if len(timing) != 1:
-            fail(f"{sec.where}: give exactly one of at_s (once, at that simulated time) or probability"
-                 " (per operation)", sec.node)
-        at_s = sec.number("at_s", "s", None, ge=0.0, le=1.0e7)
-        probability = sec.number("probability", "", None, gt=0.0, le=1.0)
-        duration = sec.number("duration_s", "s", None, gt=0.0, le=1.0e7)
-        if duration is not None and at_s is None:
-            fail(f"{sec.name('duration_s')}: duration_s goes with at_s, not with probability",
-                 sec.get("duration_s"))  # type: ignore[arg-type]
-        faults.append(Fault(kind, device, at_s, probability, duration, item.line))
+                     f" are {', '.join(devices)}", node)  # type: ignore[arg-type]
+            values["device"] = device
+        for key, unit in (("at_s", "s"), ("probability", ""), ("duration_s", "s"), ("residual", "")):
+            value = sec.number(key, unit, None, ge=0.0, le=1.0e7)
+            if value is not None:
+                values[key] = value
+        if sec.has("count"):
+            values["count"] = sec.integer("count", ge=1, le=10**9)
+        try:
+            faults.append(check_fault(values))
+        except FaultRuleError as exc:
+            node = sec.get(exc.key) if exc.key and sec.has(exc.key) else sec.node
+            fail(f"{sec.name(exc.key) if exc.key else sec.where}: {exc.detail}", node)  # type: ignore[arg-type]
     return tuple(faults)
 
 

@@ -115,6 +115,8 @@ class RunHeader:
     d x d target, ``factor_target_state`` its 2 x 2 target when it analyses one factor only,
     ``target_label`` how the protocol named it. ``reference_device`` names the pick-off meter
     (None without one), ``wavelength_nm`` is the bench's wavelength.
+    ``run_id`` identifies the run (a random UUID, shared by its journal and run file;
+    empty in files written before it existed).
     """
 
     format_version: int
@@ -142,6 +144,7 @@ class RunHeader:
     target_label: str | None = None
     reference_device: str | None = None
     wavelength_nm: float | None = None
+    run_id: str = ""
 
     def __post_init__(self) -> None:
         for name in ("analyzes", "element_names", "port_names", "basis_labels"):

@@ -13,7 +13,11 @@ first-order pair is
     v = HG(0,1) = u_0(xi) u_1(eta) = 2 sqrt(2/pi) eta exp(-(xi^2 + eta^2))   (lobes along y)
 
 each normalised to a unit integral of |u|^2 over the plane (in units of w0^2). With this choice
-l+- = (h +- i v)/sqrt2 is proportional to (xi +- i eta) exp(-r^2), the charge +-1 vortex.
+l+- = (h +- i v)/sqrt2 is proportional to (xi +- i eta) exp(-r^2), the charge +-1 vortex; the radial
+mode (|H,h> + |V,v>)/sqrt2 has the field (xi, eta) exp(-r^2), along the radius, and the azimuthal
+mode (|V,h> - |H,v>)/sqrt2 the field (-eta, xi) exp(-r^2), along the azimuth: the decomposition of
+cylindrical vector beams into HG(1,0) and HG(0,1) with x and y polarization (Zhan, Adv. Opt.
+Photon. 1, 1 (2009), from memory). The x, y axes are those of the Jones vectors (H along x).
 
 The field of a joint state, in the basis |H,h>, |H,v>, |V,h>, |V,v>, is the Jones vector at every
 point, E_p(x, y) = sum_m c_(p,m) u_m(x, y). For a density matrix the local coherency (polarization)

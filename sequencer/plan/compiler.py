@@ -30,7 +30,7 @@ from lightloom.sequencer.optics.stokes import stokes_from_density
 from lightloom.sequencer.optics.states import density
 from lightloom.sequencer.plan.ordering import PERIOD_DEG, order_settings
 from lightloom.sequencer.model.elements import COLUMN, ElementSettings
-from lightloom.sequencer.model.steps import StepList, Step
+from lightloom.sequencer.model.steps import STEP_KINDS, StepColumns, StepList
 
 # A run file holds its whole plan; beyond this a series belongs in several runs.
 MAX_STEPS = 200_000
@@ -148,6 +148,7 @@ def compile_requests(
     keys: list[tuple] = []
     entries: list[tuple] = []  # ("elements", settings, label) or ("targets", pol part, spatial part, point)
     logical: list[int] = []
+    points: list[int] = []  # per entry: the protocol points it is the first setting of (for background.every_points)
 
     def factor_parts(req_part, reg: _FactorRegistry, expand: bool, kets: Mapping[str, np.ndarray], names: tuple[str, str]):
         if req_part is not None:
@@ -165,10 +166,13 @@ def compile_requests(
                 keys.append(key)
                 entries.append(("elements", s, _explicit_label(req.elements)))
                 logical.append((max(logical) + 1) if logical else 0)
+                points.append(0)
+            points[keys.index(key)] += 1
             continue
         pol_parts = factor_parts(req.polarization, pol_reg, expand_pol, POLARIZATION_KETS, ("H", "V"))
         sp_parts = factor_parts(req.spatial, sp_reg, expand_sp, SPATIAL_KETS, ("h", "v"))
         logical_index = None
+        credited = False
         for pp in pol_parts:
             for spp in sp_parts:
                 key = (
@@ -177,12 +181,17 @@ def compile_requests(
                     spp[0] if (spp is not None and merge_sp) else spp,
                 )
                 if key in keys:
+                    if not credited:
+                        points[keys.index(key)] += 1
+                        credited = True
                     continue
                 if logical_index is None:
                     logical_index = (max(logical) + 1) if logical else 0
                 keys.append(key)
                 entries.append(("targets", pp, spp, r_index, req.line))
                 logical.append(logical_index)
+                points.append(0 if credited else 1)
+                credited = True
     if not entries:
         raise ProtocolError(f"protocol '{protocol_name}' asks for no measurement")
     # Every setting with the alternatives that measure the same projectors (a merged basis may be
@@ -221,7 +230,7 @@ def compile_requests(
         dwell_s, repeats, background_every, background_at_start, background_at_end,
         background_dwell_s if background_dwell_s is not None else dwell_s,
         reference_every, reference_dwell_s if reference_dwell_s is not None else dwell_s,
-        passes, pass_interval_s, order, ref_settings, ref_labels, logical[ref_index],
+        passes, pass_interval_s, order, ref_settings, ref_labels, logical[ref_index], points,
     )
 
 
@@ -330,24 +339,30 @@ def _setting_label(port_labels: tuple[str, ...]) -> str:
 def _expand_steps(
     table, protocol_name, settings, key_labels, logical, order_idx, analyzes, dwell_s, repeats,
     bg_every, bg_start, bg_end, bg_dwell, ref_every, ref_dwell, passes, pass_interval_s, order,
-    ref_settings, ref_labels, ref_point,
+    ref_settings, ref_labels, ref_point, points,
 ) -> StepList:
     per_pass = len(order_idx) * repeats
     if ref_every > 0:
-        per_pass += 2 + len(order_idx) // ref_every
+        per_pass += 2 + (len(order_idx) - 1) // ref_every
+    total = passes * per_pass + 2
     if bg_every > 0:
-        per_pass += len(order_idx) // bg_every
-    if passes * per_pass > MAX_STEPS:
+        total += passes * sum(points) // bg_every
+    if total > MAX_STEPS:
         raise ProtocolError(
-            f"the plan would have about {passes * per_pass} steps, more than {MAX_STEPS}; lower repeats "
+            f"the plan would have about {total} steps, more than {MAX_STEPS}; lower repeats "
             "or sweep.passes, or split the series into several runs"
         )
-    steps: list[Step] = []
+    n_ports = len(table.ports)
+    labels: dict[str, int] = {}
+    port_sets: dict[tuple[str, ...], int] = {}
+    setting_label = [labels.setdefault(_setting_label(key_labels[k]), len(labels)) for k in range(len(settings))]
+    setting_ports = [port_sets.setdefault(tuple(key_labels[k]), len(port_sets)) for k in range(len(settings))]
+    ref_label, ref_ports = labels.setdefault("reference", len(labels)), port_sets.setdefault(tuple(ref_labels), len(port_sets))
+    bg_label, bg_ports = labels.setdefault("background", len(labels)), port_sets.setdefault(("",) * n_ports, len(port_sets))
+    measure, background, reference = (STEP_KINDS.index(k) for k in ("measure", "background", "reference"))
     violations: list[str] = []
-    position = _park(table)
 
-    def resolve(target: np.ndarray) -> np.ndarray:
-        nonlocal position
+    def resolve(target: np.ndarray, position: np.ndarray) -> np.ndarray:
         out = target.copy()
         for name, k in table.kinematics.items():
             i = COLUMN[name]
@@ -358,39 +373,99 @@ def _expand_steps(
                 violations.append(
                     f"{name} at {out[i]:.3f} deg is outside its travel {k.min_deg:g}..{k.max_deg:g} deg"
                 )
-        position = out
         return out
 
-    def add(kind, pass_index, point_index, repeat_index, s, dwell, label, port_labels):
-        steps.append(Step(len(steps), kind, pass_index, point_index, repeat_index,
-                          ElementSettings.from_vector(s), float(dwell), label, tuple(port_labels)))
-
-    n_ports = len(table.ports)
-    for p in range(passes):
-        sequence = list(order_idx) if p % 2 == 0 else list(reversed(order_idx))
-        if bg_start and p == 0:
-            add("background", p, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
+    def pass_core(parity: int, start: np.ndarray) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]:
+        """One pass without its backgrounds: columns, end position, last row of each setting."""
+        rows: list[tuple[int, int, int, np.ndarray, float, int, int]] = []
+        ends: list[int] = []
+        position = start
+        sequence = list(order_idx) if parity == 0 else list(reversed(order_idx))
         if ref_every > 0:
-            add("reference", p, ref_point, 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
+            position = resolve(ref_settings, position)
+            rows.append((reference, ref_point, 0, position, ref_dwell, ref_label, ref_ports))
         for count, k in enumerate(sequence, start=1):
-            s = resolve(settings[k])
-            label = _setting_label(key_labels[k])
+            position = resolve(settings[k], position)
             for r in range(repeats):
-                add("measure", p, logical[k], r, s, dwell_s, label, key_labels[k])
+                rows.append((measure, logical[k], r, position, dwell_s, setting_label[k], setting_ports[k]))
             if ref_every > 0 and count % ref_every == 0 and count < len(sequence):
-                add("reference", p, ref_point, 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
-            if bg_every > 0 and count % bg_every == 0 and count < len(sequence):
-                add("background", p, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
+                position = resolve(ref_settings, position)
+                rows.append((reference, ref_point, 0, position, ref_dwell, ref_label, ref_ports))
+            ends.append(len(rows) - 1)
         if ref_every > 0:
-            add("reference", p, ref_point, 0, resolve(ref_settings), ref_dwell, "reference", ref_labels)
+            position = resolve(ref_settings, position)
+            rows.append((reference, ref_point, 0, position, ref_dwell, ref_label, ref_ports))
+        columns = {
+            "kind": np.array([r[0] for r in rows], np.uint8),
+            "point_index": np.array([r[1] for r in rows], np.int32),
+            "repeat_index": np.array([r[2] for r in rows], np.int32),
+            "settings": np.array([r[3] for r in rows], np.float64).reshape(len(rows), len(ELEMENT_NAMES)),
+            "dwell_s": np.array([r[4] for r in rows], np.float64),
+            "label": np.array([r[5] for r in rows], np.int32),
+            "port_labels": np.array([r[6] for r in rows], np.int32),
+        }
+        return columns, position, np.array(ends, np.int64)
+
+    # Passes alternate direction and start where the last one ended, so after a pass or two
+    # they repeat: compute each distinct (direction, start position) once, whatever the night.
+    cores: dict[tuple[int, bytes], tuple[dict[str, np.ndarray], np.ndarray, np.ndarray]] = {}
+    pass_cores = []
+    position = _park(table)
+    park = position.copy()
+    for p in range(passes):
+        key = (p % 2, position.tobytes())
+        if key not in cores:
+            cores[key] = pass_core(p % 2, position)
+        core = cores[key]
+        pass_cores.append(core)
+        position = core[1]
+    lengths = np.array([len(core[0]["kind"]) for core in pass_cores], np.int64)
+    offsets = np.concatenate([[0], np.cumsum(lengths)[:-1]])
+    columns = {name: np.concatenate([core[0][name] for core in pass_cores]) for name in pass_cores[0][0]}
+    columns["pass_index"] = np.repeat(np.arange(passes, dtype=np.int32), lengths)
+    # background.every_points counts protocol points through the whole run: a setting that
+    # measures several points advances the count by all of them, and a background due at the
+    # end of a pass is taken there (unless the run's last one, at_end, follows anyway).
+    after = np.zeros(0, np.int64)
+    after_pass = np.zeros(0, np.int32)
+    if bg_every > 0:
+        forward = np.asarray(points, np.int64)[np.asarray(order_idx)]
+        per_pass_points = np.stack([forward, forward[::-1]])[np.arange(passes) % 2]
+        seen = np.cumsum(per_pass_points.ravel())
+        due = (seen // bg_every) > ((seen - per_pass_points.ravel()) // bg_every)
+        if bg_end:
+            due[-1] = False
+        ends = np.concatenate([core[2] + offsets[p] for p, core in enumerate(pass_cores)])
+        after = ends[due]
+        after_pass = np.repeat(np.arange(passes, dtype=np.int32), len(order_idx))[due]
+    n_bg = len(after)
+    inserted = {
+        "kind": np.full(n_bg, background, np.uint8), "point_index": np.full(n_bg, -1, np.int32),
+        "repeat_index": np.zeros(n_bg, np.int32), "settings": columns["settings"][after],
+        "dwell_s": np.full(n_bg, bg_dwell, np.float64), "label": np.full(n_bg, bg_label, np.int32),
+        "port_labels": np.full(n_bg, bg_ports, np.int32), "pass_index": after_pass,
+    }
+    columns = {name: np.insert(col, after + 1, inserted[name], axis=0) for name, col in columns.items()}
+
+    def one_background(pass_index: int, at: np.ndarray) -> dict[str, np.ndarray]:
+        return {"kind": np.array([background], np.uint8), "point_index": np.array([-1], np.int32),
+                "repeat_index": np.zeros(1, np.int32), "settings": at[None, :],
+                "dwell_s": np.array([bg_dwell]), "label": np.array([bg_label], np.int32),
+                "port_labels": np.array([bg_ports], np.int32), "pass_index": np.array([pass_index], np.int32)}
+
+    parts = [columns]
+    if bg_start:
+        parts.insert(0, one_background(0, park))
     if bg_end:
-        add("background", passes - 1, -1, 0, position, bg_dwell, "background", ("",) * n_ports)
+        parts.append(one_background(passes - 1, position))
+    columns = {name: np.concatenate([part[name] for part in parts]) for name in columns}
+    step_columns = StepColumns(**columns, labels=tuple(labels), port_label_sets=tuple(port_sets))
     return StepList(
         protocol_name=protocol_name,
         bench_name=table.name,
         element_names=ELEMENT_NAMES,
         port_names=tuple(p.name for p in table.ports),
-        steps=tuple(steps),
+        columns=step_columns,
         n_settings=len(settings),
         passes=passes,
         pass_interval_s=float(pass_interval_s),

@@ -9,7 +9,7 @@ from numpy.typing import NDArray
 
 from lightloom.sequencer.errors import ProtocolError
 from lightloom.sequencer.lang.protocol import Protocol
-from lightloom.sequencer.model.steps import StepList
+from lightloom.sequencer.model.steps import STEP_KINDS, StepList
 from lightloom.sequencer.model.vocabulary import ANALYZERS
 from lightloom.sequencer.optics.analyzer import (
     CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, AnalyzerModel, ConverterModel, PlateModel,
@@ -26,12 +26,11 @@ FACTORS = ANALYZERS
 
 def plan_operators(plan: StepList, table: TableModel) -> NDArray[np.complex128]:
     """The per-port measurement operators (n, 4, 4) of the distinct settings of the plan's measure steps."""
-    # Steps repeat a few settings many times (repeats, passes): convert each distinct one once.
-    distinct = dict.fromkeys(step.settings for step in plan.steps if step.kind == "measure")
-    rows = [settings.as_vector() for settings in distinct]
-    if not rows:
+    c = plan.columns
+    rows = c.settings[c.kind == STEP_KINDS.index("measure")]
+    if not len(rows):
         return np.zeros((0, 4, 4), dtype=np.complex128)
-    settings = np.unique(np.nan_to_num(np.array(rows, dtype=float), nan=0.0), axis=0)
+    settings = np.unique(np.nan_to_num(rows, nan=0.0), axis=0)
     return port_operators(table.analyzer, table.ports, settings).reshape(-1, 4, 4)
 
 

@@ -21,7 +21,7 @@ from lightloom.drivers.camera import Camera, Frame
 from lightloom.drivers.retry import call_with_retry, close_shutter_within
 from lightloom.drivers.interfaces import Device, DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
 from lightloom.sequencer.plan.compiler import TableModel
-from lightloom.sequencer.errors import RunFault
+from lightloom.sequencer.errors import RunFault, StorageError
 from lightloom.sequencer.plan.kinematics import approach_path
 from lightloom.sequencer.optics.analyzer import port_operators
 from lightloom.sequencer.run.beam import beam_level
@@ -35,6 +35,8 @@ T = TypeVar("T")
 
 # A stage read-back further than this from its target (deg) means the axis did not get there.
 POSITION_TOLERANCE_DEG = 0.05
+# The run file is refreshed every RunPolicy.refresh_s (2 s), stretched up to this when refreshes are slow.
+MAX_REFRESH_S = 10.0
 # Waits between sweep passes longer than this (s) are spent with the shutter closed.
 SHUTTER_CLOSED_WAIT_S = 5.0
 
@@ -97,6 +99,8 @@ class RunMonitor(Protocol):
 
     def info(self, message: str) -> None: ...
 
+    def waiting(self, seconds: float, pass_number: int, passes: int) -> None: ...
+
 
 class SilentMonitor:
     """A monitor that shows nothing (tests, no terminal)."""
@@ -108,6 +112,9 @@ class SilentMonitor:
         pass
 
     def info(self, message: str) -> None:
+        pass
+
+    def waiting(self, seconds: float, pass_number: int, passes: int) -> None:
         pass
 
 
@@ -462,19 +469,22 @@ class Runner:
         self._set_shutter(False)
         self._shutter_open = False
 
-    def execute(self, done: set[int]) -> tuple[str, str]:
-        """Run every step of the plan not in ``done``; return (status, message).
+    def execute(self, done: set[int] | np.ndarray) -> tuple[str, str]:
+        """Run every step of the plan not done; return (status, message).
 
-        Ctrl-C and SIGTERM (StopRequested) end with "interrupted"; RunFault with "fault". The
-        shutter is closed before this returns or raises, whatever happened.
+        ``done`` holds the indices of the steps recorded before, or is a boolean mask over
+        the steps. Ctrl-C and SIGTERM (StopRequested) end with "interrupted"; RunFault and a
+        disk that refuses to store (StorageError) with "fault". The shutter is closed before
+        this returns or raises, whatever happened.
         """
         status, message = "fault", "the run stopped before it started"
         total = len(self.plan.steps)
-        n_done = len(done)
+        mask = _done_mask(done, total)
+        n_done = int(np.count_nonzero(mask))
         try:
             self.connect()
             for step in self.plan.steps:
-                if step.index in done:
+                if mask[step.index]:
                     continue
                 self._wait_for_pass(step)
                 self._taken = {}
@@ -486,11 +496,7 @@ class Runner:
                 self.log(_reading_line(step, reading, self.units))
                 self._tell(self.monitor.step_done, step, reading, n_done, total)
                 if self.wall() - self._last_refresh >= self._refresh_every_s:
-                    t0 = self.wall()
-                    self.store.refresh("running")
-                    self._last_refresh = self.wall()
-                    # Rebuilding the .h5 grows with the run: keep it under ~5% of the time.
-                    self._refresh_every_s = max(self.policy.refresh_s, 20.0 * (self._last_refresh - t0))
+                    self._refresh()
             status, message = "complete", f"all {total} steps recorded"
         except (KeyboardInterrupt, StopRequested) as exc:
             status = "interrupted"
@@ -498,6 +504,11 @@ class Runner:
             message += f" after {n_done} of {total} steps; `lightloom resume` continues it"
         except RunFault as exc:
             status, message = "fault", exc.one_line()
+        except StorageError as exc:
+            # The disk refused (full, read-only, failing): stop safely, then let the caller
+            # report the one line that says what to do.
+            self._finish("fault", exc.one_line())
+            raise
         except InstrumentError as exc:
             status, message = "fault", f"{exc}; check the instrument, then `lightloom resume`"
         except BaseException as exc:
@@ -506,6 +517,15 @@ class Runner:
             raise
         message = self._finish(status, message)
         return status, message
+
+    def _refresh(self) -> None:
+        """Bring the run file up to the journal; its cost is O(new readings)."""
+        t0 = self.wall()
+        self.store.refresh("running")
+        self._last_refresh = self.wall()
+        # A guard, not the rule: a refresh costs O(new readings), but on a loaded machine or a
+        # slow disk keep it under ~10% of the time, and the file never more than 10 s behind.
+        self._refresh_every_s = max(self.policy.refresh_s, min(MAX_REFRESH_S, 10.0 * (self._last_refresh - t0)))
 
     def _finish(self, status: str, message: str) -> str:
         """Close the shutter, record the final event, close the devices; return the final message."""
@@ -535,14 +555,37 @@ class Runner:
         due = self.run_start + step.pass_index * self.plan.pass_interval_s
         wait = due - self.now()
         if wait > 0:
+            # Readers see every reading of the pass before the wait, not after it.
+            self._refresh()
             if wait > SHUTTER_CLOSED_WAIT_S:
                 # Nobody needs the beam until the next pass: keep it blocked meanwhile.
                 self._set_shutter(False)
                 self.log("shutter closed while waiting for the next pass")
-            self.log(f"pass {step.pass_index + 1}: waiting {wait:.0f} s for its start time")
-            self._tell(self.monitor.info, f"waiting {wait:.0f} s for pass {step.pass_index + 1}")
+            number, passes = step.pass_index + 1, self.plan.passes
+            self.log(f"pass {number} of {passes}: waiting {hms(wait)} (h:mm:ss) for its start time")
+            waiting = getattr(self.monitor, "waiting", None)
+            if waiting is not None:
+                self._tell(waiting, wait, number, passes)
             self.sleep(wait)
 
+
+def hms(seconds: float) -> str:
+    """A duration as h:mm:ss (``0:00:22``, ``11:30:21``), rounded to the second; ``-:--:--`` if unknown."""
+    if not math.isfinite(seconds) or seconds < 0:
+        return "-:--:--"
+    s = int(round(seconds))
+    return f"{s // 3600}:{(s % 3600) // 60:02d}:{s % 60:02d}"
+
+
+def _done_mask(done: set[int] | np.ndarray, total: int) -> np.ndarray:
+    if isinstance(done, np.ndarray) and done.dtype == bool:
+        mask = np.zeros(total, dtype=bool)
+        mask[: min(total, len(done))] = done[:total]
+        return mask
+    mask = np.zeros(total, dtype=bool)
+    index = np.fromiter(done, dtype=np.int64, count=len(done))
+    mask[index[(index >= 0) & (index < total)]] = True
+    return mask
 
 
 

@@ -10,6 +10,7 @@ import datetime as dt
 import signal
 import sys
 import time
+import uuid
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from pathlib import Path
@@ -24,8 +25,8 @@ from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, Be
 from lightloom.sequencer.optics.states import BASIS_LABELS
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
-from lightloom.sequencer.run.beam import initial_beam_level, ports_watch_the_beam
-from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested
+from lightloom.sequencer.run.beam import beam_level, ports_watch_the_beam
+from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, hms
 from lightloom.sequencer.run.safety import LASER_SAFETY_CAUTION
 from lightloom.sequencer.outputs import check_new_output
 from lightloom.sequencer.model.records import FORMAT_VERSION, Event, PortLayout, RunHeader, RunSources
@@ -152,6 +153,7 @@ def make_header(protocol: Protocol, bench: Bench, plan: StepList, units: str, pr
         target_label=protocol.target_label,
         reference_device=bench.roles.reference,
         wavelength_nm=bench.wavelength_nm,
+        run_id=str(uuid.uuid4()),
     )
 
 
@@ -201,14 +203,28 @@ class RunLog:
 
     def __init__(self, path: Path) -> None:
         self.path = path
-        self._f = open(path, "a", encoding="utf-8", buffering=1)
+        try:
+            self._f = open(path, "a", encoding="utf-8", buffering=1)
+        except OSError:
+            self._f = None  # a log that cannot be written must not stop the run (the journal is truth)
 
     def __call__(self, line: str) -> None:
+        if self._f is None:
+            return
         stamp = dt.datetime.now(dt.timezone.utc).isoformat(timespec="milliseconds")
-        self._f.write(f"{stamp} {line}\n")
+        try:
+            self._f.write(f"{stamp} {line}\n")
+        except OSError:
+            self._close_quietly()
 
     def close(self) -> None:
-        self._f.close()
+        self._close_quietly()
+
+    def _close_quietly(self) -> None:
+        f, self._f = self._f, None
+        if f is not None:
+            with suppress(OSError):
+                f.close()
 
 
 def log_path_for(out: Path) -> Path:
@@ -255,13 +271,13 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
         header = store.header
         protocol, bench = _recover_inputs(header)
         plan = compile_protocol(protocol, bench)
-        if plan.to_json() != header.steps_json:
+        if not _same_steps(plan, header.steps_json):
             raise UsageError(
                 f"{out_path}: the protocol and bench compile to a different plan than the one stored "
                 f"(stored by lightloom {header.tool_version}, this is {__version__}); resume it with the "
                 "version that started it, or start a new run"
             )
-        done = {int(i) for i in store.readings.step_index}
+        done = store.summary.done.copy()
         assembled = assemble(bench, continue_at=_simulated_clock_at(store) if bench.is_simulated else None)
     except BaseException:
         # A refused resume changes nothing: the run keeps its status and message (e.g. the fault).
@@ -270,6 +286,17 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
     if store.bytes_cut:
         _say(console, f"cut a torn journal tail of {store.bytes_cut} bytes (a reading that was never reported)")
     return _execute(protocol, bench, plan, assembled, store, out_path, done, console, live, resumed=True)
+
+
+def _same_steps(plan: StepList, stored_json: str) -> bool:
+    """True if ``plan`` is the step list stored (compact form, or the verbose one of older runs)."""
+    text = plan.to_json()
+    if text == stored_json:
+        return True
+    try:
+        return StepList.from_json(stored_json).to_json() == text
+    except (ValueError, KeyError, TypeError):
+        return False
 
 
 def _simulated_clock_at(store: RunStore) -> tuple[float, float] | None:
@@ -282,8 +309,8 @@ def _simulated_clock_at(store: RunStore) -> tuple[float, float] | None:
     if not starts:
         return None
     epoch = starts[0]
-    r = store.readings
-    reached = max([e.t for e in store.events] + ([float(np.max(r.t_end))] if len(r) else []))
+    t_last = store.summary.t_last
+    reached = max([e.t for e in store.events] + ([t_last] if t_last is not None else []))
     return epoch, max(0.0, reached - epoch)
 
 
@@ -315,14 +342,22 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
     table = table_model(bench)
     log = RunLog(log_path_for(out_path))
     est = estimate_steps(plan, table)
-    left = sum(t for s, t in zip(plan.steps, est.step_seconds) if s.index not in done)
+    done = _as_mask(done, len(plan.steps))
+    n_done = int(np.count_nonzero(done))
+    from lightloom.sequencer.run.display import Schedule
+
+    work_s = np.asarray(est.step_seconds, float) - np.asarray(est.step_wait_seconds, float)
+    pass_index = plan.columns.pass_index.astype(np.int64)
+    run_start = _run_start(store, assembled.now)
+    schedule = Schedule.of(work_s, pass_index, done, plan.passes, run_start, plan.pass_interval_s)
+    left = schedule.seconds_left(assembled.now())
     monitor = None
     frames = None
     try:
         verb = "resume" if resumed else "start"
         log(f"{verb}: protocol {protocol.name} on bench {bench.name} -> {out_path} "
-            f"({len(plan.steps) - len(done)} of {len(plan.steps)} steps to go, about {left:.0f} s)")
-        store.event(Event(assembled.now(), verb, f"lightloom {__version__}; {len(done)} of {len(plan.steps)} steps recorded before"))
+            f"({len(plan.steps) - n_done} of {len(plan.steps)} steps to go, about {hms(left)} h:mm:ss)")
+        store.event(Event(assembled.now(), verb, f"lightloom {__version__}; {n_done} of {len(plan.steps)} steps recorded before"))
         if not bench.is_simulated:
             sys.stderr.write(LASER_SAFETY_CAUTION)
             sys.stderr.flush()
@@ -336,13 +371,16 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             log(blind)
             _say(console, blind)
         _say(console, f"{'resuming' if resumed else 'running'} {protocol.name} on {bench.name}: "
-                      f"{len(plan.steps) - len(done)} steps, about {left:.0f} s -> {out_path}")
+                      f"{len(plan.steps) - n_done} steps, about {hms(left)} (h:mm:ss) -> {out_path}")
         runner_kwargs = {}
         if live and console is not None:
             from lightloom.sequencer.run.display import TerminalMonitor
 
-            monitor = TerminalMonitor(console, f"lightloom {protocol.name} on {bench.name}", plan.port_names,
-                                      store.header.port_units, left)
+            monitor = TerminalMonitor(
+                console, f"lightloom {protocol.name} on {bench.name}", plan.port_names,
+                store.header.port_units, schedule, steps_done=n_done, steps_total=len(plan.steps),
+                passes=plan.passes, work_s=work_s, now=assembled.now,
+            )
             monitor.__enter__()
             runner_kwargs["monitor"] = monitor
         frames = _frame_journal(bench, out_path)
@@ -350,10 +388,10 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             runner_kwargs.update(frames=frames, frames_averaged=protocol.frames_averaged)
         runner = Runner(plan, table, assembled.rig, store, policy_for(bench), now=assembled.now,
                         sleep=assembled.sleep, wall=time.monotonic, log=log, units=store.header.port_units,
-                        run_start=_run_start(store, assembled.now),
+                        run_start=run_start,
                         parallel_reads=not (bench.is_simulated and bench.simulation.time_scale == 0),
                         begin_reading=getattr(assembled.simulated_table, "begin_step", None),
-                        beam_baseline=initial_beam_level(store.readings, table),
+                        beam_baseline=_initial_beam_level(store, table),
                         **runner_kwargs)
         with stop_on_sigterm():
             status, message = runner.execute(done)
@@ -363,6 +401,8 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
         resume = f"`lightloom resume {out_path}` continues the run"
         if isinstance(exc, (KeyboardInterrupt, StopRequested)):
             status, message = "interrupted", f"stopped by Ctrl-C or SIGTERM; {resume}"
+        elif isinstance(exc, StorageError):
+            status, message = "fault", f"{exc.one_line()}"
         else:
             status, message = "fault", f"internal error {exc!r}; please report this; {resume}"
         with suppress(Exception):
@@ -400,8 +440,22 @@ def _publish_frames(frames, store: RunStore, out_path: Path, console: Console | 
         _say(console, f"warning: the frames stay in {out_path.name}.frames only: {exc}")
 
 
+def _initial_beam_level(store: RunStore, table) -> float | None:
+    """The beam baseline of a resumed run, from its first shutter-open reading (None if none)."""
+    row = store.summary.first_beam_row
+    if row is None:
+        return None
+    return beam_level("measure", row["values"], float(row["reference_w"]), table)
+
+
+def _as_mask(done, total: int) -> np.ndarray:
+    if isinstance(done, np.ndarray) and done.dtype == bool:
+        return done[:total]
+    mask = np.zeros(total, dtype=bool)
+    mask[[i for i in done if 0 <= i < total]] = True
+    return mask
+
+
 def _run_start(store: RunStore, now: Callable[[], float]) -> float:
-    r = store.readings
-    if len(r):
-        return float(np.min(r.t_start))
-    return now()
+    t_first = store.summary.t_first
+    return t_first if t_first is not None else now()

@@ -21,3 +21,7 @@ class StorageWriteError(StorageError):
     """Writing or syncing to disk failed during a run (disk full, I/O error): exit status 3."""
 
     exit_status = EXIT_FAULT
+
+
+class RunFileBusyError(StorageError):
+    """Another process (a reader) holds the run file open at this moment; try again later."""

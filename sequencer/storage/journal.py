@@ -13,9 +13,10 @@ from __future__ import annotations
 
 import os
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
+from typing import BinaryIO
 
 import numpy as np
 
@@ -24,8 +25,8 @@ from lightloom.sequencer.errors import StorageError
 from lightloom.sequencer.storage.atomic import publish, sync_fd, temp_path
 from lightloom.sequencer.storage.codec import (
     JOURNAL_FORMAT, TYPE_EVENT, TYPE_HEADER, TYPE_READING, TYPE_STATUS, Damage, ReadingLayout,
-    decode_event, decode_header, decode_rows, decode_status, encode_event, encode_header,
-    encode_reading, encode_status, frame, scan_frames, table_from_rows,
+    _count_intact_after, _frame_at, decode_event, decode_header, decode_rows, decode_status,
+    encode_event, encode_header, encode_reading, encode_status, frame, table_from_rows,
 )
 from lightloom.sequencer.storage.errors import JournalDamagedError, RunExistsError, RunInUseError, StorageWriteError
 from lightloom.sequencer.model.records import FORMAT_VERSION, Event, Reading, ReadingTable, RunHeader
@@ -44,7 +45,8 @@ class JournalContents:
 
     ``status`` is the last status recorded ("running" if none was), ``valid_bytes``
     the length of the intact records from the start, and ``damage`` where and why
-    reading stopped early (None if every byte was read).
+    reading stopped early (None if every byte was read). ``status_recorded`` is False
+    when no status record was read (a tail read from an offset may hold none).
     """
 
     header: RunHeader
@@ -54,30 +56,47 @@ class JournalContents:
     status_message: str
     valid_bytes: int
     damage: Damage | None
+    status_recorded: bool = True
 
 
 @dataclass
-class _Parsed:
-    header: RunHeader
-    layout: ReadingLayout
+class Batch:
+    """Records read from one stretch of a journal: readings (structured rows), events, status.
+
+    ``end`` is the offset just past the last intact record of the stretch; ``damage``
+    is set on the last batch when reading stopped before the end of the file.
+    """
+
     rows: np.ndarray
     events: list[Event]
-    status: str
-    status_message: str
-    valid_bytes: int
-    damage: Damage | None
+    status: tuple[float, str, str] | None
+    end: int
+    damage: Damage | None = None
 
 
-def _parse(raw: bytes, path: Path) -> _Parsed:
-    scan = scan_frames(raw)
-    if not scan.frames or scan.frames[0][0] != TYPE_HEADER:
-        why = scan.damage.reason if scan.damage else "no header record"
+CHUNK_BYTES = 8 << 20
+"""Bytes read at a time: what a scan holds in memory, whatever the length of the night."""
+
+
+def _read_head(handle: BinaryIO, path: Path) -> tuple[RunHeader, ReadingLayout, int]:
+    """The header record at the start of a journal: (header, layout, offset after it)."""
+    raw = handle.read(1 << 16)
+    while True:
+        found = _frame_at(raw, memoryview(raw), 0)
+        if found == "incomplete record":
+            more = handle.read(max(len(raw), 1 << 16))
+            if more:
+                raw += more
+                continue
+        break
+    if isinstance(found, str) or found[0] != TYPE_HEADER:
+        why = found if isinstance(found, str) else "no header record"
         raise JournalDamagedError(
-            f"{path}: the journal has no intact header ({why}, {len(raw)} bytes); it cannot be "
+            f"{path}: the journal has no intact header ({why}); it cannot be "
             "read or resumed. If a run file (.h5) sits beside it, analyze that; otherwise the "
             "run must be started again with a new --out."
         )
-    _, start, length = scan.frames[0]
+    _, start, length, end = found
     try:
         fmt, header = decode_header(raw[start:start + length])
     except ValueError as exc:
@@ -87,59 +106,136 @@ def _parse(raw: bytes, path: Path) -> _Parsed:
             f"{path}: written by a newer lightloom (journal format {fmt}, file format "
             f"{header.format_version}); upgrade lightloom to read it"
         )
-    layout = ReadingLayout.of(header)
-    reading_starts: list[int] = []
-    events: list[Event] = []
-    status, status_message = "running", ""
-    for index, (record_type, start, length) in enumerate(scan.frames[1:], start=1):
-        try:
-            if record_type == TYPE_READING:
-                if length != layout.payload_size:
-                    raise ValueError(f"reading of {length} bytes, expected {layout.payload_size}")
-                reading_starts.append(start)
-            elif record_type == TYPE_EVENT:
-                events.append(decode_event(raw[start:start + length]))
-            elif record_type == TYPE_STATUS:
-                _, status, status_message = decode_status(raw[start:start + length])
-            else:
-                raise ValueError("a second header record")
-        except (ValueError, UnicodeDecodeError) as exc:
-            raise JournalDamagedError(
-                f"{path}: record {index} has a valid checksum but bad contents ({exc}); the "
-                "journal was not written by this version of lightloom"
-            ) from exc
-    rows = decode_rows(raw, reading_starts, layout)
-    return _Parsed(header, layout, rows, events, status, status_message, scan.end, scan.damage)
+    return header, ReadingLayout.of(header), end
 
 
-def _read_bytes(path: Path) -> bytes:
+def _batches(
+    handle: BinaryIO, path: Path, layout: ReadingLayout, start: int, chunk: int = CHUNK_BYTES,
+) -> Iterator[Batch]:
+    """Every record from offset ``start`` on, a chunk at a time (memory bounded by ``chunk``)."""
+    handle.seek(start)
+    base, buf = start, handle.read(chunk)
+    while buf:
+        view = memoryview(buf)
+        pos, starts, events, status = 0, [], [], None
+        found: tuple[int, int, int, int] | str = ""
+        while pos < len(buf):
+            found = _frame_at(buf, view, pos)
+            if isinstance(found, str):
+                break
+            record_type, rstart, length, nxt = found
+            try:
+                if record_type == TYPE_READING:
+                    if length != layout.payload_size:
+                        raise ValueError(f"reading of {length} bytes, expected {layout.payload_size}")
+                    starts.append(rstart)
+                elif record_type == TYPE_EVENT:
+                    events.append(decode_event(buf[rstart:rstart + length]))
+                elif record_type == TYPE_STATUS:
+                    status = decode_status(buf[rstart:rstart + length])
+                else:
+                    raise ValueError("a second header record")
+            except (ValueError, UnicodeDecodeError) as exc:
+                raise JournalDamagedError(
+                    f"{path}: the record at byte {base + pos} has a valid checksum but bad "
+                    f"contents ({exc}); the journal was not written by this version of lightloom"
+                ) from exc
+            pos = nxt
+        rows = decode_rows(buf, starts, layout)
+        del view
+        if pos == len(buf):
+            yield Batch(rows, events, status, base + pos)
+            base, buf = base + pos, handle.read(chunk)
+            continue
+        more = handle.read(chunk)
+        if found == "incomplete record" and more:
+            # A record across the chunk boundary: carry its start into the next stretch.
+            yield Batch(rows, events, status, base + pos)
+            base, buf = base + pos, buf[pos:] + more
+            continue
+        rest = buf[pos:] + more + handle.read()
+        damage = Damage(base + pos, str(found), _count_intact_after(rest, memoryview(rest), 0))
+        yield Batch(rows, events, status, base + pos, damage)
+        return
+
+
+def _open_for_reading(path: Path) -> BinaryIO:
     try:
-        with open(path, "rb") as handle:
-            return handle.read()
+        return open(path, "rb")
     except FileNotFoundError:
         raise StorageError(f"{path}: no such journal") from None
     except OSError as exc:
         raise StorageError(f"{path}: cannot read the journal: {exc.strerror}") from exc
 
 
-def _table(parsed: _Parsed) -> ReadingTable:
+def _table(rows: np.ndarray, header: RunHeader) -> ReadingTable:
     try:
-        return table_from_rows(parsed.rows, parsed.header.element_names, parsed.header.port_names)
+        return table_from_rows(rows, header.element_names, header.port_names)
     except ValueError as exc:
         raise JournalDamagedError(f"bad reading in the journal: {exc}") from exc
 
 
-def read_journal(path: str | os.PathLike[str]) -> JournalContents:
+def iter_batches(
+    path: str | os.PathLike[str], start: int | None, end: int | None = None,
+) -> Iterator[Batch]:
+    """The records of a journal from offset ``start`` (None: after the header) up to ``end``.
+
+    ``start`` must be a record boundary (a run file's ``journal_bytes``, or a ``Batch.end``);
+    at most a chunk of the file is in memory at a time.
+    """
+    path = Path(path)
+    with _open_for_reading(path) as handle:
+        header, layout, head_end = _read_head(handle, path)
+        source: BinaryIO = handle if end is None else _Bounded(handle, end)
+        yield from _batches(source, path, layout, head_end if start is None else start)
+
+
+class _Bounded:
+    """A read-only view of a file that ends at ``end`` (records appended later are not seen)."""
+
+    def __init__(self, handle: BinaryIO, end: int) -> None:
+        self._handle, self._end = handle, end
+
+    def seek(self, offset: int) -> int:
+        return self._handle.seek(offset)
+
+    def read(self, size: int = -1) -> bytes:
+        left = max(0, self._end - self._handle.tell())
+        return self._handle.read(left if size < 0 else min(size, left))
+
+
+def read_journal_head(path: str | os.PathLike[str]) -> RunHeader:
+    """The header of a journal alone (reads its first record only)."""
+    path = Path(path)
+    with _open_for_reading(path) as handle:
+        return _read_head(handle, path)[0]
+
+
+def read_journal(path: str | os.PathLike[str], start: int | None = None) -> JournalContents:
     """Read a journal without locking or changing it; safe while another process appends.
 
     A record being appended at that moment shows as a torn tail in ``damage`` and is
-    not returned. Raises JournalDamagedError if the header is unreadable.
+    not returned. With ``start`` (a record boundary, e.g. a run file's ``journal_bytes``)
+    only the records from there on are returned. Raises JournalDamagedError if the
+    header is unreadable.
     """
     path = Path(path)
-    parsed = _parse(_read_bytes(path), path)
+    with _open_for_reading(path) as handle:
+        header, layout, head_end = _read_head(handle, path)
+        parts, events = [], []
+        status, message, recorded = "running", "", False
+        end, damage = head_end, None
+        for batch in _batches(handle, path, layout, head_end if start is None else start):
+            parts.append(batch.rows)
+            events.extend(batch.events)
+            if batch.status is not None:
+                _, status, message = batch.status
+                recorded = True
+            end, damage = batch.end, batch.damage
+    rows = np.concatenate(parts) if len(parts) > 1 else (parts[0] if parts else np.empty(0, layout.dtype))
+    del parts
     return JournalContents(
-        parsed.header, _table(parsed), tuple(parsed.events), parsed.status,
-        parsed.status_message, parsed.valid_bytes, parsed.damage,
+        header, _table(rows, header), tuple(events), status, message, end, damage, recorded,
     )
 
 
@@ -178,22 +274,27 @@ def _lock(fd: int, path: Path, sleep: Callable[[float], None] = time.sleep) -> N
 
 
 class Journal:
-    """An open journal, locked for appending, with everything it held when opened."""
+    """An open journal, locked for appending.
 
-    def __init__(self, path: Path, fd: int, parsed: _Parsed, bytes_cut: int) -> None:
+    It keeps no readings in memory (the file holds them; :func:`read_journal` reads
+    them back), only their count, the run's events and its last status.
+    """
+
+    def __init__(
+        self, path: Path, fd: int, header: RunHeader, size: int, n_readings: int,
+        events: list[Event], status: str, status_message: str, bytes_cut: int,
+    ) -> None:
         self.path = path
-        self.header = parsed.header
-        self.layout = parsed.layout
+        self.header = header
+        self.layout = ReadingLayout.of(header)
         self.bytes_cut = bytes_cut
         """Bytes of a damaged tail cut off when the journal was opened (0 if none)."""
-        self.status = parsed.status
-        self.status_message = parsed.status_message
+        self.status = status
+        self.status_message = status_message
         self._fd: int | None = fd
-        self._size = parsed.valid_bytes
-        self._rows = parsed.rows
-        self._n = len(parsed.rows)
-        self._events = parsed.events
-        self._table: ReadingTable | None = None
+        self._size = size
+        self._n = n_readings
+        self._events = events
         self._broken: str | None = None
 
     @classmethod
@@ -209,7 +310,13 @@ class Journal:
             raise RunExistsError(_exists_message(path))
         data = frame(TYPE_HEADER, encode_header(header))
         tmp = temp_path(path)
-        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_APPEND, 0o644)
+        try:
+            fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_APPEND, 0o644)
+        except OSError as exc:
+            raise StorageWriteError(
+                f"{path}: cannot create the journal: {exc.strerror}; check that the folder "
+                f"{path.parent} is writable and the disk has space, or choose another --out"
+            ) from exc
         try:
             _lock(fd, tmp)
             _write_all(fd, data)
@@ -226,17 +333,22 @@ class Journal:
                 f"{path}: cannot create the journal: {exc.strerror}; check that the disk has "
                 "space and the directory is writable"
             ) from exc
-        layout = ReadingLayout.of(header)
-        rows = np.empty(0, dtype=layout.dtype)
-        parsed = _Parsed(header, layout, rows, [], "running", "", len(data), None)
-        return cls(path, fd, parsed, 0)
+        except BaseException:
+            os.close(fd)
+            tmp.unlink(missing_ok=True)
+            raise
+        return cls(path, fd, header, len(data), 0, [], "running", "", 0)
 
     @classmethod
-    def open(cls, path: str | os.PathLike[str]) -> Journal:
+    def open(
+        cls, path: str | os.PathLike[str], observe: Callable[[np.ndarray], None] | None = None,
+    ) -> Journal:
         """Open a journal for appending; a torn tail (what a kill leaves) is cut off.
 
-        Raises JournalDamagedError, and changes nothing, if intact records follow a bad
-        one: cutting there would destroy readings that were reported.
+        The file is read a chunk at a time; ``observe`` is called with each chunk's
+        readings (structured rows of the layout's dtype), so a caller can summarise them
+        without holding them. Raises JournalDamagedError, and changes nothing, if intact
+        records follow a bad one: cutting there would destroy readings that were reported.
         """
         path = Path(path)
         try:
@@ -247,24 +359,34 @@ class Journal:
             raise StorageError(f"{path}: cannot open the journal: {exc.strerror}") from exc
         try:
             _lock(fd, path)
-            raw = _read_bytes(path)
-            parsed = _parse(raw, path)
+            with _open_for_reading(path) as handle:
+                header, layout, end = _read_head(handle, path)
+                n, events, status, message, damage = 0, [], "running", "", None
+                for batch in _batches(handle, path, layout, end):
+                    n += len(batch.rows)
+                    if observe is not None and len(batch.rows):
+                        observe(batch.rows)
+                    events.extend(batch.events)
+                    if batch.status is not None:
+                        _, status, message = batch.status
+                    end, damage = batch.end, batch.damage
+                total = os.fstat(handle.fileno()).st_size
             bytes_cut = 0
-            if parsed.damage is not None:
-                if parsed.damage.intact_after:
+            if damage is not None:
+                if damage.intact_after:
                     raise JournalDamagedError(
-                        f"{path}: damaged at byte {parsed.damage.offset} "
-                        f"({parsed.damage.reason}) with {parsed.damage.intact_after} intact "
-                        "records after the damage; lightloom will not cut them off. Keep a "
-                        "copy of the journal; analyze still reads the records before the damage."
+                        f"{path}: damaged at byte {damage.offset} ({damage.reason}) with "
+                        f"{damage.intact_after} intact records after the damage; lightloom will "
+                        "not cut them off. Keep a copy of the journal; analyze still reads the "
+                        "records before the damage."
                     )
-                bytes_cut = len(raw) - parsed.valid_bytes
-                os.ftruncate(fd, parsed.valid_bytes)
+                bytes_cut = total - end
+                os.ftruncate(fd, end)
                 sync_fd(fd)
         except BaseException:
             os.close(fd)
             raise
-        return cls(path, fd, parsed, bytes_cut)
+        return cls(path, fd, header, end, n, events, status, message, bytes_cut)
 
     @property
     def closed(self) -> bool:
@@ -272,12 +394,14 @@ class Journal:
         return self._fd is None
 
     @property
+    def size(self) -> int:
+        """Bytes of intact records in the journal (where the next record goes)."""
+        return self._size
+
+    @property
     def readings(self) -> ReadingTable:
-        """Every reading in the journal, as columns."""
-        if self._table is None or len(self._table) != self._n:
-            h = self.header
-            self._table = table_from_rows(self._rows[:self._n], h.element_names, h.port_names)
-        return self._table
+        """Every reading in the journal, read back from the file (for tests and tools)."""
+        return read_journal(self.path).readings
 
     @property
     def n_readings(self) -> int:
@@ -292,8 +416,8 @@ class Journal:
     def append_reading(self, reading: Reading) -> None:
         """Append one reading; it is on disk when this returns."""
         payload = encode_reading(reading, self.layout)
-        index = self._n
-        self._append(frame(TYPE_READING, payload), lambda: self._keep_row(index, payload))
+        count = self._n + 1
+        self._append(frame(TYPE_READING, payload), lambda: self._keep_count(count))
 
     def append_event(self, event: Event) -> None:
         """Append one event; it is on disk when this returns."""
@@ -314,16 +438,9 @@ class Journal:
             os.close(self._fd)
             self._fd = None
 
-    def _keep_row(self, index: int, payload: bytes) -> None:
-        # Idempotent (keeps row `index`, whatever was kept after it): see _settle.
-        if index == len(self._rows):
-            # Grow by doubling: appends stay O(1) on average, refresh reads one array.
-            grown = np.empty(max(1024, 2 * len(self._rows)), dtype=self.layout.dtype)
-            grown[:index] = self._rows[:index]
-            self._rows = grown
-        size = len(payload)
-        self._rows.view(np.uint8)[index * size:(index + 1) * size] = np.frombuffer(payload, np.uint8)
-        self._n = index + 1
+    def _keep_count(self, count: int) -> None:
+        # Idempotent (sets, never adds): see _settle.
+        self._n = count
 
     def _keep_event(self, index: int, event: Event) -> None:
         del self._events[index:]

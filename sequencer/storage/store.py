@@ -1,26 +1,39 @@
 """The runner's storage interface (RunStore) and the reader every analysis uses (load_run).
 
-A run is two files: ``RUN.h5`` (derived, self-describing, replaced atomically) and
+A run is two files: ``RUN.h5`` (derived, self-describing, grown by appending) and
 ``RUN.h5.journal`` (append-only, the record of truth). Every reading and event goes to
-the journal first and is on disk when ``record``/``event`` returns; ``refresh`` rebuilds
-the .h5 from what the journal holds, so a kill at any moment loses nothing reported,
-and ``reopen`` (resume) rebuilds a missing or unusable .h5 from the journal.
+the journal first and is on disk when ``record``/``event`` returns; ``refresh`` appends
+to the .h5 what the journal gained since the last refresh (the .h5 records how much of
+the journal it holds in ``journal_bytes``), so a refresh costs O(new readings) and a
+kill at any moment loses nothing reported. ``reopen`` (resume) brings the .h5 up to
+the journal, rebuilding it from the journal if it is missing or unusable. Neither the
+store nor resume holds the readings in memory: the journal is read a chunk at a time.
 """
 
 from __future__ import annotations
 
 import os
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
 from pathlib import Path
+
+import numpy as np
 
 from lightloom.sequencer.errors import StorageError
 
 from lightloom.sequencer.storage.atomic import stale_temp_paths
-from lightloom.sequencer.storage.errors import RunExistsError
-from lightloom.sequencer.storage.journal import Journal, read_journal, writer_active
-from lightloom.sequencer.model.records import FORMAT_VERSION, Event, Reading, ReadingTable, RunData, RunHeader
-from lightloom.sequencer.storage.runfile import read_runfile, read_runfile_header, utc_now_iso, write_runfile
+from lightloom.sequencer.storage.errors import RunExistsError, RunFileBusyError, StorageWriteError
+from lightloom.sequencer.storage.journal import (
+    Batch, Journal, read_journal, read_journal_head, iter_batches, writer_active,
+)
+from lightloom.sequencer.model.records import (
+    FORMAT_VERSION, READING_KINDS, Event, Reading, ReadingTable, RunData, RunHeader,
+)
+from lightloom.sequencer.storage.runfile import (
+    RunFileState, _StepsSeen, append_runfile, read_runfile, read_runfile_state,
+    read_runfile_with_offset, utc_now_iso, write_runfile,
+)
 
 JOURNAL_SUFFIX = ".journal"
 FINAL_STATUSES = ("complete", "interrupted", "fault")
@@ -58,19 +71,82 @@ def _shown_status(status: str, message: str, h5_path: Path, journal_path: Path) 
     return status, message
 
 
+def same_run(a: RunHeader, b: RunHeader) -> bool:
+    """True if two headers are of one run: same run identity (or, before identities, same header)."""
+    if a.run_id and b.run_id:
+        return a.run_id == b.run_id
+    return a == b
+
+
+def _foreign_message(h5_path: Path, journal_path: Path, file_header: RunHeader, journal_header: RunHeader) -> str:
+    return (
+        f"{h5_path}: the journal {journal_path.name} beside it belongs to another run "
+        f"({journal_header.protocol_name}, started {journal_header.created_utc}; the run file is "
+        f"{file_header.protocol_name}, started {file_header.created_utc}); nothing was changed. "
+        "Put the run's own journal beside it, or resume the other run from its own .h5 name"
+    )
+
+
+_BACKGROUND = READING_KINDS.index("background")
+
+
+@dataclass
+class ResumeSummary:
+    """What resume needs to know of the readings so far, gathered a chunk at a time.
+
+    ``done`` marks the steps with a reading (one flag per step of the plan);
+    ``first_beam_row`` is the first reading taken with the shutter open (a structured row
+    of the journal layout), ``t_first`` the earliest reading start and ``t_last`` the latest
+    reading end (UNIX s).
+    """
+
+    done: np.ndarray
+    first_beam_row: np.ndarray | None = None
+    t_first: float | None = None
+    t_last: float | None = None
+    n_readings: int = 0
+
+    def observe(self, rows: np.ndarray) -> None:
+        self.n_readings += len(rows)
+        steps = rows["step_index"]
+        inside = steps[(steps >= 0) & (steps < len(self.done))]
+        self.done[inside] = True
+        if self.first_beam_row is None:
+            open_ = np.flatnonzero(rows["kind"] != _BACKGROUND)
+            if open_.size:
+                self.first_beam_row = rows[open_[0]].copy()
+        t = float(np.min(rows["t_start"]))
+        self.t_first = t if self.t_first is None else min(self.t_first, t)
+        t = float(np.max(rows["t_end"]))
+        self.t_last = t if self.t_last is None else max(self.t_last, t)
+
+    @property
+    def steps_done(self) -> int:
+        return int(np.count_nonzero(self.done))
+
+
 class RunStore:
-    """Storage of one run for the runner: durable appends, periodic atomic .h5 rebuilds.
+    """Storage of one run for the runner: durable appends, periodic appends to the .h5.
 
     Build it with :meth:`create` (new run) or :meth:`reopen` (resume); ``clock``
     returns UNIX seconds and stamps status records and ``updated_utc``.
     """
 
-    def __init__(self, h5_path: Path, journal: Journal, clock: Callable[[], float]) -> None:
+    def __init__(
+        self, h5_path: Path, journal: Journal, clock: Callable[[], float],
+        summary: ResumeSummary | None = None,
+    ) -> None:
         self.h5_path = h5_path
         self.journal_path = journal.path
         self._journal = journal
         self._clock = clock
-        self._written: tuple[int, int, str, str] | None = None
+        self.summary = summary or ResumeSummary(np.zeros(max(0, journal.header.steps_total), bool))
+        self._seen = _StepsSeen(journal.header.steps_total)
+        self._seen.seen = self.summary.done
+        self._seen.count = self.summary.steps_done
+        self._file_bytes = 0
+        self._file_events = 0
+        self._file_status: tuple[str, str] | None = None
 
     @classmethod
     def create(
@@ -96,11 +172,20 @@ class RunStore:
             raise RunExistsError(_exists_message(h5_path, journal_path)) from None
         store = cls(h5_path, journal, clock)
         try:
-            store._write("running", "", overwrite=False)
+            store._rebuild("running", "", overwrite=False)
         except FileExistsError:
             journal.close()
             journal_path.unlink(missing_ok=True)
             raise RunExistsError(_exists_message(h5_path, h5_path)) from None
+        except StorageWriteError as exc:
+            # Nothing was measured: leave no half-made run behind on a full or read-only disk.
+            journal.close()
+            journal_path.unlink(missing_ok=True)
+            reason = exc.one_line().split(": ", 1)[-1].split(";")[0]
+            raise StorageWriteError(
+                f"{h5_path}: cannot start the run: {reason}; nothing was measured or kept: free "
+                "disk space or choose another --out"
+            ) from exc
         except BaseException:
             journal.close()
             raise
@@ -110,12 +195,13 @@ class RunStore:
     def reopen(
         cls, h5_path: str | os.PathLike[str], *, clock: Callable[[], float] = time.time,
     ) -> RunStore:
-        """Open a stopped run to resume it; its header, readings and events are attributes.
+        """Open a stopped run to resume it; ``summary`` says which steps are done.
 
         A torn journal tail is cut (``bytes_cut`` says how much) and the run file is
-        rebuilt from the journal at once, so it is whole even if it was missing or
-        unusable. The status stays as recorded ("interrupted" if the run never closed)
-        until the runner calls :meth:`refresh`.
+        brought up to the journal at once (appended to, or rebuilt if it is missing or
+        unusable). A run file whose journal is another run's is refused (StorageError)
+        and neither file is changed. The status stays as recorded ("interrupted" if the
+        run never closed) until the runner calls :meth:`refresh`.
         """
         h5_path, journal_path = run_paths(h5_path)
         if not journal_path.exists():
@@ -126,15 +212,41 @@ class RunStore:
                     "is, or start a new run with another --out"
                 )
             raise StorageError(f"{h5_path}: no such run (neither the .h5 nor its journal exists)")
-        journal = Journal.open(journal_path)
+        state: RunFileState | None = None
+        if h5_path.exists():
+            try:
+                state = read_runfile_state(h5_path)
+            except StorageError:
+                state = None  # unusable: rebuilt from the journal below
+            if state is not None:
+                journal_header = read_journal_head(journal_path)
+                if not same_run(state.header, journal_header):
+                    raise StorageError(_foreign_message(h5_path, journal_path, state.header, journal_header))
+        header = read_journal_head(journal_path)
+        summary = ResumeSummary(np.zeros(max(0, header.steps_total), dtype=bool))
+        journal = Journal.open(journal_path, observe=summary.observe)
         try:
             for stale in stale_temp_paths(h5_path) + stale_temp_paths(journal_path):
                 stale.unlink(missing_ok=True)
-            store = cls(h5_path, journal, clock)
+            store = cls(h5_path, journal, clock, summary)
             status, message = journal.status, journal.status_message
             if status == "running":
                 status, message = "interrupted", STOPPED_WITHOUT_CLOSING.format(path=h5_path)
-            store._write(status, message, overwrite=True)
+            usable = (
+                state is not None and state.journal_bytes is not None
+                and state.journal_bytes <= journal.size
+            )
+            if usable:
+                assert state is not None and state.journal_bytes is not None
+                store._file_bytes, store._file_events = state.journal_bytes, state.n_events
+                try:
+                    store._catch_up(status, message)
+                except (StorageWriteError, RunFileBusyError):
+                    raise
+                except StorageError:
+                    usable = False
+            if not usable:
+                store._rebuild(status, message, overwrite=True)
         except BaseException:
             journal.close()
             raise
@@ -147,8 +259,8 @@ class RunStore:
 
     @property
     def readings(self) -> ReadingTable:
-        """Every reading recorded so far, as columns."""
-        return self._journal.readings
+        """Every reading recorded so far, read back from the journal (tests and tools)."""
+        return read_journal(self.journal_path).readings
 
     @property
     def n_readings(self) -> int:
@@ -170,6 +282,11 @@ class RunStore:
         """True once :meth:`close` or :meth:`release` has run."""
         return self._journal.closed
 
+    @property
+    def lag_bytes(self) -> int:
+        """Journal bytes not yet in the run file (0 right after a refresh)."""
+        return self._journal.size - self._file_bytes
+
     def record(self, reading: Reading) -> None:
         """Append a reading to the journal; it survives a kill once this returns."""
         self._journal.append_reading(reading)
@@ -179,27 +296,43 @@ class RunStore:
         self._journal.append_event(event)
 
     def refresh(self, status: str = "running", message: str = "") -> bool:
-        """Rebuild the run file from the journal if anything changed; True if it wrote.
+        """Append to the run file what the journal gained; True if it wrote.
 
-        A new status or message is first recorded in the journal. Cost grows with the
-        number of readings (about 1.2 kB each for 4 ports): see the storage benchmark.
+        A new status or message is first recorded in the journal. Costs O(new readings);
+        while a reader holds the run file the refresh is skipped (False) and the next
+        one catches up.
         """
         journal = self._journal
         if (status, message) != (journal.status, journal.status_message):
             journal.append_status(self._clock(), status, message)
-        if self._written == (journal.n_readings, len(journal.events), status, message):
+        try:
+            return self._catch_up(status, message)
+        except RunFileBusyError:
             return False
-        self._write(status, message, overwrite=True)
-        return True
 
     def close(self, status: str, message: str = "") -> None:
-        """Record the final status, rebuild the run file and release the journal."""
+        """Record the final status, bring the run file up to date and release the journal.
+
+        If the run file is busy (a reader holds it) the close waits a little for it;
+        the journal holds the final status whatever happens.
+        """
         if status not in FINAL_STATUSES:
             raise ValueError(f"final status {status!r}; expected one of {FINAL_STATUSES}")
         if self.closed:
             return
         try:
-            self.refresh(status, message)
+            journal = self._journal
+            if (status, message) != (journal.status, journal.status_message):
+                journal.append_status(self._clock(), status, message)
+            deadline = time.monotonic() + 10.0
+            while True:
+                try:
+                    self._catch_up(status, message)
+                    break
+                except RunFileBusyError:
+                    if time.monotonic() > deadline:
+                        break
+                    time.sleep(0.05)
         finally:
             self._journal.close()
 
@@ -207,50 +340,118 @@ class RunStore:
         """Release the journal without recording anything (e.g. after a refused resume)."""
         self._journal.close()
 
-    def _write(self, status: str, message: str, *, overwrite: bool) -> None:
+    def _catch_up(self, status: str, message: str) -> bool:
+        """Append the journal's records past ``_file_bytes`` to the run file."""
         journal = self._journal
-        key = (journal.n_readings, len(journal.events), status, message)
-        write_runfile(
-            self.h5_path, journal.header, journal.readings, journal.events, status, message,
-            updated_utc=utc_now_iso(self._clock()), overwrite=overwrite,
+        if self._file_bytes == journal.size and self._file_status == (status, message):
+            return False
+        wrote = False
+        for batch in iter_batches(self.journal_path, self._file_bytes, journal.size):
+            self._append(batch, status, message)
+            wrote = True
+        if not wrote:
+            self._append(Batch(np.empty(0, journal.layout.dtype), [], None, self._file_bytes),
+                         status, message)
+        return True
+
+    def _append(self, batch: Batch, status: str, message: str) -> None:
+        # Counting before the write is right even if it fails: a retry adds nothing new.
+        self._seen.add(batch.rows["step_index"])
+        append_runfile(
+            self.h5_path, batch.rows, batch.events, status, message,
+            updated_utc=utc_now_iso(self._clock()), steps_done=self._seen.count,
+            journal_bytes=batch.end,
         )
-        self._written = key
+        self._file_bytes = batch.end
+        self._file_events += len(batch.events)
+        self._file_status = (status, message)
+
+    def _rebuild(self, status: str, message: str, *, overwrite: bool) -> None:
+        """Write the run file anew from the whole journal, a chunk at a time."""
+        journal = self._journal
+        batches = iter_batches(self.journal_path, None, journal.size)
+        end = [None]
+
+        def pieces() -> Iterator[tuple[np.ndarray, list[Event]]]:
+            for batch in batches:
+                end[0] = batch.end
+                yield batch.rows, batch.events
+
+        write_runfile(
+            self.h5_path, journal.header, np.empty(0, journal.layout.dtype), [], status, message,
+            updated_utc=utc_now_iso(self._clock()), overwrite=overwrite,
+            journal_bytes=journal.size, more=pieces(),
+        )
+        self._file_bytes = journal.size
+        self._file_events = len(journal.events)
+        self._file_status = (status, message)
+
+
+def _joined(a: ReadingTable, b: ReadingTable) -> ReadingTable:
+    if len(b) == 0:
+        return a
+    columns = {
+        name: np.concatenate([getattr(a, name), getattr(b, name)])
+        for name in ("step_index", "kind", "pass_index", "point_index", "repeat_index",
+                     "commanded", "readback", "values", "reference_w", "operators", "dwell_s",
+                     "t_start", "t_end", "flags")
+    }
+    return ReadingTable(a.element_names, a.port_names, **columns)
 
 
 def load_run(path: str | os.PathLike[str]) -> RunData:
-    """Read a run for analysis, from whichever of its files is the most complete.
+    """Read a run for analysis: the run file, and the journal records it does not hold yet.
 
-    ``path`` names the .h5 or its journal. The journal is preferred when it belongs to
-    the same run and holds at least as many readings (a run still going, or killed
-    before its last refresh); a lone .h5, or one whose journal is another run's, is read
-    by itself; an unusable .h5 is replaced by the journal's contents. A "running" run
+    ``path`` names the .h5 or its journal. When the journal beside the .h5 is the same
+    run's, the .h5 is read whole and the journal only from the offset the .h5 records
+    (``journal_bytes``), so reading a run still going costs what it holds plus a few
+    seconds of journal. A lone .h5, or one whose journal is another run's, is read by
+    itself; an unusable .h5 is replaced by the journal's contents. A "running" run
     whose journal no process holds is shown as "interrupted".
     """
     h5_path, journal_path = run_paths(path)
-    file_header: RunHeader | None = None
-    file_count = 0
+    state: RunFileState | None = None
     file_error: StorageError | None = None
     if h5_path.exists():
         try:
-            file_header, file_count = read_runfile_header(h5_path)
+            state = read_runfile_state(h5_path)
         except StorageError as exc:
             file_error = exc
     chosen: RunData | None = None
+    journal_header: RunHeader | None = None
     if journal_path.exists():
         try:
-            contents = read_journal(journal_path)
+            journal_header = read_journal_head(journal_path)
         except StorageError:
-            if file_header is None:
+            if state is None:
                 raise
-        else:
-            if file_header is None or (
-                contents.header == file_header and len(contents.readings) >= file_count
-            ):
+    if journal_header is not None and (state is None or same_run(state.header, journal_header)):
+        if state is not None and state.journal_bytes is not None:
+            try:
+                data, offset = read_runfile_with_offset(h5_path)
+            except StorageError:
+                data, offset = None, None
+            if data is not None and offset is not None and offset <= journal_path.stat().st_size:
+                tail = read_journal(journal_path, start=offset)
+                if len(tail.readings) == 0 and not tail.events and not tail.status_recorded:
+                    chosen = data
+                else:
+                    status, message = (
+                        (tail.status, tail.status_message) if tail.status_recorded
+                        else (data.status, data.message)
+                    )
+                    chosen = RunData(
+                        data.header, _joined(data.readings, tail.readings),
+                        data.events + tail.events, status, message, source="journal",
+                    )
+        if chosen is None:
+            contents = read_journal(journal_path)
+            if state is None or len(contents.readings) >= state.n_readings:
                 chosen = RunData(
                     contents.header, contents.readings, contents.events, contents.status,
                     contents.status_message, source="journal",
                 )
-    if chosen is None and file_header is not None:
+    if chosen is None and state is not None:
         chosen = read_runfile(h5_path)
     if chosen is None:
         if file_error is not None:
