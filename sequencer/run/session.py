@@ -61,8 +61,11 @@ def assemble(bench: Bench, *, continue_at: tuple[float, float] | None = None) ->
     if bench.is_simulated:
         from lightloom.simulators.table import SimulatedTable
 
-        # The clock's zero is a whole UNIX second: see simulators.table.READING_GRID_S.
-        epoch, start_s = continue_at if continue_at is not None else (float(math.floor(time.time())), 0.0)
+        # An instant clock's zero is a whole UNIX second: see simulators.table.READING_GRID_S.
+        wall_now = time.time()
+        if bench.simulation.time_scale == 0:
+            wall_now = float(math.floor(wall_now))
+        epoch, start_s = continue_at if continue_at is not None else (wall_now, 0.0)
         table = SimulatedTable(bench, start_s=start_s, epoch_s=epoch)
         devices = table.devices
         wall0 = epoch
