@@ -11,6 +11,7 @@ meters add their offset and noise. The physics lives in sequencer.optics, once.
 from __future__ import annotations
 
 import math
+import time
 from dataclasses import dataclass
 from typing import Callable
 
@@ -65,12 +66,15 @@ class SimulatedTable:
         *,
         wall_sleep: Callable[[float], None] | None = None,
         time_scale: float | None = None,
+        epoch_s: float | None = None,
         start_s: float = 0.0,
     ) -> None:
         sim = bench.simulation
         if sim is None:
             raise ValueError(f"bench '{bench.name}' has no simulation section")
         self.bench = bench
+        # UNIX time of virtual time 0: what the runner's clock and the camera's timestamps add.
+        self.epoch_s = time.time() if epoch_s is None else float(epoch_s)
         kwargs = {} if wall_sleep is None else {"wall_sleep": wall_sleep}
         self.clock = SimClock(sim.time_scale if time_scale is None else time_scale, start_s=start_s, **kwargs)
         self.seed = sim.seed
@@ -152,7 +156,7 @@ class SimulatedTable:
             now = self.clock.now()
             self.clock.advance_to(math.ceil(now / READING_GRID_S) * READING_GRID_S)
         for i, device in enumerate(self.devices.values()):
-            if isinstance(device, (SimPowerMeter, SimPhotonCounter)):
+            if callable(getattr(device, "use_rng", None)):  # the detectors, cameras included
                 seq = np.random.SeedSequence(self.seed, spawn_key=(_STEP_STREAMS, i, int(step_index)))
                 device.use_rng(np.random.default_rng(seq))
 
@@ -173,6 +177,8 @@ class SimulatedTable:
                                switch_s=spec.switch_s + spec.settle_s, faults=self.faults)
         if kind == "shutter":
             return SimShutter(name, self.clock, switch_s=spec.switch_s + spec.settle_s, faults=self.faults)
+        if kind == "camera":
+            return self._camera(name, spec, rng)
         light = self._light_for(name)
         if kind == "power_meter":
             return SimPowerMeter(
@@ -185,6 +191,26 @@ class SimulatedTable:
                 dark_counts_per_s=sim.noise.dark_counts_per_s, faults=self.faults,
             )
         raise ValueError(f"device '{name}': no simulated device of kind {kind!r}")
+
+    def _camera(self, name, spec, rng) -> Device:
+        from lightloom.simulators.camera import CameraLight, make_sim_camera, polarization_povm
+
+        j = self.port_index[name]
+
+        def povm() -> np.ndarray:
+            s = self.optical_settings()
+            return polarization_povm(port_operators(self.model, self.ports, s[None, :])[0][j])
+
+        def hwp_deg() -> float:
+            stage = self.stage_of.get(COLUMN["half_wave_plate"])
+            return stage.optical_angle_deg() if stage is not None else 0.0
+
+        light = CameraLight(
+            power_w=lambda: self.source_power_w() * (1.0 - self.reference_fraction),
+            povm=povm, hwp_deg=hwp_deg, state=self.rho, wavelength_nm=self.bench.wavelength_nm,
+            epoch_s=self.epoch_s,
+        )
+        return make_sim_camera(name, spec.options, self.clock, light, rng, self.faults)
 
     # ------------------------------------------------------------------ physics
     def optical_settings(self, t_s: float | None = None) -> np.ndarray:

@@ -61,9 +61,12 @@ def assemble(bench: Bench, *, continue_at: tuple[float, float] | None = None) ->
     if bench.is_simulated:
         from lightloom.simulators.table import SimulatedTable
 
-        # The clock's zero is a whole UNIX second: see simulators.table.READING_GRID_S.
-        epoch, start_s = continue_at if continue_at is not None else (float(math.floor(time.time())), 0.0)
-        table = SimulatedTable(bench, start_s=start_s)
+        # An instant clock's zero is a whole UNIX second: see simulators.table.READING_GRID_S.
+        wall_now = time.time()
+        if bench.simulation.time_scale == 0:
+            wall_now = float(math.floor(wall_now))
+        epoch, start_s = continue_at if continue_at is not None else (wall_now, 0.0)
+        table = SimulatedTable(bench, start_s=start_s, epoch_s=epoch)
         devices = table.devices
         wall0 = epoch
         now = lambda: wall0 + table.clock.now()  # noqa: E731
@@ -110,8 +113,10 @@ def port_units(bench: Bench) -> str:
         return "W"
     if kinds == {"photon_counter"}:
         return "counts"
+    if kinds == {"camera"}:
+        return "ADU"
     file, line = bench.locate("roles.detectors")
-    raise BenchError("detectors mix power meters and photon counters; use one kind for all ports", file, line)
+    raise BenchError("detectors mix power meters, photon counters or cameras; use one kind for all ports", file, line)
 
 
 def make_header(protocol: Protocol, bench: Bench, plan: StepList, units: str, protocol_spec: str, bench_spec: str) -> RunHeader:
@@ -440,6 +445,7 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
     schedule = Schedule.of(work_s, pass_index, done, plan.passes, run_start, plan.pass_interval_s)
     left = schedule.seconds_left(assembled.now())
     monitor = None
+    frames = None
     try:
         verb = "resume" if resumed else "start"
         log(f"{verb}: protocol {protocol.name} on bench {bench.name} -> {out_path} "
@@ -470,6 +476,9 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             )
             monitor.__enter__()
             runner_kwargs["monitor"] = monitor
+        frames = _frame_journal(bench, out_path)
+        if frames is not None:
+            runner_kwargs.update(frames=frames, frames_averaged=protocol.frames_averaged)
         runner = Runner(plan, table, assembled.rig, store, policy_for(bench), now=assembled.now,
                         sleep=assembled.sleep, wall=time.monotonic, log=log, units=store.header.port_units,
                         run_start=run_start,
@@ -497,9 +506,31 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             monitor.__exit__(None, None, None)
         log.close()
     store.close(status, message)
+    if frames is not None:
+        _publish_frames(frames, store, out_path, console)
     _say(console, f"{status}: {message}")
     _say(console, f"data: {out_path}   log: {log_path_for(out_path)}")
     return STATUS_EXIT[status]
+
+
+def _frame_journal(bench: Bench, out_path: Path):
+    """The frame journal of a run on a bench with a camera (None without one)."""
+    if not any(bench.devices[d.device].kind == "camera" for d in bench.roles.detectors):
+        return None
+    from lightloom.sequencer.storage.frames import FrameJournal, frames_path_for
+
+    return FrameJournal(frames_path_for(out_path))
+
+
+def _publish_frames(frames, store: RunStore, out_path: Path, console: Console | None) -> None:
+    """Copy the reported frames into the closed run file (the frame journal stays the record)."""
+    from lightloom.sequencer.storage.frames import publish
+
+    frames.close()
+    try:
+        publish(out_path, store.readings)
+    except (OSError, StorageError) as exc:
+        _say(console, f"warning: the frames stay in {out_path.name}.frames only: {exc}")
 
 
 def _initial_beam_level(store: RunStore, table) -> float | None:
