@@ -25,6 +25,7 @@ from lightloom.sequencer.model.vocabulary import READING_KINDS
 STEP_KINDS: tuple[str, ...] = READING_KINDS
 """Kinds of steps, by code (the same as the kinds of readings)."""
 _COMPACT_FORMAT = "lightloom-steps-columns-1"
+_BLOCK = 4096
 
 
 @dataclass(frozen=True)
@@ -167,20 +168,24 @@ class StepView(Sequence[Step]):
 
     def __iter__(self) -> Iterator[Step]:
         c = self._columns
-        kinds = [STEP_KINDS[k] for k in c.kind.tolist()]
-        passes, points, repeats = c.pass_index.tolist(), c.point_index.tolist(), c.repeat_index.tolist()
-        dwell = c.dwell_s.tolist()
         # Settings rows repeat through a night: build each distinct one once.
         cache: dict[bytes, ElementSettings] = {}
         rows = c.settings
-        labels, port_labels = c.label.tolist(), c.port_labels.tolist()
-        for i in range(len(kinds)):
-            key = rows[i].tobytes()
-            settings = cache.get(key)
-            if settings is None:
-                settings = cache[key] = ElementSettings.from_vector(rows[i])
-            yield Step(i, kinds[i], passes[i], points[i], repeats[i], settings, dwell[i],
-                       c.labels[labels[i]], c.port_label_sets[port_labels[i]])
+        # A block of steps at a time: iterating a night holds no per-step Python objects.
+        for start in range(0, len(c), _BLOCK):
+            end = min(len(c), start + _BLOCK)
+            kinds = [STEP_KINDS[k] for k in c.kind[start:end].tolist()]
+            passes, points = c.pass_index[start:end].tolist(), c.point_index[start:end].tolist()
+            repeats, dwell = c.repeat_index[start:end].tolist(), c.dwell_s[start:end].tolist()
+            labels, port_labels = c.label[start:end].tolist(), c.port_labels[start:end].tolist()
+            for j in range(end - start):
+                i = start + j
+                key = rows[i].tobytes()
+                settings = cache.get(key)
+                if settings is None:
+                    settings = cache[key] = ElementSettings.from_vector(rows[i])
+                yield Step(i, kinds[j], passes[j], points[j], repeats[j], settings, dwell[j],
+                           c.labels[labels[j]], c.port_label_sets[port_labels[j]])
 
     def __eq__(self, other: object) -> bool:
         if isinstance(other, StepView):
