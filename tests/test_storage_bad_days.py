@@ -164,6 +164,7 @@ def _in_small_disk(tmp_path: Path, body: str, size_kib: int, *, read_only: bool 
 RUN = f"{sys.executable} -m lightloom.sequencer.cli"
 
 
+# 96 passes: a journal of about 2.4 MB, more than the 1.5 MB disk holds, whatever the timing.
 LONG_PROTOCOL = """\
 protocol: joint-36-sweep
 analyzes: [polarization, spatial]
@@ -176,7 +177,7 @@ dwell_s: 0.5
 repeats: 2
 reference: {every_points: 9, dwell_s: 0.2}
 order: least-motion
-sweep: {passes: 48, interval_s: 0}
+sweep: {passes: 96, interval_s: 0}
 """
 
 
