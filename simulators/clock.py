@@ -96,6 +96,20 @@ class SimClock:
             if t_s > self._virtual_s:
                 self._virtual_s = float(t_s)
 
+    def rebase(self, t_s: float) -> None:
+        """Set an instant clock to ``t_s`` (s), earlier or later than now.
+
+        Only for a table whose devices are all at rest and re-anchored at ``t_s`` (see
+        SimulatedTable.continue_at_step): a resumed run's readings then stand at the virtual times
+        an uninterrupted run would have had. Scaled clocks follow the wall clock and refuse.
+        """
+        if self._scale != 0.0:
+            raise ValueError("rebase: only an instant clock (time_scale 0) can be set; a scaled one follows the wall clock")
+        if not math.isfinite(t_s):
+            raise ValueError(f"rebase: the time must be finite, got {t_s!r}")
+        with self._lock:
+            self._virtual_s = float(t_s)
+
     def sleep(self, virtual_s: float) -> None:
         """Spend ``virtual_s`` virtual seconds (wall time ``virtual_s * time_scale``)."""
         if not (math.isfinite(virtual_s) and virtual_s >= 0.0):

@@ -201,6 +201,14 @@ class SimDevice:
         """Virtual seconds until the pending operation ends (0 at rest, inf if it never will)."""
         return 0.0
 
+    def rest_at(self, t_s: float) -> None:
+        """Re-anchor the state of this device, at rest now, at virtual time ``t_s`` (s).
+
+        A device at rest is the same at any time; this moves the time its last change is dated to,
+        so the clock can be set to ``t_s`` (earlier or later) without replaying or cutting a move.
+        Devices without a time-dated state do nothing.
+        """
+
     @contextmanager
     def link_faults_suspended(self) -> Iterator[None]:
         """While active in this thread, operations skip the in-process link checks and link faults.
@@ -527,6 +535,29 @@ class SimRotationStage(SimDevice, RotationStage):
             motor, optic = self._state_at(now)
             self._set_rest(now, motor, optic)
 
+    def rest_at(self, t_s: float) -> None:
+        """Re-anchor the stage, at rest now, at ``t_s`` (see SimDevice.rest_at); ValueError if moving."""
+        with self._lock:
+            if self.pending_s() > 0.0:
+                raise ValueError(f"rest_at: stage {self.name!r} is still moving or settling")
+            motor, optic = self._state_at(self.clock.now())
+            self._set_rest(float(t_s), motor, optic)
+
+    def place(self, motor_deg: float, optic_deg: float) -> None:
+        """Put the stage, at rest now, at ``motor_deg`` with its optic at ``optic_deg`` (deg), at once.
+
+        For setting up a simulated table in a known state (a resumed run's time line, tests);
+        the optic must lie within the backlash above the motor. ValueError if moving.
+        """
+        motor, optic = float(motor_deg), float(optic_deg)
+        if not (math.isfinite(motor) and motor <= optic <= motor + self._backlash):
+            raise ValueError(f"place: stage {self.name!r}: optic {optic_deg!r} deg must be within "
+                             f"[motor, motor + {self._backlash:g}] deg, motor {motor_deg!r} deg")
+        with self._lock:
+            if self.pending_s() > 0.0:
+                raise ValueError(f"place: stage {self.name!r} is still moving or settling")
+            self._set_rest(self.clock.now(), motor, optic)
+
 
 # --------------------------------------------------------------------------- discrete actuator
 
@@ -658,6 +689,14 @@ class SimActuator(SimDevice, DiscreteActuator):
             self._from = self._to = current
             self._t0 = now
 
+    def rest_at(self, t_s: float) -> None:
+        """Re-anchor the actuator, at rest now, at ``t_s`` (see SimDevice.rest_at); ValueError if switching."""
+        with self._lock:
+            if self.pending_s() > 0.0:
+                raise ValueError(f"rest_at: actuator {self.name!r} is still switching")
+            self._from = self._to = self.optical_state()
+            self._t0 = float(t_s)
+
 
 def _bad_token(text: object) -> bool:
     return not isinstance(text, str) or not text or any(c.isspace() or c in ",;\"'" or not c.isprintable() for c in text)
@@ -727,6 +766,15 @@ class SimShutter(SimDevice, Shutter):
             now = self.clock.now()
             self._was_open = self._will_be_open = False
             self._change_at = now
+
+    def rest_at(self, t_s: float) -> None:
+        """Re-anchor the shutter, at rest now, at ``t_s`` (see SimDevice.rest_at); ValueError if switching."""
+        with self._lock:
+            now = self.clock.now()
+            if now < self._change_at:
+                raise ValueError(f"rest_at: shutter {self.name!r} is still switching")
+            self._was_open = self._will_be_open = self.transmits(now)
+            self._change_at = float(t_s)
 
 
 # --------------------------------------------------------------------------- detectors

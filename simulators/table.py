@@ -11,6 +11,7 @@ meters add their offset and noise. The physics lives in sequencer.optics, once.
 from __future__ import annotations
 
 import math
+import time
 from dataclasses import dataclass
 from typing import Callable
 
@@ -34,6 +35,12 @@ from lightloom.simulators.faults import FaultInjector
 # Spawn-key branch of the per-step detector streams (the construction-time streams use the
 # plain children of the seed, whose keys are one number long, so the two never meet).
 _STEP_STREAMS = 1
+
+# On an instant table every reading starts on this grid of virtual time (2**-20 s, about 1 us).
+# A run's clock zero is a whole UNIX second, so a reading's UNIX start time (whole seconds plus a
+# multiple of 2**-20 s, below 2**33 s) is an exact float and gives back its virtual time exactly:
+# the one thing a resumed run needs to continue the uninterrupted run's time line to the bit.
+READING_GRID_S = 2.0 ** -20
 
 
 @dataclass(frozen=True)
@@ -59,12 +66,15 @@ class SimulatedTable:
         *,
         wall_sleep: Callable[[float], None] | None = None,
         time_scale: float | None = None,
+        epoch_s: float | None = None,
         start_s: float = 0.0,
     ) -> None:
         sim = bench.simulation
         if sim is None:
             raise ValueError(f"bench '{bench.name}' has no simulation section")
         self.bench = bench
+        # UNIX time of virtual time 0: what the runner's clock and the camera's timestamps add.
+        self.epoch_s = time.time() if epoch_s is None else float(epoch_s)
         kwargs = {} if wall_sleep is None else {"wall_sleep": wall_sleep}
         self.clock = SimClock(sim.time_scale if time_scale is None else time_scale, start_s=start_s, **kwargs)
         self.seed = sim.seed
@@ -97,9 +107,38 @@ class SimulatedTable:
         self.shutter = self.devices[roles.shutter]  # type: ignore[assignment]
         self._cache_key: tuple | None = None
         self._cache_probs: np.ndarray | None = None
+        self._continue: tuple[int, float, dict[str, tuple[float, float]]] | None = None
+
+    def continue_at_step(self, step_index: int, virtual_s: float,
+                         stages: dict[str, tuple[float, float]] | None = None) -> None:
+        """Resume the time line of an instant run: when step ``step_index`` begins its reading,
+        the table stands at ``virtual_s`` (s), the time an uninterrupted run would have had there.
+
+        After a resume the runner closes the shutter and approaches every stage again; that takes
+        virtual time an uninterrupted run did not spend, and the laser drifts with time. Every
+        device is at rest when a reading begins, so the table is re-anchored at ``virtual_s``
+        (earlier or later than its clock) with nothing cut or replayed: the resumed run then reads
+        at the same times, and so the same drift, as the uninterrupted one. Instant tables only.
+
+        ``stages``: device name -> (motor, optic) angles, deg, where the uninterrupted run had each
+        stage then. They differ from the resumed run's only by what the runner treats as no move
+        (below 1e-9 deg: a target equal to the last one up to rounding is not commanded again).
+        """
+        if self.clock.time_scale != 0.0:
+            raise ValueError("continue_at_step: only an instant table (time_scale 0) can be re-anchored")
+        if not math.isfinite(virtual_s) or virtual_s < 0:
+            raise ValueError(f"continue_at_step: virtual_s must be finite and >= 0, got {virtual_s!r}")
+        self._continue = (int(step_index), float(virtual_s), dict(stages or {}))
+
+    def rest_at(self, virtual_s: float) -> None:
+        """Set the clock of an instant table, every device at rest, to ``virtual_s`` (s)."""
+        for device in self.devices.values():
+            device.rest_at(virtual_s)  # type: ignore[attr-defined]
+        self.clock.rebase(virtual_s)
 
     def begin_step(self, step_index: int) -> None:
-        """Give every detector the noise stream of step ``step_index``.
+        """Give every detector the noise stream of step ``step_index``; on an instant table, start
+        the reading on the time grid (READING_GRID_S), at the resumed time line if one is pending.
 
         Each detector's stream is derived from (seed, device, step index) with numpy's
         SeedSequence, not drawn in sequence from one stream, so a run stopped and resumed reads
@@ -107,8 +146,17 @@ class SimulatedTable:
         """
         if isinstance(step_index, bool) or not isinstance(step_index, (int, np.integer)) or step_index < 0:
             raise ValueError(f"step_index must be an integer >= 0, got {step_index!r}")
+        if self.clock.time_scale == 0.0:
+            if self._continue is not None and self._continue[0] == step_index:
+                _, at, stages = self._continue
+                for name, (motor, optic) in stages.items():
+                    self.devices[name].place(motor, optic)  # type: ignore[attr-defined]
+                self.rest_at(at)
+            self._continue = None
+            now = self.clock.now()
+            self.clock.advance_to(math.ceil(now / READING_GRID_S) * READING_GRID_S)
         for i, device in enumerate(self.devices.values()):
-            if isinstance(device, (SimPowerMeter, SimPhotonCounter)):
+            if callable(getattr(device, "use_rng", None)):  # the detectors, cameras included
                 seq = np.random.SeedSequence(self.seed, spawn_key=(_STEP_STREAMS, i, int(step_index)))
                 device.use_rng(np.random.default_rng(seq))
 
@@ -129,6 +177,8 @@ class SimulatedTable:
                                switch_s=spec.switch_s + spec.settle_s, faults=self.faults)
         if kind == "shutter":
             return SimShutter(name, self.clock, switch_s=spec.switch_s + spec.settle_s, faults=self.faults)
+        if kind == "camera":
+            return self._camera(name, spec, rng)
         light = self._light_for(name)
         if kind == "power_meter":
             return SimPowerMeter(
@@ -141,6 +191,26 @@ class SimulatedTable:
                 dark_counts_per_s=sim.noise.dark_counts_per_s, faults=self.faults,
             )
         raise ValueError(f"device '{name}': no simulated device of kind {kind!r}")
+
+    def _camera(self, name, spec, rng) -> Device:
+        from lightloom.simulators.camera import CameraLight, make_sim_camera, polarization_povm
+
+        j = self.port_index[name]
+
+        def povm() -> np.ndarray:
+            s = self.optical_settings()
+            return polarization_povm(port_operators(self.model, self.ports, s[None, :])[0][j])
+
+        def hwp_deg() -> float:
+            stage = self.stage_of.get(COLUMN["half_wave_plate"])
+            return stage.optical_angle_deg() if stage is not None else 0.0
+
+        light = CameraLight(
+            power_w=lambda: self.source_power_w() * (1.0 - self.reference_fraction),
+            povm=povm, hwp_deg=hwp_deg, state=self.rho, wavelength_nm=self.bench.wavelength_nm,
+            epoch_s=self.epoch_s,
+        )
+        return make_sim_camera(name, spec.options, self.clock, light, rng, self.faults)
 
     # ------------------------------------------------------------------ physics
     def optical_settings(self, t_s: float | None = None) -> np.ndarray:

@@ -127,3 +127,31 @@ def test_background_errors_reach_each_row_with_the_interpolated_spread() -> None
     draws = noise.perturb(np.zeros((20000, 2)), rng)
     assert np.std(draws[:, 0]) == pytest.approx(5e-9, rel=0.03)
     assert np.std(draws[:, 1]) == pytest.approx(5e-9 / np.sqrt(2) / 0.5, rel=0.03)
+
+
+def test_spread_model_recovers_absolute_and_relative_noise() -> None:
+    # Gaussian readings in pairs with sigma^2 = a^2 + (b x)^2; maximum likelihood on the pairs'
+    # chi-square variances (Searle, Casella, McCulloch 1992, ch. 6) recovers a and b.
+    from lightloom.sequencer.analysis.spread import fit_spread
+
+    rng = np.random.default_rng(8)
+    a, b = 7e-9, 0.01
+    means = rng.uniform(0.0, 1e-6, 400)
+    x = means[:, None] + np.sqrt(a**2 + (b * means[:, None]) ** 2) * rng.standard_normal((400, 2))
+    ss = np.sum((x - x.mean(axis=1, keepdims=True)) ** 2, axis=1)
+    a_fit, b_fit = fit_spread(ss, np.ones(400), x.mean(axis=1))
+    assert a_fit == pytest.approx(a, rel=0.15)
+    assert b_fit == pytest.approx(b, rel=0.15)
+
+
+def test_spread_model_leaves_out_a_relative_term_the_data_cannot_see() -> None:
+    from lightloom.sequencer.analysis.spread import fit_spread
+
+    rng = np.random.default_rng(9)
+    a = 7e-9
+    means = rng.uniform(0.0, 5e-7, 36)  # 1 uW on four ports: a 0.2 % relative term is 1 nW at most
+    x = means[:, None] + np.sqrt(a**2 + (0.002 * means[:, None]) ** 2) * rng.standard_normal((36, 2))
+    ss = np.sum((x - x.mean(axis=1, keepdims=True)) ** 2, axis=1)
+    a_fit, b_fit = fit_spread(ss, np.ones(36), x.mean(axis=1))
+    assert b_fit == 0.0
+    assert a_fit == pytest.approx(a, rel=0.3)

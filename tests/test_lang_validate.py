@@ -23,6 +23,7 @@ REQUIRED_PROTOCOLS = {
 }
 PROTOCOLS = builtins.builtin_protocols()
 BENCHES = builtins.builtin_benches()
+POLARIZATION_ONLY_BENCHES = {"sim-camera"}
 
 
 def test_library_lists_every_standard_protocol_and_both_sim_benches() -> None:
@@ -115,6 +116,12 @@ def test_validate_accepts_every_built_in_protocol(name: str, capsys: pytest.Capt
 def test_validate_accepts_built_in_protocols_on_built_in_benches(
     protocol: str, bench: str, capsys: pytest.CaptureFixture[str]
 ) -> None:
+    if bench in POLARIZATION_ONLY_BENCHES and protocol != "polarization-4":
+        # A camera behind the polarization analyzer only: spatial settings are refused, in one line.
+        assert cli.main(["validate", protocol, "--bench", bench]) == 2
+        err = capsys.readouterr().err
+        assert err.count("\n") == 1 and f"bench '{bench}' has no" in err
+        return
     assert cli.main(["validate", protocol, "--bench", bench]) == 0
     out = capsys.readouterr().out
     assert f"bench {bench}" in out and "simulated" in out

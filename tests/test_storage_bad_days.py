@@ -90,6 +90,10 @@ def _hostile(path: Path, how: str) -> None:
         elif how == "garbage steps":
             del f["steps"]
             f.create_dataset("steps", data="\x13garbage, not steps", dtype=h5py.string_dtype())
+        elif how == "steps as other JSON":
+            del f["steps"]
+            f.create_dataset("steps", data='{"format": "lightloom-steps-columns-1", "columns": 3}',
+                             dtype=h5py.string_dtype())
         elif how == "steps as numbers":
             del f["steps"]
             f["steps"] = np.arange(7)
@@ -109,7 +113,7 @@ def _hostile(path: Path, how: str) -> None:
 
 HOSTILE = [
     "format_version array", "format_version 0", "format_version -1", "format_version 1.5",
-    "garbage steps", "steps as numbers", "step index 1000000000000", "step index -5",
+    "garbage steps", "steps as other JSON", "steps as numbers", "step index 1000000000000", "step index -5",
     "status exploded", "steps_total -3", "n_readings beyond the data",
 ]
 

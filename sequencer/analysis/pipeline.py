@@ -43,6 +43,7 @@ from lightloom.sequencer.analysis.background import BackgroundModel, background_
 from lightloom.sequencer.analysis.drift import DriftModel, fit_drift, no_drift
 from lightloom.sequencer.analysis.intervals import figure_bounds
 from lightloom.sequencer.analysis.propagation import CorrectionNoise, correction_noise
+from lightloom.sequencer.analysis.spread import fit_spread
 from lightloom.sequencer.analysis.estimate.errors import EstimationError
 from lightloom.sequencer.analysis.estimate.hermitian import to_matrix, to_vector
 from lightloom.sequencer.analysis.estimate.linear import least_squares_operator
@@ -164,37 +165,20 @@ def _port_gains(run: RunData) -> np.ndarray:
 def _spread_model(sums: Sums, bg_std: float) -> tuple[float, float, str]:
     """(a, b) of sigma^2 = a^2 + (b v)^2 from repeated readings (rows of ``sums`` with count >= 2).
 
-    Both terms are fitted (non-negative least squares on the unbiased variances, one observation
-    per reading), the background spread entering as one more observation of a^2: a few
-    background readings alone estimate the absolute noise, which dominates at low power, too poorly.
+    Both terms are fitted by maximum likelihood of the rows' chi-square variances
+    (sequencer.analysis.spread; the relative term only where a likelihood-ratio test asks for it),
+    the background spread entering as one more observation of a^2 (weighted as 4 degrees of
+    freedom, two backgrounds on four ports): a few background readings alone estimate the
+    absolute noise, which dominates at low power, too poorly.
     """
     a = float(bg_std)
     rep = sums.count >= 2
     if sums.count[rep].sum() >= 4:
-        from scipy.optimize import nnls
-
         k = sums.count[rep]
         mean = sums.sum_value[rep] / k
-        var = np.clip(sums.sum_value2[rep] - k * mean**2, 0.0, None) / (k - 1)
-        v2 = mean**2
-        # var = a^2 + b^2 v^2, weighted by 1 / model variance^2 (the spread of a variance estimate
-        # grows with the variance), with the background spread as one more observation of a^2.
-        v_scale = max(float(np.median(v2)), 1e-300)
-        design = np.column_stack([np.ones(var.size), v2 / v_scale])
-        rhs = var
-        weight = k.astype(float)
-        if a > 0:
-            design = np.vstack([design, [1.0, 0.0]])
-            rhs = np.concatenate([var, [a * a]])
-            weight = np.concatenate([weight, [1.0]])
-        mean_var = max(float(np.average(rhs, weights=weight)), 1e-300)
-        model_var = np.full(rhs.size, mean_var)
-        for _ in range(3):
-            w = np.sqrt(weight) / model_var
-            sol, _ = nnls(design * w[:, None], rhs * w)
-            model_var = np.maximum(design @ sol, 1e-3 * mean_var)
-        a2, b2 = float(sol[0]), float(sol[1]) / v_scale
-        return math.sqrt(max(a2, 0.0)), math.sqrt(max(b2, 0.0)), f"from {int(k.sum())} repeated readings"
+        ss = np.clip(sums.sum_value2[rep] - k * mean**2, 0.0, None)
+        a_fit, b_fit = fit_spread(ss, k - 1, mean, bg_ss=a * a * 4 if a > 0 else 0.0, bg_dof=4 if a > 0 else 0)
+        return a_fit, b_fit, f"from {int(k.sum())} repeated readings"
     return a, MIN_RELATIVE_SPREAD, "no repeats: background spread and a relative floor, rescaled by the fit residuals"
 
 

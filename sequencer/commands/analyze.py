@@ -35,6 +35,11 @@ def add_parser(sub) -> None:
     p.add_argument("--normalize", action="store_true", help="normalise each setting over its complementary ports (cancels drift without a reference meter)")
     p.add_argument("--bootstrap", type=int, default=200, metavar="N", help="bootstrap resamples for the error bars (default 200)")
     p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap (default 0)")
+    p.add_argument("--series", action="store_true", help="imaging runs: per-pass integrated Stokes, non-separability and pattern drift, out of core with dask")
+    p.add_argument("--series-maps", metavar="FILE.h5", help="imaging runs: Stokes maps per window of passes to this new HDF5 file (out of core)")
+    p.add_argument("--series-window", type=int, default=1, metavar="N", help="passes per window of --series-maps (default 1: a map per pass)")
+    p.add_argument("--dask", metavar="ADDRESS", help="run the --series analysis on the dask.distributed scheduler at ADDRESS (default: local threads)")
+    p.add_argument("--maps", metavar="FILE.h5", help="imaging runs: write the Stokes, DOP, orientation and ellipticity maps to this new HDF5 file")
     p.add_argument("--field-maps", action="store_true",
                    help="add the transverse polarization maps of a joint state to the JSON (key field_maps)")
     p.add_argument("--stability", action="store_true",
@@ -115,6 +120,22 @@ def _one(args: argparse.Namespace, path: str, window_s: float | None) -> int:
         return _scan(args, path, data, element)
     data, doc, est, parts = _analyse(args, path, window_s, data)
     stability = _stability(args, data)
+    from lightloom.sequencer import imaging_report
+    from lightloom.sequencer.errors import UsageError
+
+    imaging = imaging_report.imaging_result(path, data, rng=np.random.default_rng(args.seed),
+                                            replicates=args.bootstrap)
+    if imaging is not None:
+        imaging_report.add_to_document(doc, imaging)
+        if args.maps:
+            doc["imaging"]["maps"] = str(imaging_report.write_maps(imaging, args.maps))
+    if (args.series or args.series_maps) and imaging is not None:
+        if args.series_window < 1:
+            raise UsageError("--series-window needs at least 1 pass")
+        doc["imaging_series"] = imaging_report.imaging_series(
+            path, address=args.dask, maps_out=args.series_maps, passes_per_window=args.series_window)
+    if (args.maps or args.series or args.series_maps) and imaging is None:
+        raise UsageError(f"{path}: --maps and --series need an imaging run (a camera behind the analyzer); this run has no frames")
     if stability is not None:
         from lightloom.sequencer.analysis.stability import stability_json
 
@@ -123,6 +144,13 @@ def _one(args: argparse.Namespace, path: str, window_s: float | None) -> int:
         doc["plots"] = [str(p) for p in write_figures(data, doc, est, args.plots)]
         if stability is not None:
             doc["plots"].append(str(_stability_plot(data, stability, args.plots)))
+        if imaging is not None:
+            from pathlib import Path
+
+            from lightloom.sequencer.present.imaging_figures import plot_ellipses
+
+            doc["plots"].append(str(plot_ellipses(imaging.maps.stokes, Path(args.plots) / "stokes_ellipses.png",
+                                                  title=f"{data.header.protocol_name}: polarization map")))
     if args.json:
         print(json.dumps(doc, indent=1))
     elif args.csv:

@@ -95,6 +95,7 @@ def run(args: argparse.Namespace) -> int:
     if warning:
         print(warning, file=sys.stderr)
     n_measure = int(np.count_nonzero(plan.columns.kind == STEP_KINDS.index("measure")))
+    exposures = _exposure_checks(bench, plan)
     if args.json:
         out = {
             "protocol": protocol.name,
@@ -110,6 +111,10 @@ def run(args: argparse.Namespace) -> int:
             "travel_deg": {k: round(v, 3) for k, v in est.travel_deg.items()},
             "converter_switches": est.converter_switches,
             "limit_violations": list(plan.violations),
+            **({"camera_exposures": [
+                {"setting": c.label, "exposure_s": c.exposure_s, "peak_adu": round(c.peak_adu, 1),
+                 "saturation_adu": c.saturation_adu, "saturates": c.saturates,
+                 "max_exposure_s": c.max_exposure_s} for c in exposures]} if exposures else {}),
             "steps": [
                 {
                     "index": s.index, "kind": s.kind, "pass": s.pass_index, "point": s.point_index,
@@ -159,9 +164,26 @@ def run(args: argparse.Namespace) -> int:
         console.print(f"  conv: {est.converter_switches} switches in and out")
     for line in determination_lines(det, protocol.determines):
         console.print(line, markup=False)
+    for c in exposures:
+        fill = c.peak_adu / c.saturation_adu
+        if c.saturates:
+            console.print(f"would saturate: {c.label}: brightest pixel about {c.peak_adu:.0f} ADU at "
+                          f"{c.exposure_s * 1e3:g} ms, saturation {c.saturation_adu:.0f} ADU; use dwell_s <= "
+                          f"{c.max_exposure_s * 1e3:.3g} ms")
+        else:
+            console.print(f"camera: {c.label}: brightest pixel about {c.peak_adu:.0f} ADU ({fill:.0%} of saturation)")
     if plan.violations:
         for v in plan.violations:
             console.print(f"limit violation: {v}", markup=False)
         return 2
     console.print("limits: all moves inside the travel limits")
     return 0
+
+
+def _exposure_checks(bench, plan) -> list:
+    """On a simulated bench with a camera: the expected brightest pixel of every setting."""
+    if bench.simulation is None or not any(d.kind == "camera" for d in bench.devices.values()):
+        return []
+    from lightloom.simulators.camera import check_exposures
+
+    return check_exposures(bench, plan.steps)

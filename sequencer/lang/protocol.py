@@ -92,8 +92,10 @@ _TOP_KEYS = (
     "seed",
     "sweep",
     "target_state",
+    "frames_averaged",
     "determines",
 )
+MAX_FRAMES_AVERAGED = 10_000
 
 PURPOSES: tuple[str, ...] = ("joint-state", "polarization-state", "spatial-state", "scan")
 """What a protocol may say it is for (``determines:``); checked against the bench before a run."""
@@ -193,6 +195,8 @@ class Protocol:
     source_path: str = field(compare=False)
     source_text: str = field(compare=False, repr=False)
     sha256: str = field(compare=False)
+    frames_averaged: int | None = None
+    """Camera frames averaged into one reading (None: the camera's own setting)."""
     determines: str | None = None
     determines_line: int = field(default=0, compare=False)
 
@@ -525,6 +529,9 @@ def _protocol_from_tree(root: YNode, source_path: str, source_text: str) -> Prot
 
     dwell_s = sec.number("dwell_s", "s", gt=0.0, le=MAX_DWELL_S)
     repeats = sec.integer("repeats", 1, ge=1, le=MAX_REPEATS)
+    frames_averaged = (
+        sec.integer("frames_averaged", ge=1, le=MAX_FRAMES_AVERAGED) if sec.has("frames_averaged") else None
+    )
 
     bg = sec.section("background", "every_points, at_start, at_end, dwell_s")
     if bg is not None:
@@ -588,6 +595,7 @@ def _protocol_from_tree(root: YNode, source_path: str, source_text: str) -> Prot
         source_path=source_path,
         source_text=source_text,
         sha256=hashlib.sha256(source_text.encode("utf-8")).hexdigest(),
+        frames_averaged=frames_averaged,
         determines=determines,
         determines_line=sec.key_line("determines") if determines is not None else 0,
     )

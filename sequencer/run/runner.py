@@ -17,6 +17,7 @@ from typing import Callable, Protocol, TypeVar
 import numpy as np
 
 from lightloom.drivers.errors import InstrumentError
+from lightloom.drivers.camera import Camera, Frame
 from lightloom.drivers.retry import call_with_retry, close_shutter_within
 from lightloom.drivers.interfaces import Device, DiscreteActuator, PhotonCounter, PowerMeter, RotationStage, Shutter
 from lightloom.sequencer.plan.compiler import TableModel
@@ -83,6 +84,12 @@ class RunPolicy:
     refresh_s: float = 2.0
 
 
+class FrameSink(Protocol):
+    """Where camera frames go, durably, before their reading is recorded."""
+
+    def append(self, step_index: int, frames: Sequence[tuple[int, Frame]]) -> None: ...
+
+
 class RunMonitor(Protocol):
     """What the runner tells the person (or nobody) watching."""
 
@@ -143,6 +150,8 @@ class Runner:
         units: str = "W",
         run_start: float | None = None,
         parallel_reads: bool = True,
+        frames: FrameSink | None = None,
+        frames_averaged: int | None = None,
         begin_reading: Callable[[int], None] | None = None,
         beam_baseline: float | None = None,
     ) -> None:
@@ -161,6 +170,10 @@ class Runner:
         # Detectors integrate at once on real (or scaled-time) tables; on an instant simulated
         # table they are read one after the other so that the same seed gives the same readings.
         self.parallel_reads = parallel_reads
+        # Camera frames go to ``frames`` before their reading goes to the store (see storage.frames).
+        self.frames = frames
+        self.frames_averaged = frames_averaged
+        self._taken: dict[int, Frame] = {}
         # Told the index of each step just before its detectors are read (a simulated table
         # derives that reading's noise from it, so a resumed run reads what an uninterrupted one would).
         self.begin_reading = begin_reading
@@ -330,7 +343,13 @@ class Runner:
         return ElementSettings(mode_converter=converter, **angles).as_vector()
 
     # ------------------------------------------------------------------ reading
-    def _read_one(self, device: PowerMeter | PhotonCounter, dwell_s: float) -> float:
+    def _read_one(self, device: PowerMeter | PhotonCounter | Camera, dwell_s: float) -> float:
+        if isinstance(device, Camera):
+            # A camera exposes for the dwell; its reading is the frame's sum, the frame is kept.
+            frame = self._call(device, f"reading {device.name}",
+                               lambda: device.read_frame(exposure_s=dwell_s, frames=self.frames_averaged))
+            self._taken[self.rig.detectors.index(device)] = frame
+            return frame.total_adu
         if isinstance(device, PhotonCounter):
             return float(self._call(device, f"reading {device.name}", lambda: device.read_counts(dwell_s)))
         return float(self._call(device, f"reading {device.name}", lambda: device.read_power_w(dwell_s)))
@@ -468,7 +487,10 @@ class Runner:
                 if mask[step.index]:
                     continue
                 self._wait_for_pass(step)
+                self._taken = {}
                 reading = self.measure_step(step)
+                if self.frames is not None and self._taken:
+                    self.frames.append(step.index, sorted(self._taken.items()))
                 self.store.record(reading)
                 n_done += 1
                 self.log(_reading_line(step, reading, self.units))

@@ -7,6 +7,7 @@ This is the imperative shell around the compiler and the runner; the command-lin
 from __future__ import annotations
 
 import datetime as dt
+import math
 import signal
 import sys
 import time
@@ -33,6 +34,8 @@ from lightloom.sequencer.model.records import FORMAT_VERSION, Event, PortLayout,
 from lightloom.sequencer.storage.store import RunStore
 from lightloom.sequencer.plan.tablemodel import compile_protocol, table_model
 from lightloom.sequencer.model.vocabulary import STAGE_ELEMENTS
+from lightloom.sequencer.model.elements import COLUMN
+from lightloom.sequencer.optics.analyzer import CONVERTER
 from lightloom.sequencer.plan.timing import estimate_steps
 
 STATUS_EXIT = {"complete": EXIT_OK, "interrupted": EXIT_INTERRUPTED, "fault": EXIT_FAULT}
@@ -58,8 +61,12 @@ def assemble(bench: Bench, *, continue_at: tuple[float, float] | None = None) ->
     if bench.is_simulated:
         from lightloom.simulators.table import SimulatedTable
 
-        epoch, start_s = continue_at if continue_at is not None else (time.time(), 0.0)
-        table = SimulatedTable(bench, start_s=start_s)
+        # An instant clock's zero is a whole UNIX second: see simulators.table.READING_GRID_S.
+        wall_now = time.time()
+        if bench.simulation.time_scale == 0:
+            wall_now = float(math.floor(wall_now))
+        epoch, start_s = continue_at if continue_at is not None else (wall_now, 0.0)
+        table = SimulatedTable(bench, start_s=start_s, epoch_s=epoch)
         devices = table.devices
         wall0 = epoch
         now = lambda: wall0 + table.clock.now()  # noqa: E731
@@ -106,8 +113,10 @@ def port_units(bench: Bench) -> str:
         return "W"
     if kinds == {"photon_counter"}:
         return "counts"
+    if kinds == {"camera"}:
+        return "ADU"
     file, line = bench.locate("roles.detectors")
-    raise BenchError("detectors mix power meters and photon counters; use one kind for all ports", file, line)
+    raise BenchError("detectors mix power meters, photon counters or cameras; use one kind for all ports", file, line)
 
 
 def make_header(protocol: Protocol, bench: Bench, plan: StepList, units: str, protocol_spec: str, bench_spec: str) -> RunHeader:
@@ -277,6 +286,8 @@ def resume_run(path: str, *, console: Console | None, live: bool) -> int:
             )
         done = store.summary.done.copy()
         assembled = assemble(bench, continue_at=_simulated_clock_at(store) if bench.is_simulated else None)
+        if bench.is_simulated and bench.simulation.time_scale == 0:
+            _continue_time_line(plan, bench, store, assembled, done)
     except BaseException:
         # A refused resume changes nothing: the run keeps its status and message (e.g. the fault).
         store.release()
@@ -310,6 +321,90 @@ def _simulated_clock_at(store: RunStore) -> tuple[float, float] | None:
     t_last = store.summary.t_last
     reached = max([e.t for e in store.events] + ([t_last] if t_last is not None else []))
     return epoch, max(0.0, reached - epoch)
+
+
+class _TransitionMeasured(Exception):
+    """Raised in the stand-in run when the resumed step is about to be read (its clock is known)."""
+
+
+class _NoStore:
+    """A store that keeps nothing: the stand-in run records no reading or event."""
+
+    def event(self, event: Event) -> None:
+        pass
+
+
+def _continue_time_line(plan: StepList, bench: Bench, store: RunStore, assembled: Assembled, done: np.ndarray) -> None:
+    """On an instant simulated bench, make the resumed run read at the uninterrupted run's times.
+
+    The first step left (k) would have been read, in the uninterrupted run, after step k-1's
+    reading and the transition from k-1 to k (pass wait, shutter, converter, stage moves). A
+    stand-in runner on a second simulated table of the same bench replays exactly that: its
+    stages stand where the journal read them back, it knows what the real runner knew (the
+    targets, converter and shutter of the steps recorded), its table is re-anchored at k-1's
+    recorded start (exact, see READING_GRID_S), it reads, waits for k's pass and moves to k with
+    the runner's own motion logic. Its clock and stages when k's reading begins are where the real
+    table is re-anchored (SimulatedTable.continue_at_step), after the resumed run has closed the
+    shutter and approached every stage as always. Nothing changes when the steps recorded are not
+    the plan's first ones, or the stand-in cannot get there (a bench with faults).
+    ``done``: one flag per step of the plan.
+    """
+    clock_at = _simulated_clock_at(store)
+    done = np.asarray(done, dtype=bool)
+    if clock_at is None or done.all():
+        return
+    epoch = clock_at[0]
+    k = int(np.argmin(done))  # the first step left
+    summary = store.summary
+    if done[k:].any() or (k > 0 and (summary.last_row is None or int(summary.last_row["step_index"]) != k - 1)):
+        return
+    settings = plan.columns.settings
+    stand_in = assemble(bench, continue_at=(epoch, 0.0))
+    stand_in_table = stand_in.simulated_table
+    reached: list[tuple[float, dict[str, tuple[float, float]]]] = []
+
+    def begin_reading(index: int) -> None:
+        stages = {st.name: (st.motor_angle_deg(), st.optical_angle_deg()) for st in stand_in.rig.stages.values()}
+        reached.append((stand_in_table.clock.now(), stages))
+        raise _TransitionMeasured
+
+    runner = Runner(plan, table_model(bench), stand_in.rig, _NoStore(), policy_for(bench), now=stand_in.now,
+                    sleep=stand_in.sleep, wall=time.monotonic, run_start=_run_start(store, stand_in.now),
+                    parallel_reads=False, begin_reading=begin_reading)
+    try:
+        runner.connect()
+        if k > 0:
+            previous = plan.steps[k - 1]
+            # What the uninterrupted runner knew and where its devices were after step k-1.
+            for role, stage in stand_in.rig.stages.items():
+                column = COLUMN[role]
+                set_before = np.flatnonzero(~np.isnan(settings[:k, column]))
+                if set_before.size:
+                    at = float(summary.last_readback[column])
+                    stage.place(at, at)  # every approach ends moving up: the optic rests on the motor
+                    runner._positions[role] = float(settings[set_before[-1], column])
+            converter = stand_in.rig.converter
+            set_before = np.flatnonzero(~np.isnan(settings[:k, CONVERTER]))
+            if converter is not None and set_before.size:
+                state = plan.steps[int(set_before[-1])].settings.mode_converter
+                converter.set_state(state)
+                converter.wait_settled(runner.policy.settle_timeout_s)
+                runner._converter_state = state
+            runner._set_shutter(previous.shutter_open)
+            stand_in_table.rest_at(float(summary.last_row["t_start"]) - epoch)
+            stand_in_table.begin_step(previous.index)
+            runner._read_all(previous.dwell_s)
+        runner._wait_for_pass(plan.steps[k])
+        runner.measure_step(plan.steps[k])
+    except _TransitionMeasured:
+        at, stages = reached[0]
+        assembled.simulated_table.continue_at_step(k, at, stages)
+    except Exception:
+        # A stand-in that cannot get there changes nothing: the resumed run then continues from
+        # the time the run stopped, as a real table would.
+        return
+    finally:
+        runner._pool.shutdown(wait=False)
 
 
 def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
@@ -350,6 +445,7 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
     schedule = Schedule.of(work_s, pass_index, done, plan.passes, run_start, plan.pass_interval_s)
     left = schedule.seconds_left(assembled.now())
     monitor = None
+    frames = None
     try:
         verb = "resume" if resumed else "start"
         log(f"{verb}: protocol {protocol.name} on bench {bench.name} -> {out_path} "
@@ -380,6 +476,9 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             )
             monitor.__enter__()
             runner_kwargs["monitor"] = monitor
+        frames = _frame_journal(bench, out_path)
+        if frames is not None:
+            runner_kwargs.update(frames=frames, frames_averaged=protocol.frames_averaged)
         runner = Runner(plan, table, assembled.rig, store, policy_for(bench), now=assembled.now,
                         sleep=assembled.sleep, wall=time.monotonic, log=log, units=store.header.port_units,
                         run_start=run_start,
@@ -407,9 +506,31 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
             monitor.__exit__(None, None, None)
         log.close()
     store.close(status, message)
+    if frames is not None:
+        _publish_frames(frames, store, out_path, console)
     _say(console, f"{status}: {message}")
     _say(console, f"data: {out_path}   log: {log_path_for(out_path)}")
     return STATUS_EXIT[status]
+
+
+def _frame_journal(bench: Bench, out_path: Path):
+    """The frame journal of a run on a bench with a camera (None without one)."""
+    if not any(bench.devices[d.device].kind == "camera" for d in bench.roles.detectors):
+        return None
+    from lightloom.sequencer.storage.frames import FrameJournal, frames_path_for
+
+    return FrameJournal(frames_path_for(out_path))
+
+
+def _publish_frames(frames, store: RunStore, out_path: Path, console: Console | None) -> None:
+    """Copy the reported frames into the closed run file (the frame journal stays the record)."""
+    from lightloom.sequencer.storage.frames import publish
+
+    frames.close()
+    try:
+        publish(out_path, store.readings)
+    except (OSError, StorageError) as exc:
+        _say(console, f"warning: the frames stay in {out_path.name}.frames only: {exc}")
 
 
 def _initial_beam_level(store: RunStore, table) -> float | None:
@@ -429,5 +550,9 @@ def _as_mask(done, total: int) -> np.ndarray:
 
 
 def _run_start(store: RunStore, now: Callable[[], float]) -> float:
+    """When the run started (UNIX s): its first event, so a resumed run keeps the passes' start times."""
+    starts = [e.t for e in store.events if e.kind == "start"]
+    if starts:
+        return float(starts[0])
     t_first = store.summary.t_first
     return t_first if t_first is not None else now()

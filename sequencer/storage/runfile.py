@@ -504,8 +504,14 @@ def _read_header(f: h5py.File) -> RunHeader:
     if not isinstance(steps, h5py.Dataset) or steps.shape != () or h5py.check_string_dtype(steps.dtype) is None:
         raise _Malformed(f"/{key} is not a text; expected the compiled steps as JSON")
     steps_json = steps.asstr()[()]
-    if not steps_json.lstrip().startswith(("{", "[")):
-        raise _Malformed(f"/{key} holds {_shown(steps_json)}; expected the compiled steps as JSON")
+    try:
+        n_steps = len(StepList.from_json(steps_json))
+    except (ValueError, KeyError, TypeError, AttributeError) as exc:
+        raise _Malformed(
+            f"/{key} holds {_shown(steps_json)}, not a step list lightloom wrote ({_shown(str(exc))})"
+        ) from None
+    if n_steps != _whole(a, "steps_total", 0):
+        raise _Malformed(f"/{key} holds {n_steps} steps but steps_total is {int(a['steps_total'])}")
     port_names = _str_list(a["port_names"])
     try:
         if "setup_json" in a:

@@ -97,7 +97,9 @@ class ResumeSummary:
     ``done`` marks the steps with a reading (one flag per step of the plan);
     ``first_beam_row`` is the first reading taken with the shutter open (a structured row
     of the journal layout), ``t_first`` the earliest reading start and ``t_last`` the latest
-    reading end (UNIX s).
+    reading end (UNIX s). ``last_row`` is the reading of the highest step index and
+    ``last_readback`` (one per element, NaN where never set) the read-back of the highest-step
+    reading that set each element: where a stopped run left its stages.
     """
 
     done: np.ndarray
@@ -105,6 +107,9 @@ class ResumeSummary:
     t_first: float | None = None
     t_last: float | None = None
     n_readings: int = 0
+    last_row: np.ndarray | None = None
+    last_readback: np.ndarray | None = None
+    last_readback_step: np.ndarray | None = None
 
     def observe(self, rows: np.ndarray) -> None:
         self.n_readings += len(rows)
@@ -119,6 +124,20 @@ class ResumeSummary:
         self.t_first = t if self.t_first is None else min(self.t_first, t)
         t = float(np.max(rows["t_end"]))
         self.t_last = t if self.t_last is None else max(self.t_last, t)
+        top = int(np.argmax(steps))
+        if self.last_row is None or steps[top] > self.last_row["step_index"]:
+            self.last_row = rows[top].copy()
+        readback = rows["readback"]
+        if self.last_readback is None:
+            self.last_readback = np.full(readback.shape[1], np.nan)
+            self.last_readback_step = np.full(readback.shape[1], -1, dtype=np.int64)
+        assert self.last_readback_step is not None
+        for e in range(readback.shape[1]):
+            set_ = np.flatnonzero(~np.isnan(readback[:, e]))
+            if set_.size:
+                j = set_[np.argmax(steps[set_])]
+                if steps[j] > self.last_readback_step[e]:
+                    self.last_readback_step[e], self.last_readback[e] = steps[j], readback[j, e]
 
     @property
     def steps_done(self) -> int:

@@ -143,7 +143,7 @@ def refresh_costs(n: int, folder: Path) -> tuple[float, float]:
 
 
 def one_size(n: int, folder: Path) -> dict:
-    passes = max(1, round(n / STEPS_PER_PASS))
+    passes = max(1, min(round(n / STEPS_PER_PASS), (200_000 - 2) // STEPS_PER_PASS))
     protocol = folder / f"night-{n}.yaml"
     protocol.write_text(PROTOCOL.format(n=n, passes=passes))
     out = folder / f"night-{n}.h5"
@@ -178,6 +178,7 @@ def one_size(n: int, folder: Path) -> dict:
     result.update(run_first_s=first_reading, run_s=run_s, run_mb=run_mb, run_status=status, lag_s=lag_seconds(samples),
                   lag_readings=max((s - f) / RECORD_BYTES for _, s, f in samples) if samples else math.nan,
                   readings_before_kill=done_before)
+    print(f"  {n}: run {result}", flush=True)
 
     # 2. resume: time to the first new reading
     size0 = journal.stat().st_size
@@ -198,6 +199,7 @@ def one_size(n: int, folder: Path) -> dict:
         readings = int(f.attrs["n_readings"])
     result.update(resume_first_s=first, resume_mb=resume_mb, resume_status=status, readings=readings,
                   overhead_ms=1e3 * run_s / max(1, done_before))
+    print(f"  {n}: resume first reading {first:.2f} s, {resume_mb:.0f} MB", flush=True)
 
     # 3. analyze
     t0 = time.monotonic()

@@ -3,17 +3,29 @@
 from __future__ import annotations
 
 import hashlib
-import json
 
 import numpy as np
 
 from lightloom.sequencer.model.records import PortLayout, RunSources
+from lightloom.sequencer.model.steps import StepColumns, StepList
 from lightloom.sequencer.storage import FLAG_DRIFT, FLAG_RETRIED, Reading, RunHeader
 
 ELEMENTS = ("quarter_wave_plate", "half_wave_plate", "mode_converter", "converter_angle",
             "image_rotator")
 PORTS = ("det_hh", "det_hv", "det_vh", "det_vv")
 BASIS = ("H,h", "H,v", "V,h", "V,v")
+
+
+def make_steps(n: int, ports=PORTS) -> StepList:
+    """A step list of n measure steps at the parked settings (what a run file's /steps holds)."""
+    columns = StepColumns(
+        kind=np.zeros(n, np.uint8), pass_index=np.arange(n) // 10, point_index=np.arange(n) % 10,
+        repeat_index=np.zeros(n), settings=np.zeros((n, len(ELEMENTS))), dwell_s=np.full(n, 0.1),
+        label=np.zeros(n), port_labels=np.zeros(n), labels=("H x h",),
+        port_label_sets=(tuple(BASIS[i % 4] for i in range(len(ports))),),
+    )
+    return StepList("joint16", "sim", ELEMENTS, tuple(ports), columns, n_settings=10,
+                    passes=max(1, -(-n // 10)), pass_interval_s=0.0, order="as-written")
 
 
 def make_header(steps_total: int = 100, *, target: bool = True, ports=PORTS, name="joint16"):
@@ -31,7 +43,7 @@ def make_header(steps_total: int = 100, *, target: bool = True, ports=PORTS, nam
         bench_name="sim", bench_text=bench, bench_sha256=hashlib.sha256(bench.encode()).hexdigest(),
         simulated=True, analyzes=("polarization", "spatial"), element_names=ELEMENTS,
         port_names=tuple(ports), port_units="W", dimension=4, basis_labels=BASIS,
-        steps_total=steps_total, steps_json=json.dumps([{"step": i} for i in range(3)]),
+        steps_total=steps_total, steps_json=make_steps(steps_total, ports).to_json(),
         ports=tuple(PortLayout(BASIS[i % 4], "hv"[i % 4 // 2], "HV"[i % 2], 1.0 + 0.01 * i)
                     for i in range(len(ports))),
         sources=RunSources("joint16", "/data/ünïcode/joint16.yaml", "sim", "sim"),

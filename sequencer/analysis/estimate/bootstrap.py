@@ -62,7 +62,8 @@ class BootstrapResult:
 
 
 def edge_centre(rho: np.ndarray, replicates: np.ndarray) -> np.ndarray:
-    """``rho`` with its eigenvalues bias-corrected: 2 lambda - mean(lambda*), clipped at 0, renormalised.
+    """``rho`` with its eigenvalues bias-corrected: 2 lambda - mean(lambda*), set to 0 where below two
+    replicate stds (consistent with zero), renormalised.
 
     The sorted eigenvalues of a noisy estimate spread apart (the small ones up, the large one down)
     and the replicates' sorted eigenvalues (batch, d, d) spread further by about as much; the
@@ -70,8 +71,11 @@ def edge_centre(rho: np.ndarray, replicates: np.ndarray) -> np.ndarray:
     state back towards the edge of the state space where a nearly pure truth lies.
     """
     w, v = np.linalg.eigh(rho)
-    shift = np.mean(np.linalg.eigvalsh(replicates), axis=0) - w
+    rep = np.linalg.eigvalsh(replicates)
+    shift = np.mean(rep, axis=0) - w
     keep = np.clip(w - shift, 0.0, None)
+    # An eigenvalue within two replicate stds of zero is consistent with zero: a truth on the edge.
+    keep[keep < 2.0 * np.std(rep, axis=0, ddof=1)] = 0.0
     if keep.sum() <= 0:
         return rho
     return (v * (keep / keep.sum())) @ v.conj().T
