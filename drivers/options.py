@@ -10,6 +10,7 @@ from dataclasses import dataclass, field
 from types import MappingProxyType
 from typing import Any, Callable, Mapping
 
+from lightloom.sequencer.model.checks import finite_number, is_flag, is_text, one_of, within
 from lightloom.sequencer.model.suggest import suggestion
 from lightloom.sequencer.model.vocabulary import IDENTITY_WORD, MESSAGE_FAMILIES, MESSAGE_KINDS
 
@@ -141,21 +142,22 @@ def _fail(key: str, expected: str, value: Any) -> DriverConfigError:
 
 
 def _number(key: str, value: Any) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+    number = finite_number(value)
+    if number is None:
         raise _fail(key, "a finite number", value)
-    return float(value)
+    return number
 
 
 def _positive(key: str, value: Any) -> float:
     number = _number(key, value)
-    if number <= 0:
+    if not within(number, gt=0):
         raise _fail(key, "a number > 0", value)
     return number
 
 
 def _non_negative(key: str, value: Any) -> float:
     number = _number(key, value)
-    if number < 0:
+    if not within(number, ge=0):
         raise _fail(key, "a number >= 0", value)
     return number
 
@@ -165,7 +167,7 @@ def _optional_positive(key: str, value: Any) -> float | None:
 
 
 def _text(key: str, value: Any) -> str:
-    if not isinstance(value, str) or not value:
+    if not is_text(value, allow_empty=True) or not value:
         raise _fail(key, "a non-empty string", value)
     return value
 
@@ -175,7 +177,7 @@ def _optional_text(key: str, value: Any) -> str | None:
 
 
 def _flag(key: str, value: Any) -> bool:
-    if not isinstance(value, bool):
+    if not is_flag(value):
         raise _fail(key, "true or false", value)
     return value
 
@@ -231,7 +233,7 @@ def _choice(*allowed: Any) -> Callable[[str, Any], Any]:
     def check(key: str, value: Any) -> Any:
         if value is None:
             return None
-        if isinstance(value, bool) or value not in allowed:
+        if not one_of(value, allowed):
             raise _fail(key, "one of " + ", ".join(repr(a) for a in allowed), value)
         return value
 
@@ -241,7 +243,7 @@ def _choice(*allowed: Any) -> Callable[[str, Any], Any]:
 def _optional_baud(key: str, value: Any) -> int | None:
     if value is None:
         return None
-    if isinstance(value, bool) or not isinstance(value, int) or value <= 0:
+    if isinstance(value, bool) or not isinstance(value, int) or not within(value, gt=0):
         raise _fail(key, "a positive integer (bits per second)", value)
     return value
 

@@ -16,6 +16,10 @@ import numpy as np
 from lightloom.sequencer.errors import InputError, OpticsError
 from lightloom.sequencer.optics.states import normalize_density, parse_complex
 from lightloom.sequencer.lang.yamlsafe import YMap, YNode, YScalar, YSeq, clip
+from lightloom.sequencer.model.checks import (  # noqa: F401 (the languages import fmt and range_phrase from here)
+    UNIT_WORDS, finite_number, fmt, is_flag, is_number, is_text, one_of, range_phrase, unit_phrase, whole_number,
+    within,
+)
 from lightloom.sequencer.model.suggest import aside, nearest, suggestion  # noqa: F401 (the languages import them from here)
 
 MISSING: object = object()
@@ -24,28 +28,10 @@ MISSING: object = object()
 HERMITIAN_TOLERANCE = 1e-9
 PSD_TOLERANCE = 1e-9
 
-UNIT_WORDS: dict[str, str] = {
-    "s": "seconds",
-    "deg": "degrees",
-    "W": "watts",
-    "nm": "nanometres",
-    "deg/s": "degrees per second",
-    "deg/s^2": "degrees per second squared",
-    "1/W": "counts per second per watt",
-    "1/s": "counts per second",
-}
-
 
 def fail(message: str, node: YNode) -> NoReturn:
     """Raise an InputError at ``node``'s file and line."""
     raise InputError(message, node.file, node.line)
-
-
-def fmt(x: float) -> str:
-    """A number as a short human string (``0.5``, ``3600``, ``1e-09``)."""
-    if isinstance(x, int) or (isinstance(x, float) and x.is_integer() and abs(x) < 1e15):
-        return str(int(x))
-    return f"{x:g}"
 
 
 def described(node: YNode) -> str:
@@ -59,36 +45,6 @@ def described(node: YNode) -> str:
     if isinstance(node.value, bool):
         return node.text or ("true" if node.value else "false")
     return node.shown()
-
-
-def unit_phrase(unit: str) -> str:
-    if not unit:
-        return ""
-    return f" in {UNIT_WORDS.get(unit, unit)}"
-
-
-def _with_unit(x: float, unit: str) -> str:
-    return f"{fmt(x)} {unit}" if unit else fmt(x)
-
-
-def range_phrase(
-    unit: str,
-    gt: float | None = None,
-    ge: float | None = None,
-    lt: float | None = None,
-    le: float | None = None,
-) -> str:
-    """``"> 0 s and at most 3600 s"`` for the given bounds."""
-    parts = []
-    if gt is not None:
-        parts.append(f"> {_with_unit(gt, unit)}")
-    if ge is not None:
-        parts.append(f">= {_with_unit(ge, unit)}")
-    if lt is not None:
-        parts.append(f"< {_with_unit(lt, unit)}")
-    if le is not None:
-        parts.append(f"at most {_with_unit(le, unit)}")
-    return " and ".join(parts)
 
 
 def expect_map(node: YNode, what: str, hint: str = "") -> YMap:
@@ -119,34 +75,25 @@ def number(
 ) -> float:
     """A finite number within the given bounds (``unit`` is used in messages only)."""
     value = node.value if isinstance(node, YScalar) else None
-    if isinstance(value, bool) or not isinstance(value, (int, float)):
+    if not is_number(value):
         fail(f"{what}: expected a number{unit_phrase(unit)}, got {described(node)}", node)
-    try:
-        x = float(value)
-    except OverflowError:
+    x = finite_number(value)
+    if x is None and isinstance(value, int):
         fail(f"{what}: {clip(str(value))} is beyond the range of numbers (about 1.8e308);"
              f" expected an ordinary number{unit_phrase(unit)}", node)
-    if not math.isfinite(x):
+    if x is None:
         fail(f"{what}: expected a finite number{unit_phrase(unit)}, got {described(node)}", node)
-    bad = (
-        (gt is not None and not x > gt)
-        or (ge is not None and not x >= ge)
-        or (lt is not None and not x < lt)
-        or (le is not None and not x <= le)
-    )
-    if bad:
+    if not within(x, gt, ge, lt, le):
         fail(f"{what} must be {range_phrase(unit, gt, ge, lt, le)}, got {clip(node.text) or fmt(x)}", node)
     return x
 
 
 def integer(node: YNode, what: str, *, ge: int | None = None, le: int | None = None) -> int:
     """A whole number within the given bounds."""
-    value = node.value if isinstance(node, YScalar) else None
-    if isinstance(value, float) and value.is_integer():
-        value = int(value)
-    if isinstance(value, bool) or not isinstance(value, int):
+    value = whole_number(node.value if isinstance(node, YScalar) else None)
+    if value is None:
         fail(f"{what}: expected a whole number, got {described(node)}", node)
-    if (ge is not None and value < ge) or (le is not None and value > le):
+    if not within(value, ge=ge, le=le):
         fail(f"{what} must be a whole number {range_phrase('', ge=ge, le=le)}, got {clip(str(value))}", node)
     return value
 
@@ -154,10 +101,10 @@ def integer(node: YNode, what: str, *, ge: int | None = None, le: int | None = N
 def text(node: YNode, what: str, *, allow_empty: bool = False) -> str:
     """A text value (numbers and booleans are not silently turned into text)."""
     value = node.value if isinstance(node, YScalar) else None
-    if not isinstance(value, str):
+    if not is_text(value, allow_empty=True):
         quote = " (quote it)" if isinstance(node, YScalar) and node.value is not None else ""
         fail(f"{what}: expected text{quote}, got {described(node)}", node)
-    if not allow_empty and not value.strip():
+    if not is_text(value, allow_empty=allow_empty):
         fail(f"{what}: expected non-empty text, got an empty string", node)
     return value
 
@@ -165,7 +112,7 @@ def text(node: YNode, what: str, *, allow_empty: bool = False) -> str:
 def boolean(node: YNode, what: str) -> bool:
     """``true`` or ``false``."""
     value = node.value if isinstance(node, YScalar) else None
-    if not isinstance(value, bool):
+    if not is_flag(value):
         fail(f"{what}: expected true or false, got {described(node)}", node)
     return value
 
@@ -176,7 +123,7 @@ def choice(node: YNode, what: str, choices: Sequence[str]) -> str:
     if isinstance(value, bool):
         # YAML 1.1 reads on/off/yes/no as booleans.
         fail(f"{what} must be one of {', '.join(choices)}; got {described(node)} (quote the value)", node)
-    if not isinstance(value, str) or value not in choices:
+    if not isinstance(value, str) or not one_of(value, choices):
         hint = suggestion(str(value), choices) if isinstance(value, str) else ""
         fail(f"{what} must be one of {', '.join(choices)}; got {described(node)}{hint}", node)
     return value

@@ -1,1 +1,1 @@
-"""Plain data shared by every layer: vocabulary, the compiled step list, run records; imports numpy only."""
+"""Plain data shared by every layer: vocabulary, value checks, the compiled step list, run records; imports numpy only."""

@@ -1,7 +1,8 @@
 """Injected faults of a simulated bench as plain data, and the one set of rules they must follow.
 
 The bench language (which points at the file and line) and the simulators (which take plain
-dicts too) both validate a fault with :func:`check_fault`; each words the place its own way.
+dicts too) both validate a fault with :func:`check_fault`, built on the shared value checks of
+``model.checks``; each words the place its own way.
 """
 
 from __future__ import annotations
@@ -10,6 +11,7 @@ import math
 from dataclasses import dataclass
 from typing import Iterable, Mapping
 
+from lightloom.sequencer.model.checks import finite_number, is_text, one_of, within
 from lightloom.sequencer.model.vocabulary import FAULT_KINDS, LINK_FAULTS
 
 FAULT_KEYS: tuple[str, ...] = ("device", "kind", "at_s", "probability", "duration_s", "count", "residual")
@@ -79,9 +81,10 @@ def _number(item: Mapping[str, object], key: str) -> float | None:
     value = item.get(key)
     if value is None:
         return None
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(float(value)):
+    number = finite_number(value)
+    if number is None:
         raise FaultRuleError(key, f"{key!r} must be a finite number, got {value!r}")
-    return float(value)
+    return number
 
 
 def check_fault(item: Mapping[str, object]) -> FaultSpec:
@@ -97,10 +100,10 @@ def check_fault(item: Mapping[str, object]) -> FaultSpec:
     if unknown:
         raise FaultRuleError(None, f"unknown key(s) {', '.join(unknown)}; allowed keys: {', '.join(FAULT_KEYS)}")
     kind = item.get("kind")
-    if kind not in FAULT_KINDS:
+    if not one_of(kind, FAULT_KINDS):
         raise FaultRuleError("kind", f"'kind' must be one of {', '.join(FAULT_KINDS)}, got {kind!r}")
     device = item.get("device")
-    if device is not None and (not isinstance(device, str) or not device):
+    if device is not None and not (is_text(device, allow_empty=True) and device):
         raise FaultRuleError("device", f"'device' must be a device name, got {device!r}")
     if kind == "beam_loss" and device is not None:
         raise FaultRuleError("device", "a beam_loss fault blocks the source and names no device; remove 'device'")
@@ -111,11 +114,11 @@ def check_fault(item: Mapping[str, object]) -> FaultSpec:
     duration_s = _number(item, "duration_s")
     residual = _number(item, "residual")
     count = item.get("count")
-    if at_s is not None and at_s < 0:
+    if at_s is not None and not within(at_s, ge=0):
         raise FaultRuleError("at_s", f"'at_s' must be >= 0 virtual seconds, got {at_s}")
-    if probability is not None and not 0.0 <= probability <= 1.0:
+    if probability is not None and not within(probability, ge=0.0, le=1.0):
         raise FaultRuleError("probability", f"'probability' must be in [0, 1], got {probability}")
-    if duration_s is not None and duration_s <= 0:
+    if duration_s is not None and not within(duration_s, gt=0):
         raise FaultRuleError("duration_s", f"'duration_s' must be > 0 s (omit it for no end), got {duration_s}")
     if count is not None and (isinstance(count, bool) or not isinstance(count, int) or count < 1):
         raise FaultRuleError("count", f"'count' must be an integer >= 1, got {count!r}")
@@ -124,7 +127,7 @@ def check_fault(item: Mapping[str, object]) -> FaultSpec:
             raise FaultRuleError(
                 None, "beam_loss takes 'at_s', optional 'duration_s' and 'residual' (no 'probability' or 'count')"
             )
-        if residual is not None and not 0.0 <= residual <= 1.0:
+        if residual is not None and not within(residual, ge=0.0, le=1.0):
             raise FaultRuleError("residual", f"'residual' must be a fraction in [0, 1], got {residual}")
     elif residual is not None:
         raise FaultRuleError("residual", "'residual' applies to beam_loss only")

@@ -8,7 +8,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from lightloom.sequencer.plan.compiler import TableModel
-from lightloom.sequencer.plan.kinematics import nearest_equivalent_deg, path_time_s, path_travel_deg
+from lightloom.sequencer.plan.kinematics import (
+    StageKinematics, approach_path, move_time_s, nearest_equivalent_deg, path_time_s, path_travel_deg,
+)
 from lightloom.sequencer.optics.analyzer import CONVERTER, ELEMENT_NAMES
 from lightloom.sequencer.model.elements import COLUMN
 from lightloom.sequencer.plan.ordering import PERIOD_DEG, transition_time_s
@@ -35,10 +37,42 @@ class StepsEstimate:
         return float(np.sum(self.step_seconds))
 
 
+def first_approach_s(first: np.ndarray, table: TableModel) -> float:
+    """Time of the run's first moves, s: every stage from its rest at 0 deg to the first setting.
+
+    The runner does not know where a stage stands before its first move, so it approaches every
+    first target from above (overshoot by twice the backlash, then up), which takes the backlash up
+    whatever the start. The stages are taken to rest at 0 deg, as the least-motion ordering does.
+    Legs run as in a transition: every stage's first leg at once, then every second leg.
+    """
+    legs: list[list[float]] = []
+    for name, k in table.kinematics.items():
+        target = float(first[COLUMN[name]])
+        if math.isnan(target):
+            continue
+        legs.append(_legs_from_unknown(0.0, target, k))
+    phases = max((len(times) for times in legs), default=0)
+    return float(sum(max((t[p] for t in legs if p < len(t)), default=0.0) for p in range(phases)))
+
+
+def _legs_from_unknown(rest_deg: float, target_deg: float, k: StageKinematics) -> list[float]:
+    """Leg durations (move, command overhead, settling) of a first approach from ``rest_deg``, s."""
+    out, here = [], rest_deg
+    for waypoint in approach_path(math.inf, target_deg, k.backlash_deg):
+        if abs(waypoint - here) >= 1e-12:
+            out.append(move_time_s(waypoint - here, k.speed_deg_per_s, k.acceleration_deg_per_s2)
+                       + k.overhead_s + k.settle_s)
+        else:
+            out.append(0.0)
+        here = waypoint
+    return out
+
+
 def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
     """Estimate the wall time of ``plan`` from the table's kinematics, dwell and command overheads.
 
-    Each step: the shutter change if any, the slowest stage's backlash-aware move (all stages move
+    The first step includes the first approach of every stage (``first_approach_s``). Each step:
+    the shutter change if any, the slowest stage's backlash-aware move (all stages move
     at once) or the converter switch, then the dwell with every detector integrating at once, plus
     the per-read command overhead. Outer-sweep passes start no earlier than ``pass_interval_s``
     apart. A night repeats a few moves many times: each distinct move is timed once, so the cost
@@ -77,6 +111,7 @@ def estimate_steps(plan: StepList, table: TableModel) -> StepsEstimate:
         switch_of[j] = not (math.isnan(prev[CONVERTER]) or math.isnan(cur[CONVERTER])) and prev[CONVERTER] != cur[CONVERTER]
     pair_of_step = pair_of_step.ravel()
     motion = move_s[pair_of_step]
+    motion[0] += first_approach_s(settings[0], table)
     for col, (name, _) in enumerate(stage_items):
         travel[name] = float(np.sum(travel_of[pair_of_step, col]))
         stage_t[name] = float(np.sum(time_of[pair_of_step, col]))
