@@ -132,15 +132,10 @@ def mean_dark_frame(stack, kind: NDArray):
     return stack[darks].astype(np.float64).mean(axis=0)
 
 
-def pass_maps(stack, kind: NDArray, layout: PassWeights, passes: slice = slice(None), mean_dark=None):
-    """Lazy Stokes maps (P, 4, rows, cols) of the passes ``passes`` (positions in ``layout``):
-    per-pixel Stokes parameters against time. Each pass is built from its own frames only, so a
-    graph for a few passes stays small however long the night. ``mean_dark`` (rows, cols; numpy
-    or dask) is used by passes without a dark frame of their own; computed here when needed."""
+def _pass_pieces(stack, kind: NDArray, layout: PassWeights, chosen, mean_dark) -> list:
+    """Lazy (4, rows, cols) Stokes maps of the passes ``chosen`` (positions in ``layout``)."""
     import dask.array as da
 
-    rows, cols = stack.shape[1:]
-    chosen = range(len(layout.bounds))[passes]
     pieces = []
     for p in chosen:
         (a, b), w, coef = layout.bounds[p], layout.weights[p], layout.global_dark[p]
@@ -150,7 +145,18 @@ def pass_maps(stack, kind: NDArray, layout: PassWeights, passes: slice = slice(N
                 mean_dark = mean_dark_frame(stack, kind)
             maps = maps + da.from_array(coef, chunks=4)[:, None, None] * mean_dark[None]
         pieces.append(maps)
-    return da.stack(pieces) if pieces else da.zeros((0, 4, rows, cols))
+    return pieces
+
+
+def pass_maps(stack, kind: NDArray, layout: PassWeights, passes: slice = slice(None), mean_dark=None):
+    """Lazy Stokes maps (P, 4, rows, cols) of the passes ``passes`` (positions in ``layout``):
+    per-pixel Stokes parameters against time. Each pass is built from its own frames only, so a
+    graph for a few passes stays small however long the night. ``mean_dark`` (rows, cols; numpy
+    or dask) is used by passes without a dark frame of their own; computed here when needed."""
+    import dask.array as da
+
+    pieces = _pass_pieces(stack, kind, layout, range(len(layout.bounds))[passes], mean_dark)
+    return da.stack(pieces) if pieces else da.zeros((0, 4) + tuple(stack.shape[1:]))
 
 
 def window_maps(stack, kind: NDArray, layout: PassWeights, passes_per_window: int, mean_dark=None) -> list:
@@ -161,5 +167,12 @@ def window_maps(stack, kind: NDArray, layout: PassWeights, passes_per_window: in
     n = len(layout.bounds)
     if mean_dark is None and np.any(layout.global_dark):
         mean_dark = mean_dark_frame(stack, kind).compute()
-    return [pass_maps(stack, kind, layout, slice(i, i + passes_per_window), mean_dark).mean(axis=0)
-            for i in range(0, n, passes_per_window)]
+    windows = []
+    for i in range(0, n, passes_per_window):
+        # A running sum rather than a stacked mean: a window holds one pass's maps at a time.
+        pieces = _pass_pieces(stack, kind, layout, range(i, min(i + passes_per_window, n)), mean_dark)
+        total = pieces[0]
+        for piece in pieces[1:]:
+            total = total + piece
+        windows.append(total / len(pieces))
+    return windows

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Callable, Protocol, TypeVar
 
 import numpy as np
@@ -124,7 +124,6 @@ class _BeamWatch:
 
     baseline: float | None = None
     drifting: bool = False
-    history: list[float] = field(default_factory=list)
 
 
 class Runner:
