@@ -258,6 +258,33 @@ class Runner:
         self._converter_state = None
         self._shutter_open = None
 
+    # ------------------------------------------------------------------ what a stand-in is told
+    # A resumed run on an instant simulated table replays the transition into its first step on a
+    # stand-in runner (run.session); these are the parts of the runner that replay may touch.
+    def assume_stage_at(self, role: str, angle_deg: float) -> None:
+        """Take stage ``role`` to stand at ``angle_deg`` (deg) as last commanded; no device is moved."""
+        self._positions[role] = float(angle_deg)
+
+    def assume_converter_state(self, state: str) -> None:
+        """Take the mode converter to be in ``state`` as last set; the device is not touched."""
+        self._converter_state = state
+
+    def set_shutter(self, open_: bool) -> None:
+        """Open (True) or close (False) the shutter, unless it is already so by the runner's knowledge."""
+        self._set_shutter(open_)
+
+    def read_detectors(self, dwell_s: float) -> tuple[np.ndarray, float]:
+        """Read every detector for ``dwell_s`` (s): detector values and the reference (NaN: none)."""
+        return self._read_all(dwell_s)
+
+    def wait_for_pass(self, step: Step) -> None:
+        """Wait, shutter closed when long, until the start time of ``step``'s pass (if it has one)."""
+        self._wait_for_pass(step)
+
+    def release_readers(self) -> None:
+        """Let the detector-reading threads go, without closing any device (a stand-in's end)."""
+        self._pool.shutdown(wait=False)
+
     # ------------------------------------------------------------------ motion
     def _set_shutter(self, open_: bool) -> None:
         if self._shutter_open == open_:

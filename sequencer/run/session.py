@@ -382,19 +382,19 @@ def _continue_time_line(plan: StepList, bench: Bench, store: RunStore, assembled
                 if set_before.size:
                     at = float(summary.last_readback[column])
                     stage.place(at, at)  # every approach ends moving up: the optic rests on the motor
-                    runner._positions[role] = float(settings[set_before[-1], column])
+                    runner.assume_stage_at(role, float(settings[set_before[-1], column]))
             converter = stand_in.rig.converter
             set_before = np.flatnonzero(~np.isnan(settings[:k, CONVERTER]))
             if converter is not None and set_before.size:
                 state = plan.steps[int(set_before[-1])].settings.mode_converter
                 converter.set_state(state)
                 converter.wait_settled(runner.policy.settle_timeout_s)
-                runner._converter_state = state
-            runner._set_shutter(previous.shutter_open)
+                runner.assume_converter_state(state)
+            runner.set_shutter(previous.shutter_open)
             stand_in_table.rest_at(float(summary.last_row["t_start"]) - epoch)
             stand_in_table.begin_step(previous.index)
-            runner._read_all(previous.dwell_s)
-        runner._wait_for_pass(plan.steps[k])
+            runner.read_detectors(previous.dwell_s)
+        runner.wait_for_pass(plan.steps[k])
         runner.measure_step(plan.steps[k])
     except _TransitionMeasured:
         at, stages = reached[0]
@@ -404,7 +404,7 @@ def _continue_time_line(plan: StepList, bench: Bench, store: RunStore, assembled
         # the time the run stopped, as a real table would.
         return
     finally:
-        runner._pool.shutdown(wait=False)
+        runner.release_readers()
 
 
 def _recover_inputs(header: RunHeader) -> tuple[Protocol, Bench]:
