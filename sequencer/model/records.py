@@ -9,6 +9,8 @@ from typing import Any
 
 import numpy as np
 
+from lightloom.sequencer.model.shared_operators import SharedOperators
+
 from lightloom.sequencer.model.vocabulary import (
     ANALYZERS, EVENT_KINDS, PORT_UNITS, READING_KINDS, RUN_STATUSES, SORTER_PORTS, SPLITTER_PORTS,
 )
@@ -51,6 +53,9 @@ def _frozen_array(value: Any, dtype: type, ndim: int, what: str) -> np.ndarray:
 
 
 def _same(a: Any, b: Any) -> bool:
+    if isinstance(a, SharedOperators) or isinstance(b, SharedOperators):
+        a = None if a is None else np.asarray(a)
+        b = None if b is None else np.asarray(b)
     if isinstance(a, np.ndarray) or isinstance(b, np.ndarray):
         if a is None or b is None:
             return False

@@ -59,6 +59,7 @@ from lightloom.sequencer.errors import StorageError
 from lightloom.sequencer.storage.atomic import publish, sync_path, temp_path
 from lightloom.sequencer.storage.errors import RunFileBusyError, StorageWriteError
 from lightloom.sequencer.model.steps import StepList
+from lightloom.sequencer.model.shared_operators import SharedOperators
 from lightloom.sequencer.model.records import (
     EVENT_KINDS, FLAG_NAMES, FORMAT_VERSION, READING_KINDS, RUN_STATUSES, Event, Reading,
     ReadingTable, RunData, RunHeader, element_unit, setup_from_legacy_extra,
@@ -563,14 +564,22 @@ def _counts(f: h5py.File) -> tuple[int, int]:
     return n, m
 
 
+_OPERATOR_SLICE = 8192
+
+
 def _read_table(f: h5py.File, header: RunHeader, n: int) -> ReadingTable:
     g = f["readings"]
     kind = g["kind"]
     names = _names_of(kind, READING_KINDS)
-    columns = {name: g[name][:n] for name in _READING_COLUMNS}
+    columns: dict[str, Any] = {name: g[name][:n] for name in _READING_COLUMNS if name != "operators"}
     for name in ("step_index", "pass_index", "point_index", "repeat_index", "flags"):
         columns[name] = columns[name].astype(np.int64, copy=False)
-    columns["operators"] = columns["operators"].astype(np.complex128, copy=False)
+    # The operators column is read in slices and kept once per distinct block: as a plain array it
+    # is most of the file's size (1 kB a reading for a 4x4 joint protocol) and mostly repeats.
+    ops = g["operators"]
+    columns["operators"] = SharedOperators.from_chunks(
+        ops[i:min(i + _OPERATOR_SLICE, n)] for i in range(0, max(n, 1), _OPERATOR_SLICE)
+    )
     steps = columns["step_index"]
     if steps.size and (steps.min() < 0 or steps.max() >= max(header.steps_total, 1)):
         bad = int(steps.min()) if steps.min() < 0 else int(steps.max())

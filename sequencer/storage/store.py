@@ -17,6 +17,7 @@ import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -27,6 +28,7 @@ from lightloom.sequencer.storage.errors import RunExistsError, RunFileBusyError,
 from lightloom.sequencer.storage.journal import (
     Batch, Journal, read_journal, read_journal_head, iter_batches, writer_active,
 )
+from lightloom.sequencer.model.shared_operators import SharedOperators
 from lightloom.sequencer.model.records import (
     FORMAT_VERSION, READING_KINDS, Event, Reading, ReadingTable, RunData, RunHeader,
 )
@@ -409,12 +411,13 @@ class RunStore:
 def _joined(a: ReadingTable, b: ReadingTable) -> ReadingTable:
     if len(b) == 0:
         return a
-    columns = {
+    columns: dict[str, Any] = {
         name: np.concatenate([getattr(a, name), getattr(b, name)])
         for name in ("step_index", "kind", "pass_index", "point_index", "repeat_index",
-                     "commanded", "readback", "values", "reference_w", "operators", "dwell_s",
+                     "commanded", "readback", "values", "reference_w", "dwell_s",
                      "t_start", "t_end", "flags")
     }
+    columns["operators"] = SharedOperators.concatenate([a.operators, b.operators])
     return ReadingTable(a.element_names, a.port_names, **columns)
 
 
