@@ -89,6 +89,62 @@ class _FactorRegistry:
         return len(self.bases) - 1, 0
 
 
+# A factor's part of a setting: (basis index in its registry, member 0 or 1 of that basis).
+_FactorPart = tuple[int, int]
+
+
+@dataclass(frozen=True)
+class _ExplicitEntry:
+    """A setting the protocol gives as element values."""
+
+    settings: np.ndarray  # one value per ELEMENT_NAMES, NaN where absent
+    label: str
+
+
+@dataclass(frozen=True)
+class _TargetEntry:
+    """A setting that measures target projectors; None for a factor that is parked."""
+
+    polarization: _FactorPart | None
+    spatial: _FactorPart | None
+    request_index: int  # which request first asked for it (0-based)
+    line: int | None  # its protocol line
+
+
+@dataclass(frozen=True)
+class _TargetKey:
+    """What makes two target settings the same setting (a merged basis: the basis alone)."""
+
+    polarization: _FactorPart | int | None
+    spatial: _FactorPart | int | None
+
+
+@dataclass(frozen=True)
+class _Schedule:
+    """How the settings are measured: dwell times (s), repeats, backgrounds, references, passes."""
+
+    dwell_s: float
+    repeats: int
+    background_every: int
+    background_at_start: bool
+    background_at_end: bool
+    background_dwell_s: float
+    reference_every: int
+    reference_dwell_s: float
+    passes: int
+    pass_interval_s: float
+    order: str
+
+
+@dataclass(frozen=True)
+class _Reference:
+    """The setting drift references are taken at: its element values, port labels and point index."""
+
+    settings: np.ndarray
+    port_labels: tuple[str, ...]
+    point: int
+
+
 def _partner(label: str) -> str | None:
     """The orthogonal state's label: a named one (H -> V), or a Stokes target's negated vector."""
     if label.startswith("s(") and label.endswith(")"):
@@ -145,12 +201,61 @@ def compile_requests(
     expand_pol = "polarization" not in analyzes and model.analyzes_polarization and not merge_pol
     expand_sp = "spatial" not in analyzes and model.analyzes_spatial and not merge_sp
 
-    keys: list[tuple] = []
-    entries: list[tuple] = []  # ("elements", settings, label) or ("targets", pol part, spatial part, point)
-    logical: list[int] = []
-    points: list[int] = []  # per entry: the protocol points it is the first setting of (for background.every_points)
+    entries, logical, points = _collect_entries(
+        table, requests, pol_reg, sp_reg, merge_pol, merge_sp, expand_pol, expand_sp,
+    )
+    if not entries:
+        raise ProtocolError(f"protocol '{protocol_name}' asks for no measurement")
+    variants, variant_labels = _setting_variants(
+        table, entries, pol_reg, sp_reg, analyzes, merge_pol, merge_sp, pol_port, sp_port,
+    )
+    order_idx, choice = order_settings(variants, table, order, seed, reference_every)
+    settings = np.array([variants[k][choice[k]] for k in range(len(variants))])
+    key_labels = [variant_labels[k][choice[k]] for k in range(len(variants))]
+    # Drift references are taken at the first setting measured (for as-written: the first point).
+    ref_index = order_idx[0]
+    schedule = _Schedule(
+        dwell_s=dwell_s,
+        repeats=repeats,
+        background_every=background_every,
+        background_at_start=background_at_start,
+        background_at_end=background_at_end,
+        background_dwell_s=background_dwell_s if background_dwell_s is not None else dwell_s,
+        reference_every=reference_every,
+        reference_dwell_s=reference_dwell_s if reference_dwell_s is not None else dwell_s,
+        passes=passes,
+        pass_interval_s=pass_interval_s,
+        order=order,
+    )
+    reference = _Reference(settings[ref_index], key_labels[ref_index], logical[ref_index])
+    return _expand_steps(
+        table, protocol_name, settings, key_labels, logical, order_idx, points,
+        schedule=schedule, reference=reference,
+    )
 
-    def factor_parts(req_part, reg: _FactorRegistry, expand: bool, kets: Mapping[str, np.ndarray], names: tuple[str, str]):
+
+def _collect_entries(
+    table: TableModel,
+    requests: Sequence[Request],
+    pol_reg: _FactorRegistry,
+    sp_reg: _FactorRegistry,
+    merge_pol: bool,
+    merge_sp: bool,
+    expand_pol: bool,
+    expand_sp: bool,
+) -> tuple[list[_ExplicitEntry | _TargetEntry], list[int], list[int]]:
+    """The distinct settings the requests need, in the order first asked for.
+
+    Returns the entries, each entry's logical point index, and per entry the number of protocol
+    points it is the first setting of (for background.every_points).
+    """
+    keys: list[tuple | _TargetKey] = []
+    entries: list[_ExplicitEntry | _TargetEntry] = []
+    logical: list[int] = []
+    points: list[int] = []
+
+    def factor_parts(req_part, reg: _FactorRegistry, expand: bool, kets: Mapping[str, np.ndarray],
+                     names: tuple[str, str]) -> list[_FactorPart | None]:
         if req_part is not None:
             ket, label = req_part
             return [reg.find(np.asarray(ket), label, _partner(label))]
@@ -161,10 +266,10 @@ def compile_requests(
     for r_index, req in enumerate(requests):
         if req.elements is not None:
             s = _explicit_settings(table, req)
-            key = ("elements",) + tuple(np.round(np.nan_to_num(s, nan=-999.0), 9))
+            key = tuple(np.round(np.nan_to_num(s, nan=-999.0), 9))
             if key not in keys:
                 keys.append(key)
-                entries.append(("elements", s, _explicit_label(req.elements)))
+                entries.append(_ExplicitEntry(s, _explicit_label(req.elements)))
                 logical.append((max(logical) + 1) if logical else 0)
                 points.append(0)
             points[keys.index(key)] += 1
@@ -175,36 +280,50 @@ def compile_requests(
         credited = False
         for pp in pol_parts:
             for spp in sp_parts:
-                key = (
-                    "targets",
+                target_key = _TargetKey(
                     pp[0] if (pp is not None and merge_pol) else pp,
                     spp[0] if (spp is not None and merge_sp) else spp,
                 )
-                if key in keys:
+                if target_key in keys:
                     if not credited:
-                        points[keys.index(key)] += 1
+                        points[keys.index(target_key)] += 1
                         credited = True
                     continue
                 if logical_index is None:
                     logical_index = (max(logical) + 1) if logical else 0
-                keys.append(key)
-                entries.append(("targets", pp, spp, r_index, req.line))
+                keys.append(target_key)
+                entries.append(_TargetEntry(pp, spp, r_index, req.line))
                 logical.append(logical_index)
                 points.append(0 if credited else 1)
                 credited = True
-    if not entries:
-        raise ProtocolError(f"protocol '{protocol_name}' asks for no measurement")
-    # Every setting with the alternatives that measure the same projectors (a merged basis may be
-    # sent either way round through the splitter or the sorter): least-motion picks among them.
+    return entries, logical, points
+
+
+def _setting_variants(
+    table: TableModel,
+    entries: Sequence[_ExplicitEntry | _TargetEntry],
+    pol_reg: _FactorRegistry,
+    sp_reg: _FactorRegistry,
+    analyzes: tuple[str, ...],
+    merge_pol: bool,
+    merge_sp: bool,
+    pol_port: str,
+    sp_port: str,
+) -> tuple[list[np.ndarray], list[list[tuple[str, ...]]]]:
+    """Every setting with the alternatives that measure the same projectors, and their port labels.
+
+    A merged basis may be sent either way round through the splitter or the sorter: least-motion
+    ordering picks among the alternatives.
+    """
     variants: list[np.ndarray] = []
     variant_labels: list[list[tuple[str, ...]]] = []
     solved: dict = {}
     for entry in entries:
-        if entry[0] == "elements":
-            variants.append(entry[1][None, :])
-            variant_labels.append([tuple(entry[2] for _ in table.ports)])
+        if isinstance(entry, _ExplicitEntry):
+            variants.append(entry.settings[None, :])
+            variant_labels.append([tuple(entry.label for _ in table.ports)])
             continue
-        _, pp, spp, r_index, line = entry
+        pp, spp = entry.polarization, entry.spatial
         pol_choices = ["H", "V"] if (merge_pol and pp is not None) else [pol_port]
         sp_choices = ["h", "v"] if (merge_sp and spp is not None) else [sp_port]
         rows, labels = [], []
@@ -213,25 +332,13 @@ def compile_requests(
                 try:
                     found = _target_settings(table, pp, spp, pol_reg, sp_reg, pport, sport, solved)
                 except OpticsError as exc:
-                    raise BenchError(f"point {r_index + 1}: {exc}", None, line) from None
+                    raise BenchError(f"point {entry.request_index + 1}: {exc}", None, entry.line) from None
                 label = _port_labels(table.ports, pp, spp, pol_reg, sp_reg, analyzes, pport, sport)
                 rows.extend(found)
                 labels.extend([label] * len(found))
         variants.append(np.array(rows))
         variant_labels.append(labels)
-    order_idx, choice = order_settings(variants, table, order, seed, reference_every)
-    settings = np.array([variants[k][choice[k]] for k in range(len(variants))])
-    key_labels = [variant_labels[k][choice[k]] for k in range(len(variants))]
-    # Drift references are taken at the first setting measured (for as-written: the first point).
-    ref_index = order_idx[0]
-    ref_settings, ref_labels = settings[ref_index], key_labels[ref_index]
-    return _expand_steps(
-        table, protocol_name, settings, key_labels, logical, order_idx, analyzes,
-        dwell_s, repeats, background_every, background_at_start, background_at_end,
-        background_dwell_s if background_dwell_s is not None else dwell_s,
-        reference_every, reference_dwell_s if reference_dwell_s is not None else dwell_s,
-        passes, pass_interval_s, order, ref_settings, ref_labels, logical[ref_index], points,
-    )
+    return variants, variant_labels
 
 
 def _explicit_settings(table: TableModel, req: Request) -> np.ndarray:
@@ -337,10 +444,22 @@ def _setting_label(port_labels: tuple[str, ...]) -> str:
 
 
 def _expand_steps(
-    table, protocol_name, settings, key_labels, logical, order_idx, analyzes, dwell_s, repeats,
-    bg_every, bg_start, bg_end, bg_dwell, ref_every, ref_dwell, passes, pass_interval_s, order,
-    ref_settings, ref_labels, ref_point, points,
+    table: TableModel,
+    protocol_name: str,
+    settings: np.ndarray,
+    key_labels: Sequence[tuple[str, ...]],
+    logical: Sequence[int],
+    order_idx: Sequence[int],
+    points: Sequence[int],
+    *,
+    schedule: _Schedule,
+    reference: _Reference,
 ) -> StepList:
+    """The step list: ``settings`` (one row per setting) in ``order_idx``, measured per ``schedule``."""
+    dwell_s, repeats, passes = schedule.dwell_s, schedule.repeats, schedule.passes
+    bg_every, bg_start, bg_end = schedule.background_every, schedule.background_at_start, schedule.background_at_end
+    bg_dwell, ref_every, ref_dwell = schedule.background_dwell_s, schedule.reference_every, schedule.reference_dwell_s
+    ref_settings, ref_labels, ref_point = reference.settings, reference.port_labels, reference.point
     per_pass = len(order_idx) * repeats
     if ref_every > 0:
         per_pass += 2 + (len(order_idx) - 1) // ref_every
@@ -468,7 +587,7 @@ def _expand_steps(
         columns=step_columns,
         n_settings=len(settings),
         passes=passes,
-        pass_interval_s=float(pass_interval_s),
-        order=order,
+        pass_interval_s=float(schedule.pass_interval_s),
+        order=schedule.order,
         violations=tuple(dict.fromkeys(violations)),
     )
