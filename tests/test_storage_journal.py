@@ -17,6 +17,7 @@ from lightloom.sequencer.storage import (
     Event, Journal, JournalDamagedError, RunExistsError, RunInUseError, StorageWriteError,
     read_journal, writer_active,
 )
+from lightloom.sequencer.storage.codec import TYPE_READING, scan_frames
 from helpers.records import make_header, make_reading
 
 REPO = Path(__file__).resolve().parents[1]
@@ -268,3 +269,28 @@ def test_another_process_reads_the_journal_while_this_one_appends(tmp_path):
     assert reader.returncode == 0
     assert monotone == 1 and last == total
     assert distinct > 2, "the reader never saw the journal part-way through"
+
+
+def test_stretch_reading_finds_damage_exactly_where_a_frame_by_frame_scan_does(tmp_path):
+    # Back-to-back readings are checked a stretch at a time; the frame-by-frame scan of
+    # the same bytes is the reference for what was read and where and why it stopped.
+    path = tmp_path / "run.h5.journal"
+    journal = Journal.create(path, make_header())
+    for i in range(6):
+        journal.append_reading(make_reading(i))
+        if i in (2, 3):
+            journal.append_event(Event(1.7e9 + i, "note", f"after reading {i}"))
+    journal.close()
+    clean = path.read_bytes()
+    _, head_start, head_length = scan_frames(clean).frames[0]
+    header_end = head_start + head_length + 4
+    for flip in range(header_end, len(clean), 29):
+        raw = bytearray(clean)
+        raw[flip] ^= 0x41
+        path.write_bytes(bytes(raw))
+        reference = scan_frames(bytes(raw))
+        contents = read_journal(path)
+        readings = sum(1 for kind, _, _ in reference.frames if kind == TYPE_READING)
+        assert len(contents.readings.step_index) == readings, flip
+        assert contents.valid_bytes == reference.end, flip
+        assert contents.damage == reference.damage, flip

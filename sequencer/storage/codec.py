@@ -46,6 +46,7 @@ _CRC = struct.Struct("<I")
 _READING_HEAD = struct.Struct("<5qB4d")
 _STAMPED = struct.Struct("<dB")
 FRAME_OVERHEAD = _FRAME_HEAD.size + _CRC.size
+FRAME_HEAD_BYTES = _FRAME_HEAD.size
 MAX_PAYLOAD = 1 << 30
 _KIND_CODE = {name: code for code, name in enumerate(READING_KINDS)}
 _EVENT_CODE = {name: code for code, name in enumerate(EVENT_KINDS)}
@@ -123,16 +124,13 @@ def decode_rows(raw: bytes, starts: Sequence[int], layout: ReadingLayout) -> np.
     flat = rows.view(np.uint8).reshape(len(starts), size)
     data = np.frombuffer(raw, dtype=np.uint8)
     stride = size + FRAME_OVERHEAD
-    i = 0
-    while i < len(starts):
-        j = i + 1
-        while j < len(starts) and starts[j] - starts[j - 1] == stride:
-            j += 1
-        run = np.lib.stride_tricks.as_strided(
-            data[starts[i]:], shape=(j - i, size), strides=(stride, 1), writeable=False
-        )
-        flat[i:j] = run
-        i = j
+    at = np.asarray(starts, dtype=np.int64)
+    bounds = np.concatenate(([0], np.flatnonzero(np.diff(at) != stride) + 1, [len(at)])).tolist()
+    for i, j in zip(bounds[:-1], bounds[1:]):
+        if j > i:
+            flat[i:j] = np.lib.stride_tricks.as_strided(
+                data[int(at[i]):], shape=(j - i, size), strides=(stride, 1), writeable=False
+            )
     return rows
 
 
@@ -245,6 +243,36 @@ def _frame_at(raw: bytes, view: memoryview, pos: int) -> tuple[int, int, int, in
     if zlib.crc32(view[pos + 4:end - _CRC.size]) != crc:
         return "CRC mismatch"
     return record_type, start, length, end
+
+
+def intact_readings_at(raw: bytes, view: memoryview, pos: int, payload_size: int) -> int:
+    """How many intact reading frames of ``payload_size`` bytes lie back to back from pos.
+
+    The frame heads (marker, type, length) of the whole stretch are compared at once
+    and then each CRC is checked; counting stops before the first frame that is not an
+    intact reading of that size, which the caller reads with :func:`_frame_at` as usual,
+    so a damaged record is reported exactly as a frame-by-frame read would report it.
+    """
+    stride = payload_size + FRAME_OVERHEAD
+    count = (len(raw) - pos) // stride
+    if count <= 0:
+        return 0
+    data = np.frombuffer(raw, dtype=np.uint8)
+    heads = np.lib.stride_tricks.as_strided(
+        data[pos:], shape=(count, _FRAME_HEAD.size), strides=(stride, 1), writeable=False
+    )
+    expected = np.frombuffer(MAGIC + _TYPE_LENGTH.pack(TYPE_READING, payload_size), dtype=np.uint8)
+    good = (heads == expected).all(axis=1)
+    n = count if good.all() else int(np.argmin(good))
+    crcs = np.ndarray(
+        (n,), dtype="<u4", buffer=raw, offset=pos + stride - _CRC.size, strides=(stride,)
+    ).tolist()
+    crc32, covered = zlib.crc32, _TYPE_LENGTH.size + payload_size
+    for i, crc in enumerate(crcs):
+        begin = pos + len(MAGIC) + i * stride
+        if crc32(view[begin:begin + covered]) != crc:
+            return i
+    return n
 
 
 def _count_intact_after(raw: bytes, view: memoryview, pos: int) -> int:

@@ -24,9 +24,10 @@ from lightloom.sequencer.errors import StorageError
 
 from lightloom.sequencer.storage.atomic import publish, sync_fd, temp_path
 from lightloom.sequencer.storage.codec import (
-    JOURNAL_FORMAT, TYPE_EVENT, TYPE_HEADER, TYPE_READING, TYPE_STATUS, Damage, ReadingLayout,
-    _count_intact_after, _frame_at, decode_event, decode_header, decode_rows, decode_status,
-    encode_event, encode_header, encode_reading, encode_status, frame, table_from_rows,
+    FRAME_HEAD_BYTES, FRAME_OVERHEAD, JOURNAL_FORMAT, TYPE_EVENT, TYPE_HEADER, TYPE_READING,
+    TYPE_STATUS, Damage, ReadingLayout, _count_intact_after, _frame_at, decode_event, decode_header, decode_rows,
+    decode_status, encode_event, encode_header, encode_reading, encode_status, frame,
+    intact_readings_at, table_from_rows,
 )
 from lightloom.sequencer.storage.errors import JournalDamagedError, RunExistsError, RunInUseError, StorageWriteError
 from lightloom.sequencer.model.records import FORMAT_VERSION, Event, Reading, ReadingTable, RunHeader
@@ -114,12 +115,19 @@ def _batches(
 ) -> Iterator[Batch]:
     """Every record from offset ``start`` on, a chunk at a time (memory bounded by ``chunk``)."""
     handle.seek(start)
+    stride = layout.payload_size + FRAME_OVERHEAD
     base, buf = start, handle.read(chunk)
     while buf:
         view = memoryview(buf)
         pos, starts, events, status = 0, [], [], None
         found: tuple[int, int, int, int] | str = ""
         while pos < len(buf):
+            run = intact_readings_at(buf, view, pos, layout.payload_size)
+            if run:
+                # The usual case: back-to-back readings, checked a stretch at a time.
+                starts.extend(range(pos + FRAME_HEAD_BYTES, pos + run * stride, stride))
+                pos += run * stride
+                continue
             found = _frame_at(buf, view, pos)
             if isinstance(found, str):
                 break
