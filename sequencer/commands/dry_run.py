@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from collections.abc import Iterator
 from typing import Any
 
 DESCRIPTION = (
@@ -17,6 +18,8 @@ DESCRIPTION = (
 SHORT_NAMES = {"quarter_wave_plate": "qwp", "half_wave_plate": "hwp", "mode_converter": "conv",
                "converter_angle": "conv deg", "image_rotator": "rot"}
 SHOWN_STEPS = 60
+_STEPS_SLOT = "\x00steps\x00"
+_BLOCK = 8192
 
 
 def add_parser(sub) -> None:
@@ -115,17 +118,14 @@ def run(args: argparse.Namespace) -> int:
                 {"setting": c.label, "exposure_s": c.exposure_s, "peak_adu": round(c.peak_adu, 1),
                  "saturation_adu": c.saturation_adu, "saturates": c.saturates,
                  "max_exposure_s": c.max_exposure_s} for c in exposures]} if exposures else {}),
-            "steps": [
-                {
-                    "index": s.index, "kind": s.kind, "pass": s.pass_index, "point": s.point_index,
-                    "repeat": s.repeat_index, "label": s.label, "port_labels": list(s.port_labels),
-                    "settings": dict(zip(plan.element_names, s.settings.as_list())),
-                    "dwell_s": s.dwell_s, "seconds": round(t, 4),
-                }
-                for s, t in zip(plan.steps, est.step_seconds)
-            ],
+            "steps": _STEPS_SLOT,
         }
-        print(json.dumps(out, indent=1))
+        head, tail = json.dumps(out, indent=1).split(json.dumps(_STEPS_SLOT))
+        sys.stdout.write(head)
+        for block in step_json_blocks(plan, est.step_seconds):
+            sys.stdout.write(block)
+        sys.stdout.write(tail + "\n")
+        sys.stdout.flush()
         return 2 if plan.violations else 0
     console = Console(highlight=False)
     # Only the elements this bench has get a column, so that the table fits 80 columns.
@@ -178,6 +178,52 @@ def run(args: argparse.Namespace) -> int:
         return 2
     console.print("limits: all moves inside the travel limits")
     return 0
+
+
+def step_json_blocks(plan: Any, step_seconds: Any) -> Iterator[str]:
+    """The ``steps`` JSON list, as text blocks of at most _BLOCK steps, one step a line.
+
+    A night has up to 200,000 steps but usually a few hundred distinct (kind, setting, dwell,
+    seconds) rows, so each distinct row's JSON is built once and each step's line joins it to
+    its own indices: time linear in the steps, memory a few integers a step plus one block of text.
+    """
+    import numpy as np
+
+    from lightloom.sequencer.model.elements import ElementSettings
+    from lightloom.sequencer.model.steps import STEP_KINDS
+
+    c = plan.columns
+    n = len(c)
+    if n == 0:
+        yield "[]"
+        return
+    seconds = np.asarray(step_seconds, dtype=float)
+    # One row per step of everything but its indices, as bytes; a dict finds the distinct ones.
+    rows = np.column_stack([c.kind, c.label, c.port_labels, c.dwell_s, seconds,
+                            np.nan_to_num(c.settings, nan=-1e300)]).astype(float)
+    rows = np.ascontiguousarray(rows)
+    keys = rows.view(np.dtype((np.void, rows.shape[1] * rows.itemsize))).ravel().tolist()
+    distinct: dict[bytes, int] = {}
+    codes = [distinct.setdefault(key, len(distinct)) for key in keys]  # a hash, not a sort: linear
+    first = np.zeros(len(distinct), dtype=np.int64)
+    first[np.asarray(codes)[::-1]] = np.arange(n - 1, -1, -1)  # the first step of each distinct row
+    fragments = []
+    for i in first.tolist():
+        settings = ElementSettings.from_vector(c.settings[i]).as_list()
+        fragments.append(
+            f"{json.dumps(STEP_KINDS[c.kind[i]])}, \"label\": {json.dumps(c.labels[c.label[i]])},"
+            f" \"port_labels\": {json.dumps(list(c.port_label_sets[c.port_labels[i]]))},"
+            f" \"settings\": {json.dumps(dict(zip(plan.element_names, settings)))},"
+            f" \"dwell_s\": {json.dumps(float(c.dwell_s[i]))}, \"seconds\": {json.dumps(round(float(seconds[i]), 4))}}}"
+        )
+    passes, points, repeats = c.pass_index.tolist(), c.point_index.tolist(), c.repeat_index.tolist()
+    for start in range(0, n, _BLOCK):
+        lines = [
+            f"{{\"index\": {k}, \"pass\": {passes[k]}, \"point\": {points[k]},"
+            f" \"repeat\": {repeats[k]}, \"kind\": {fragments[codes[k]]}"
+            for k in range(start, min(start + _BLOCK, n))
+        ]
+        yield ("[\n  " if start == 0 else ",\n  ") + ",\n  ".join(lines) + ("\n ]" if start + _BLOCK >= n else "")
 
 
 def _exposure_checks(bench, plan) -> list:
