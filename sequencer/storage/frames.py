@@ -19,7 +19,7 @@ import os
 import struct
 import zlib
 from collections.abc import Iterator, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -220,13 +220,9 @@ def publish(h5_path: str | os.PathLike[str], readings) -> int:
 
 
 @dataclass(frozen=True, eq=False)
-class FrameSet:
-    """The frames of a run as columns: ``data`` and ``saturated`` (n, rows, cols) in memory, and per
-    frame its step, port, kind code, pass, time, exposure, averaging, saturation level, commanded
-    settings (n, n_elements) and the 4x4 operator of its port (n, 4, 4)."""
+class FrameColumns:
+    """The per-frame columns of ``/frames`` (everything but the pixels), in memory."""
 
-    data: np.ndarray
-    saturated: np.ndarray
     step_index: np.ndarray
     port: np.ndarray
     kind: np.ndarray
@@ -240,6 +236,16 @@ class FrameSet:
 
     def __len__(self) -> int:
         return len(self.step_index)
+
+
+@dataclass(frozen=True, eq=False)
+class FrameSet(FrameColumns):
+    """The frames of a run: the per-frame columns of ``FrameColumns`` (step, port, kind code,
+    pass, time, exposure, averaging, saturation level, commanded settings (n, n_elements), the
+    4x4 operator of its port (n, 4, 4)) and, in memory, ``data`` and ``saturated`` (n, rows, cols)."""
+
+    data: np.ndarray = field(kw_only=True)
+    saturated: np.ndarray = field(kw_only=True)
 
 
 _COLUMNS = ("step_index", "port", "kind", "pass_index", "t_s", "exposure_s", "n_averaged",
@@ -267,7 +273,7 @@ def load_frames(h5_path: str | os.PathLike[str], readings) -> FrameSet | None:
             g = f["frames"]
             if "data" not in g:
                 return None
-            return FrameSet(g["data"][()], g["saturated"][()].astype(bool),
+            return FrameSet(data=g["data"][()], saturated=g["saturated"][()].astype(bool),
                             **{k: g[k][()] for k in _COLUMNS})
     journal = frames_path_for(h5_path)
     if not journal.exists():
@@ -315,25 +321,6 @@ class H5Slices:
 
         with h5py.File(self.path, "r") as f:
             return f[self.dataset][key]
-
-
-@dataclass(frozen=True, eq=False)
-class FrameColumns:
-    """The per-frame columns of ``/frames`` (everything but the pixels), in memory."""
-
-    step_index: np.ndarray
-    port: np.ndarray
-    kind: np.ndarray
-    pass_index: np.ndarray
-    t_s: np.ndarray
-    exposure_s: np.ndarray
-    n_averaged: np.ndarray
-    saturation_level: np.ndarray
-    commanded: np.ndarray
-    operators: np.ndarray
-
-    def __len__(self) -> int:
-        return len(self.step_index)
 
 
 def frame_columns(h5_path: str | os.PathLike[str]) -> FrameColumns:
