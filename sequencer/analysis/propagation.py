@@ -5,7 +5,8 @@ y = (v - b(t)) / (f(t) g) with b the interpolated background, f the drift factor
 gain. The bootstrap draws reading noise around the fit; ``CorrectionNoise.perturb`` adds, for each
 replicate, one draw of the background readings' noise (shared by every reading interpolated from
 them) and one of the drift model's coefficients (shared by the whole run), mapped to the rows.
-Cost per replicate: O(rows + background readings x ports), memory O(rows) (sparse maps).
+Cost per replicate: O(rows + background readings x ports), memory O(rows) (sparse maps) plus a
+bounded block of draws.
 """
 
 from __future__ import annotations
@@ -17,6 +18,9 @@ from scipy import sparse
 
 from lightloom.sequencer.analysis.background import BackgroundModel
 from lightloom.sequencer.analysis.drift import DriftModel
+
+# Background-error draws held at once by ``CorrectionNoise.perturb`` (doubles; 2 MB).
+DRAW_BLOCK_VALUES = 1 << 18
 
 
 def interpolation_matrix(t_s: np.ndarray, knots_s: np.ndarray) -> sparse.csr_matrix:
@@ -57,8 +61,14 @@ class CorrectionNoise:
         if self.drift.applied:
             out *= self.drift.draw_ratios(self.row_times_s, r, rng)
         if self.background_map is not None and self.background_sigma.size:
-            e = rng.standard_normal((r, self.background_sigma.size)) * self.background_sigma[None, :]
-            out += (self.background_map @ e.T).T
+            # A few replicates at a time: a night has thousands of background readings, and all
+            # replicates' draws at once would be R x n_bg x ports doubles (tens of MB). Drawn in
+            # order, the numbers are those of one (R, n_bg x ports) draw.
+            step = max(1, DRAW_BLOCK_VALUES // self.background_sigma.size)
+            for lo in range(0, r, step):
+                hi = min(lo + step, r)
+                e = rng.standard_normal((hi - lo, self.background_sigma.size)) * self.background_sigma[None, :]
+                out[lo:hi] += (self.background_map @ e.T).T
         return out
 
 
