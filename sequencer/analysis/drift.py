@@ -31,6 +31,8 @@ MAX_DEGREE = 8
 READINGS_PER_COEFFICIENT = 6
 # A drift factor known to worse than this (relative std at some reading) is never divided out.
 MAX_FACTOR_STD = 0.05
+# Readings handled at once by the fit (bounds its temporaries: a few MB whatever the night).
+FIT_CHUNK = 32768
 
 
 @dataclass(frozen=True)
@@ -119,38 +121,54 @@ def fit_drift(t_s: np.ndarray, reference: np.ndarray, *, source: str, max_degree
     center = 0.5 * (t.max() + t.min())
     half = max(0.5 * (t.max() - t.min()), 1e-9)
     x = (t - center) / half
-    top = int(min(max_degree, n // READINGS_PER_COEFFICIENT - 1))
+    top = int(max(min(max_degree, n // READINGS_PER_COEFFICIENT - 1), 0))
+    # Least squares of every degree from the moments of the Legendre basis, summed a chunk of
+    # readings at a time: a night's (n, degree + 1) design matrix is never held. The reference is
+    # centred first so that the residual sum of squares (its square minus the fitted part) keeps
+    # its digits.
+    gram = np.zeros((top + 1, top + 1))
+    moment = np.zeros(top + 1)
+    centred = y - mean
+    for lo in range(0, n, FIT_CHUNK):
+        v = legendre.legvander(x[lo:lo + FIT_CHUNK], top)
+        gram += v.T @ v
+        moment += v.T @ centred[lo:lo + FIT_CHUNK]
+    total2 = float(centred @ centred)
     best = None
-    for k in range(0, max(top, 0) + 1):
-        v = legendre.legvander(x, k)
-        coef, *_ = np.linalg.lstsq(v, y, rcond=None)
-        rss = float(np.sum((y - v @ coef) ** 2))
+    for k in range(0, top + 1):
+        coef = np.linalg.lstsq(gram[:k + 1, :k + 1], moment[:k + 1], rcond=None)[0]
+        rss = max(total2 - float(moment[:k + 1] @ coef), 0.0)
         bic = n * math.log(max(rss / n, 1e-300)) + (k + 1) * math.log(n)
         if best is None or bic < best[0]:
-            best = (bic, k, coef, rss, v)
+            best = (bic, k, coef, rss)
     assert best is not None
-    _, k, coef, rss, v = best
+    _, k, coef, rss = best
+    coef = coef.copy()
+    coef[0] += mean  # the constant Legendre polynomial is 1
     sigma2 = rss / max(n - (k + 1), 1)
     relative_noise = math.sqrt(sigma2) / mean
     if k == 0:
         return no_drift(source, f"no change beyond the reference's noise ({relative_noise:.2%} a reading, "
                                 f"{n} readings; polynomial degree 0 chosen by BIC)")
-    cov = sigma2 * np.linalg.inv(v.T @ v)
-    norm = float(np.mean(v @ coef))
+    cov = sigma2 * np.linalg.inv(gram[:k + 1, :k + 1])
+    norm = float(gram[0, :k + 1] @ coef) / n  # mean of the fitted curve: sum_i P_j(x_i) = gram[0, j]
     model = DriftModel(float(center), float(half), coef, cov, norm, True, {})
-    f = model.factor(t)
-    f_std = model.factor_std(t)
-    change2 = float(np.mean((f - 1.0) ** 2 - f_std**2))
-    cost2 = float(np.mean(f_std**2))
-    if change2 <= cost2 or f_std.max() > MAX_FACTOR_STD:
-        return no_drift(source, f"a degree-{k} drift fitted (factor {f.min():.4f}..{f.max():.4f}) is not known "
-                                f"better than it is large (std up to {f_std.max():.2%}): dividing it out would add "
+    f_lo, f_hi, f_std_max, change2, cost2 = np.inf, -np.inf, 0.0, 0.0, 0.0
+    for lo in range(0, n, FIT_CHUNK):
+        f = model.factor(t[lo:lo + FIT_CHUNK])
+        f_std = model.factor_std(t[lo:lo + FIT_CHUNK])
+        f_lo, f_hi, f_std_max = min(f_lo, float(f.min())), max(f_hi, float(f.max())), max(f_std_max, float(f_std.max()))
+        change2 += float(np.sum((f - 1.0) ** 2 - f_std**2)) / n
+        cost2 += float(np.sum(f_std**2)) / n
+    if change2 <= cost2 or f_std_max > MAX_FACTOR_STD:
+        return no_drift(source, f"a degree-{k} drift fitted (factor {f_lo:.4f}..{f_hi:.4f}) is not known "
+                                f"better than it is large (std up to {f_std_max:.2%}): dividing it out would add "
                                 "more noise than it removes")
     info = {
         "applied": True, "source": source,
         "model": f"Legendre polynomial of degree {k} in time (chosen by BIC), fitted by least squares",
         "degree": k, "readings": n, "reference_noise_relative": relative_noise,
-        "min": float(f.min()), "max": float(f.max()), "factor_std_max": float(f_std.max()),
+        "min": f_lo, "max": f_hi, "factor_std_max": f_std_max,
         "propagated": "the fit's covariance is drawn in every bootstrap replicate",
     }
     return DriftModel(float(center), float(half), coef, cov, norm, True, info)
