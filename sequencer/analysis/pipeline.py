@@ -48,7 +48,7 @@ from lightloom.sequencer.analysis.estimate.errors import EstimationError
 from lightloom.sequencer.analysis.estimate.hermitian import to_matrix, to_vector
 from lightloom.sequencer.analysis.estimate.linear import least_squares_operator
 from lightloom.sequencer.analysis.reduction import reduce_to_factor
-from lightloom.sequencer.analysis.sufficient import CHUNK_ROWS, Sums, accumulate, setting_ids
+from lightloom.sequencer.analysis.sufficient import CHUNK_ROWS, Repeats, Sums, accumulate, setting_ids
 from lightloom.sequencer.optics.analyzer import complete_port_set
 from lightloom.sequencer.optics.determination import STATE_KIND, Determination, determination
 from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS
@@ -162,7 +162,7 @@ def _port_gains(run: RunData) -> np.ndarray:
     return np.asarray(h.port_gains, dtype=float)
 
 
-def _spread_model(sums: Sums, bg_std: float) -> tuple[float, float, str]:
+def _spread_model(sums: Repeats, bg_std: float) -> tuple[float, float, str]:
     """(a, b) of sigma^2 = a^2 + (b v)^2 from repeated readings (rows of ``sums`` with count >= 2).
 
     Both terms are fitted by maximum likelihood of the rows' chi-square variances
@@ -232,7 +232,9 @@ def prepare_segments(
     Each reading is corrected on its own (background interpolated in time, drift, port gains,
     optional normalisation), then the readings of each (segment, setting, port) are summed into
     sufficient statistics (sequencer.analysis.sufficient): the estimators see one row per
-    distinct operator, whatever the length of the night.
+    distinct operator, whatever the length of the night. The corrections are computed a chunk of
+    rows at a time as the sums are made: besides the reading table, memory holds a few integers
+    per measure reading, the sums and one chunk.
     """
     h = run.header
     r = run.readings
@@ -245,20 +247,24 @@ def prepare_segments(
         return []
     if normalize and not complete:
         raise AnalysisError("normalisation per setting needs ports that measure a complete set (e.g. all four ports)")
-    t_all = 0.5 * (np.asarray(r.t_start) + np.asarray(r.t_end))
     bg_model, ref_bg = _background(run)
     bg_std = bg_model.sigma if bg_model.applied else np.zeros(len(gains))
-    bg = _background_at(bg_model, t_all)
     drift_model = _drift_model(run, ref_bg, complete, gains)
-    drift = drift_model.factor(t_all)
+    del ref_bg
+    t_start, t_end = np.asarray(r.t_start), np.asarray(r.t_end)
+
+    def t_mid(lo: int, hi: int, mask: np.ndarray) -> np.ndarray:
+        return 0.5 * (t_start[lo:hi][mask] + t_end[lo:hi][mask])
+
     corrections: dict[str, Any] = {"background": background_info(bg_model), "drift": drift_model.info}
     d = int(h.dimension)
 
     def corrected(lo: int, hi: int, mask: np.ndarray) -> np.ndarray:
-        v = (np.asarray(r.values[lo:hi]) - bg[lo:hi])[mask]
+        t = t_mid(lo, hi, mask)
+        v = np.asarray(r.values[lo:hi])[mask] - _background_at(bg_model, t)
         if counts:
             return np.clip(np.round(v), 0, None)
-        v = v / drift[lo:hi][mask][:, None] / gains[None, :]
+        v = v / drift_model.factor(t)[:, None] / gains[None, :]
         if normalize:
             tot = v.sum(axis=1, keepdims=True)
             if (tot <= 0).any():
@@ -270,7 +276,7 @@ def prepare_segments(
         e = np.asarray(ops_source[lo:hi])[mask]
         if counts:
             # expected counts of a reading: drift x dwell x tr(T E), T in counts/s
-            scale = drift[lo:hi][mask] * np.asarray(r.dwell_s[lo:hi])[mask]
+            scale = drift_model.factor(t_mid(lo, hi, mask)) * np.asarray(r.dwell_s[lo:hi])[mask]
             return e * scale[:, None, None, None]
         return e / gains[None, :, None, None]
 
@@ -291,8 +297,8 @@ def prepare_segments(
     )
     fine, per_fit, row_of_reading = accumulate(
         rows=rows, segment=segments.of_reading[rows], pass_index=np.asarray(r.pass_index)[rows],
-        setting=setting_ids(np.asarray(r.commanded)[rows]), values_of=corrected, operators_of=model_operators,
-        base_variance=base_var, t_start=np.asarray(r.t_start)[rows], t_end=np.asarray(r.t_end)[rows], d=d,
+        setting=setting_ids(np.asarray(r.commanded), rows), values_of=corrected, operators_of=model_operators,
+        base_variance=base_var, t_start=t_start[rows], t_end=t_end[rows], d=d,
     )
     noise: dict[str, Any] = {"model": "poisson"}
     a = b = 0.0
@@ -314,11 +320,15 @@ def prepare_segments(
         # One background reading of counts: its Poisson spread.
         bg_model = background_model(bg_model.times_s, bg_model.values,
                                     fallback_sigma=np.sqrt(np.clip(bg_model.values[0], 1.0, None)))
-    divisor = (drift[rows][:, None] * gains[None, :]) if not counts else np.ones((len(rows), len(gains)))
-    if not counts:
-        # the rows are means: each reading enters its row divided by the row's count
-        divisor = divisor * per_fit.count[row_of_reading]
-    noise_map = _correction_noise(t_all[rows], divisor, row_of_reading, per_fit, bg_model, drift_model)
+    def divisor_of(t: np.ndarray, row: np.ndarray) -> np.ndarray:
+        """What each port reading at times ``t`` (k,) in rows ``row`` (k, P) is divided by after
+        the background subtraction: drift, gain and, the rows being means, the row's count."""
+        if counts:
+            return np.ones(row.shape)
+        return drift_model.factor(t)[:, None] * gains[None, :] * per_fit.count[row]
+
+    noise_map = _correction_noise(0.5 * (t_start[rows] + t_end[rows]), divisor_of, row_of_reading, per_fit,
+                                  bg_model, drift_model)
     out = []
     for seg in np.unique(per_fit.segment):
         idx = np.flatnonzero(per_fit.segment == seg)
@@ -331,7 +341,7 @@ def prepare_segments(
     return out
 
 
-def _correction_noise(t_mid: np.ndarray, divisor: np.ndarray, row_of_reading: np.ndarray, per_fit: Sums,
+def _correction_noise(t_mid: np.ndarray, divisor_of, row_of_reading: np.ndarray, per_fit: Sums,
                       background: BackgroundModel, drift: DriftModel) -> CorrectionNoise:
     """The correction errors mapped onto the rows (sequencer.analysis.propagation), built a chunk of
     readings at a time: the map is a sum over readings, so only its non-zero entries are ever held."""
@@ -345,7 +355,8 @@ def _correction_noise(t_mid: np.ndarray, divisor: np.ndarray, row_of_reading: np
         k = hi - lo
         last = correction_noise(
             flat_times_s=np.repeat(t_mid[lo:hi], n_ports), flat_ports=np.tile(np.arange(n_ports), k),
-            flat_divisor=divisor[lo:hi].reshape(-1), flat_rows=row_of_reading[lo:hi].reshape(-1), n_rows=n_rows,
+            flat_divisor=divisor_of(t_mid[lo:hi], row_of_reading[lo:hi]).reshape(-1),
+            flat_rows=row_of_reading[lo:hi].reshape(-1), n_rows=n_rows,
             row_times_s=row_times, background=background, drift=drift,
         )
         if last.background_map is not None:

@@ -68,17 +68,35 @@ class Sums:
                        for k in self.__dataclass_fields__})
 
 
-def setting_ids(commanded: np.ndarray) -> np.ndarray:
-    """Index (n,) of each row's commanded setting among the distinct ones (NaN = element unused).
+@dataclass(frozen=True)
+class Repeats:
+    """Readings repeated at one (segment, pass, setting, port), for the spread of a reading: one row
+    per group of two readings or more.
 
-    One 1-D sort per element column, then one of the combined codes: no copy of the table as rows.
+    Attributes
+    ----------
+    count : ndarray (g,). Number of readings (>= 2).
+    sum_value, sum_value2 : ndarray (g,). Sum of the corrected readings and of their squares.
     """
-    n = commanded.shape[0]
+
+    count: np.ndarray
+    sum_value: np.ndarray
+    sum_value2: np.ndarray
+
+
+def setting_ids(commanded: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
+    """Index of each row's commanded setting among the distinct ones (NaN = element unused).
+
+    ``rows`` (optional) picks rows of ``commanded`` (n, n_elements). One 1-D sort per element
+    column, then one of the combined codes: no copy of the table as rows.
+    """
+    n = commanded.shape[0] if rows is None else len(rows)
     if n == 0:
         return np.zeros(0, dtype=np.int64)
     combined = np.zeros(n, dtype=np.int64)
     for j in range(commanded.shape[1]):
-        col = np.round(np.where(np.isnan(commanded[:, j]), np.inf, commanded[:, j]), SETTING_DECIMALS)
+        col = commanded[:, j] if rows is None else commanded[rows, j]
+        col = np.round(np.where(np.isnan(col), np.inf, col), SETTING_DECIMALS)
         values, inverse = np.unique(col, return_inverse=True)
         combined = combined * len(values) + np.asarray(inverse, dtype=np.int64).reshape(-1)
     _, ids = np.unique(combined, return_inverse=True)
@@ -103,16 +121,22 @@ def _dense(*columns: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 class _Accumulator:
-    """Running sums over rows of groups, touched a chunk at a time (cost per chunk: the chunk)."""
+    """Running sums over rows of groups, touched a chunk at a time (cost per chunk: the chunk).
 
-    def __init__(self, n_groups: int, operator_shape: tuple[int, ...] | None) -> None:
+    With ``spread_only`` only the count and the sums of values and of their squares are kept (the
+    groups per pass are many: a night has passes x settings x ports of them).
+    """
+
+    def __init__(self, n_groups: int, operator_shape: tuple[int, ...] | None, spread_only: bool = False) -> None:
         self.count = np.zeros(n_groups)
         self.s1 = np.zeros(n_groups)
         self.s2 = np.zeros(n_groups)
-        self.base = np.zeros(n_groups)
-        self.tsum = np.zeros(n_groups)
-        self.tmin = np.full(n_groups, np.inf)
-        self.tmax = np.full(n_groups, -np.inf)
+        self.spread_only = spread_only
+        if not spread_only:
+            self.base = np.zeros(n_groups)
+            self.tsum = np.zeros(n_groups)
+            self.tmin = np.full(n_groups, np.inf)
+            self.tmax = np.full(n_groups, -np.inf)
         self.ops = None if operator_shape is None else np.zeros((n_groups, 2 * int(np.prod(operator_shape))))
 
     def add(self, gid: np.ndarray, v: np.ndarray, base: np.ndarray, t: np.ndarray, t_lo: np.ndarray,
@@ -126,6 +150,8 @@ class _Accumulator:
         self.count[u] += np.bincount(local, minlength=m)
         self.s1[u] += add(v)
         self.s2[u] += add(v * v)
+        if self.spread_only:
+            return
         self.base[u] += add(base)
         self.tsum[u] += add(t)
         lo = np.full(m, np.inf)
@@ -138,16 +164,20 @@ class _Accumulator:
             for j in range(flat_ops.shape[1]):
                 self.ops[u, j] += add(flat_ops[:, j])
 
+    def repeats(self) -> Repeats:
+        keep = self.count >= 2
+        return Repeats(self.count[keep], self.s1[keep], self.s2[keep])
+
     def sums(self, keys: np.ndarray, n_ports: int, d: int, names: tuple[str, ...]) -> Sums:
-        rep = np.repeat(keys, n_ports, axis=0)
-        fields = {k: np.full(len(rep), -1, dtype=np.int64) for k in ("segment", "pass_index", "setting")}
+        keep = np.flatnonzero(self.count > 0)
+        key_row = keep // n_ports
+        fields = {k: np.full(len(keep), -1, dtype=np.int64) for k in ("segment", "pass_index", "setting")}
         for j, name in enumerate(names):
-            fields[name] = rep[:, j]
-        operator = None if self.ops is None else self.ops.view(np.complex128).reshape(-1, d, d)
-        out = Sums(**fields, port=np.tile(np.arange(n_ports), len(keys)), count=self.count, sum_value=self.s1,
-                   sum_value2=self.s2, sum_operator=operator, sum_base_variance=self.base, t_sum=self.tsum,
-                   t_min=self.tmin, t_max=self.tmax)
-        return out.select(self.count > 0)
+            fields[name] = keys[key_row, j]
+        operator = None if self.ops is None else self.ops[keep].view(np.complex128).reshape(-1, d, d)
+        return Sums(**fields, port=keep % n_ports, count=self.count[keep], sum_value=self.s1[keep],
+                    sum_value2=self.s2[keep], sum_operator=operator, sum_base_variance=self.base[keep],
+                    t_sum=self.tsum[keep], t_min=self.tmin[keep], t_max=self.tmax[keep])
 
 
 def accumulate(
@@ -162,7 +192,7 @@ def accumulate(
     t_start: np.ndarray,
     t_end: np.ndarray,
     d: int,
-) -> tuple[Sums, Sums, np.ndarray]:
+) -> tuple[Repeats, Sums, np.ndarray]:
     """Sums over the measure readings ``rows`` (indices into the reading table, increasing).
 
     ``segment``, ``pass_index``, ``setting``, ``t_start`` and ``t_end`` are per measure reading
@@ -171,23 +201,25 @@ def accumulate(
     (k, P, d, d) as the model uses them; ``base_variance`` (P,) is each port's per-reading variance
     known before the fit. Table rows are read CHUNK_ROWS at a time.
 
-    Returns (per (segment, pass, setting, port) without operators: for the spread of repeats;
-    per (segment, setting, port) with operators: the rows of the fits; the index (len(rows), P)
-    of each port reading's row in the latter).
+    Returns (per (segment, pass, setting, port) read twice or more, without operators: for the
+    spread of repeats; per (segment, setting, port) with operators: the rows of the fits; the
+    index (len(rows), P), int32, of each port reading's row in the latter). Besides the sums, what
+    is held is a few integers per measure reading and one chunk of rows at a time.
     """
     n = len(rows)
     empty_i = np.zeros(0, dtype=np.int64)
     empty = Sums(empty_i, empty_i, empty_i, empty_i, np.zeros(0), np.zeros(0), np.zeros(0),
                  np.zeros((0, d, d), complex), np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0))
     if n == 0:
-        return empty, empty, np.zeros((0, len(base_variance)), dtype=np.int64)
+        return (Repeats(np.zeros(0), np.zeros(0), np.zeros(0)), empty,
+                np.zeros((0, len(base_variance)), dtype=np.int32))
     n_ports = len(base_variance)
     fine_id, fine_keys = _dense(segment, pass_index, setting)
     coarse_id, coarse_keys = _dense(segment, setting)
-    fine = _Accumulator(len(fine_keys) * n_ports, None)
+    fine = _Accumulator(len(fine_keys) * n_ports, None, spread_only=True)
+    del fine_keys
     coarse = _Accumulator(len(coarse_keys) * n_ports, (d, d))
     port = np.arange(n_ports)
-    t_mid = 0.5 * (t_start + t_end)
     start = 0
     while start < n:
         lo = int(rows[start])
@@ -198,14 +230,13 @@ def accumulate(
         e = np.asarray(operators_of(lo, lo + len(mask), mask), dtype=np.complex128)
         flat = np.ascontiguousarray(e).reshape(len(v), d * d).view(np.float64)
         base = np.broadcast_to(base_variance, (stop - start, n_ports)).reshape(-1)
-        t = np.repeat(t_mid[start:stop], n_ports)
         t_lo = np.repeat(t_start[start:stop], n_ports)
         t_hi = np.repeat(t_end[start:stop], n_ports)
+        t = 0.5 * (t_lo + t_hi)
         fine.add((fine_id[start:stop, None] * n_ports + port).reshape(-1), v, base, t, t_lo, t_hi, None)
         coarse.add((coarse_id[start:stop, None] * n_ports + port).reshape(-1), v, base, t, t_lo, t_hi, flat)
         start = stop
     seen = coarse.count > 0
-    row_of_group = np.cumsum(seen) - 1
+    row_of_group = (np.cumsum(seen) - 1).astype(np.int32)
     row_of_reading = row_of_group[coarse_id[:, None] * n_ports + port[None, :]]
-    return (fine.sums(fine_keys, n_ports, d, ("segment", "pass_index", "setting")),
-            coarse.sums(coarse_keys, n_ports, d, ("segment", "setting")), row_of_reading)
+    return fine.repeats(), coarse.sums(coarse_keys, n_ports, d, ("segment", "setting")), row_of_reading
