@@ -28,7 +28,9 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.stats import norm
+# The standard normal's distribution function and its inverse (what scipy.stats.norm calls, without
+# importing scipy.stats: 20 MB and 0.7 s an analysis).
+from scipy.special import ndtr, ndtri
 
 LEVEL = 0.95
 
@@ -45,9 +47,9 @@ def bias_corrected_percentile(value: float, samples: np.ndarray, level: float = 
     n = s.size
     share = (np.sum(s < value) + 0.5 * np.sum(s == value)) / n
     share = min(max(share, 0.5 / n), 1.0 - 0.5 / n)
-    z0 = norm.ppf(share)
-    z = norm.ppf(0.5 + level / 2.0)
-    lo_p, hi_p = norm.cdf(2.0 * z0 - z), norm.cdf(2.0 * z0 + z)
+    z0 = ndtri(share)
+    z = ndtri(0.5 + level / 2.0)
+    lo_p, hi_p = ndtr(2.0 * z0 - z), ndtr(2.0 * z0 + z)
     lo, hi = np.quantile(s, [lo_p, hi_p])
     return float(lo), float(hi)
 
@@ -112,6 +114,6 @@ def figure_bounds(name: str, dimension: int) -> Bounds:
 def normal_interval(value: float, std: float, bounds: Bounds = (-math.inf, math.inf),
                     level: float = LEVEL) -> tuple[float, float]:
     """value +- z std clipped to ``bounds``: for a figure with no replicates (e.g. a fitted parameter)."""
-    z = float(norm.ppf(0.5 + level / 2.0))
+    z = float(ndtri(0.5 + level / 2.0))
     lo, hi = value - z * std, value + z * std
     return float(min(max(lo, bounds[0]), bounds[1])), float(max(min(hi, bounds[1]), bounds[0]))
