@@ -402,11 +402,16 @@ def _append_columns(
 
 
 def _open_locked(h5_path: Path, mode: str, wait_s: float) -> h5py.File:
-    """Open with HDF5's file lock, retrying for ``wait_s`` while another process holds it."""
+    """Open with HDF5's file lock, retrying for ``wait_s`` while another process holds it.
+
+    Readers get a small chunk cache per dataset: the columns are read once, front to back, in
+    slices of whole chunks, so a cache only holds memory (1 MB a dataset by default).
+    """
     deadline = time.monotonic() + wait_s
+    cache = {"rdcc_nbytes": _READ_CHUNK_CACHE_BYTES} if mode == "r" else {}
     while True:
         try:
-            return h5py.File(h5_path, mode)
+            return h5py.File(h5_path, mode, **cache)
         except OSError as exc:
             if "lock" not in str(exc) or time.monotonic() >= deadline:
                 raise
@@ -564,14 +569,28 @@ def _counts(f: h5py.File) -> tuple[int, int]:
     return n, m
 
 
-_OPERATOR_SLICE = 8192
+# Rows read at once: the columns into arrays made beforehand, the operators (1 kB a reading for
+# a 4x4 joint protocol) into a 1 MB slice. Whole-column reads cost HDF5 temporaries of the
+# column's size, and large slices leave the allocator holding tens of MB once freed.
+_COLUMN_SLICE = 16384
+_OPERATOR_SLICE = 1024
+_READ_CHUNK_CACHE_BYTES = 64 * 1024
+
+
+def _column_of(ds: h5py.Dataset, n: int) -> np.ndarray:
+    """The first ``n`` rows of a dataset, read a slice at a time into one array."""
+    out = np.empty((n, *ds.shape[1:]), dtype=ds.dtype)
+    for i in range(0, n, _COLUMN_SLICE):
+        j = min(i + _COLUMN_SLICE, n)
+        ds.read_direct(out, np.s_[i:j], np.s_[i:j])
+    return out
 
 
 def _read_table(f: h5py.File, header: RunHeader, n: int) -> ReadingTable:
     g = f["readings"]
     kind = g["kind"]
     names = _names_of(kind, READING_KINDS)
-    columns: dict[str, Any] = {name: g[name][:n] for name in _READING_COLUMNS if name != "operators"}
+    columns: dict[str, Any] = {name: _column_of(g[name], n) for name in _READING_COLUMNS if name != "operators"}
     for name in ("step_index", "pass_index", "point_index", "repeat_index", "flags"):
         columns[name] = columns[name].astype(np.int64, copy=False)
     # The operators column is read in slices and kept once per distinct block: as a plain array it
@@ -587,7 +606,7 @@ def _read_table(f: h5py.File, header: RunHeader, n: int) -> ReadingTable:
             f"readings/step_index holds {bad}; expected step indices from 0 to "
             f"{header.steps_total - 1} (steps_total {header.steps_total})"
         )
-    codes = kind[:n]
+    codes = _column_of(kind, n)
     if codes.size and int(codes.max()) >= len(names):
         raise _Malformed(f"readings/kind holds code {int(codes.max())}; expected 0 to {len(names) - 1}")
     try:
