@@ -14,7 +14,7 @@ from __future__ import annotations
 import os
 import time
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import BinaryIO
 
@@ -31,6 +31,7 @@ from lightloom.sequencer.storage.codec import (
 )
 from lightloom.sequencer.storage.errors import JournalDamagedError, RunExistsError, RunInUseError, StorageWriteError
 from lightloom.sequencer.model.records import FORMAT_VERSION, Event, Reading, ReadingTable, RunHeader
+from lightloom.sequencer.model.shared_operators import SharedOperators
 
 try:
     import fcntl
@@ -225,26 +226,57 @@ def read_journal(path: str | os.PathLike[str], start: int | None = None) -> Jour
     A record being appended at that moment shows as a torn tail in ``damage`` and is
     not returned. With ``start`` (a record boundary, e.g. a run file's ``journal_bytes``)
     only the records from there on are returned. Raises JournalDamagedError if the
-    header is unreadable.
+    header is unreadable. The readings are turned into columns a chunk of the file at a
+    time, the operators kept once per distinct block (SharedOperators): a whole night's
+    records (1.2 kB a reading) or operators column are never held at once.
     """
     path = Path(path)
     with _open_for_reading(path) as handle:
         header, layout, head_end = _read_head(handle, path)
-        parts, events = [], []
+        columns = _Columns(header)
+        events: list[Event] = []
         status, message, recorded = "running", "", False
         end, damage = head_end, None
         for batch in _batches(handle, path, layout, head_end if start is None else start):
-            parts.append(batch.rows)
+            columns.add(batch.rows)
             events.extend(batch.events)
             if batch.status is not None:
                 _, status, message = batch.status
                 recorded = True
             end, damage = batch.end, batch.damage
-    rows = np.concatenate(parts) if len(parts) > 1 else (parts[0] if parts else np.empty(0, layout.dtype))
-    del parts
     return JournalContents(
-        header, _table(rows, header), tuple(events), status, message, end, damage, recorded,
+        header, columns.table(), tuple(events), status, message, end, damage, recorded,
     )
+
+
+class _Columns:
+    """Readings gathered as columns a batch at a time; ``table`` joins them one column at a time."""
+
+    def __init__(self, header: RunHeader) -> None:
+        self._header = header
+        self._parts: dict[str, list[np.ndarray]] = {}
+        self._operators: list[SharedOperators] = []
+
+    def add(self, rows: np.ndarray) -> None:
+        if len(rows) == 0:
+            return
+        table = _table(rows, self._header)
+        for f in fields(table)[2:]:
+            if f.name != "operators":
+                self._parts.setdefault(f.name, []).append(getattr(table, f.name))
+        self._operators.append(SharedOperators.of(table.operators))
+
+    def table(self) -> ReadingTable:
+        h = self._header
+        if not self._operators:
+            return _table(np.empty(0, ReadingLayout.of(h).dtype), h)
+        columns: dict[str, np.ndarray | SharedOperators] = {}
+        for name, parts in self._parts.items():
+            columns[name] = parts[0] if len(parts) == 1 else np.concatenate(parts)
+            parts.clear()  # each column's pieces go as soon as it is joined
+        columns["operators"] = (self._operators[0] if len(self._operators) == 1
+                                else SharedOperators.concatenate(self._operators))
+        return ReadingTable(h.element_names, h.port_names, **columns)
 
 
 def writer_active(path: str | os.PathLike[str]) -> bool:

@@ -612,7 +612,7 @@ def _read_table(f: h5py.File, header: RunHeader, n: int) -> ReadingTable:
     try:
         return ReadingTable(
             header.element_names, header.port_names,
-            kind=names[codes].astype("<U10"), **columns,
+            kind=names.astype("<U10")[codes], **columns,
         )
     except ValueError as exc:
         raise _Malformed(str(exc)) from None
