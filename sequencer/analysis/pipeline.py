@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -48,7 +49,7 @@ from lightloom.sequencer.analysis.estimate.errors import EstimationError
 from lightloom.sequencer.analysis.estimate.hermitian import to_matrix, to_vector
 from lightloom.sequencer.analysis.estimate.linear import least_squares_operator
 from lightloom.sequencer.analysis.reduction import reduce_to_factor
-from lightloom.sequencer.analysis.sufficient import CHUNK_ROWS, Repeats, Sums, accumulate, setting_ids
+from lightloom.sequencer.analysis.sufficient import CHUNK_ROWS, Repeats, Sums, fit_sums, repeat_sums, setting_ids
 from lightloom.sequencer.optics.analyzer import complete_port_set
 from lightloom.sequencer.optics.determination import STATE_KIND, Determination, determination
 from lightloom.sequencer.optics.states import BASIS_LABELS, JOINT_KETS
@@ -227,7 +228,16 @@ def prepare(run: RunData, *, normalize: bool = False, operators: np.ndarray | No
 def prepare_segments(
     run: RunData, segments: Segments, *, normalize: bool = False, operators: np.ndarray | None = None,
 ) -> list[Prepared]:
-    """One Prepared per segment that holds measure readings (corrections computed on the whole run).
+    """One Prepared per segment that holds measure readings (corrections computed on the whole run);
+    see :func:`iter_prepared`."""
+    return list(iter_prepared(run, segments, normalize=normalize, operators=operators))
+
+
+def iter_prepared(
+    run: RunData, segments: Segments, *, normalize: bool = False, operators: np.ndarray | None = None,
+) -> Iterator[Prepared]:
+    """One Prepared per segment that holds measure readings, in order of segment, made as they are
+    asked for (corrections computed on the whole run).
 
     Each reading is corrected on its own (background interpolated in time, drift, port gains,
     optional normalisation), then the readings of each (segment, setting, port) are summed into
@@ -243,8 +253,9 @@ def prepare_segments(
     complete = _complete_ports(run)
     meas = r.of_kind("measure") & (segments.of_reading >= 0)
     rows = np.flatnonzero(meas)
+    del meas
     if rows.size == 0:
-        return []
+        return
     if normalize and not complete:
         raise AnalysisError("normalisation per setting needs ports that measure a complete set (e.g. all four ports)")
     bg_model, ref_bg = _background(run)
@@ -295,50 +306,84 @@ def prepare_segments(
         {"applied": True, "how": "each setting's readings divided by their sum over the complementary ports"}
         if normalize else {"applied": False}
     )
-    fine, per_fit, row_of_reading = accumulate(
-        rows=rows, segment=segments.of_reading[rows], pass_index=np.asarray(r.pass_index)[rows],
-        setting=setting_ids(np.asarray(r.commanded), rows), values_of=corrected, operators_of=model_operators,
-        base_variance=base_var, t_start=t_start[rows], t_end=t_end[rows], d=d,
-    )
+    seg_of = segments.of_reading[rows]
+    setting = setting_ids(np.asarray(r.commanded), rows)
     noise: dict[str, Any] = {"model": "poisson"}
     a = b = 0.0
     if not counts:
+        repeats = repeat_sums(rows=rows, segment=seg_of, pass_index=np.asarray(r.pass_index)[rows],
+                              setting=setting, values_of=corrected, n_ports=len(gains))
         a = float(np.sqrt(np.mean(base_var))) if len(base_var) else 0.0
-        a, b, how = _spread_model(fine, a)
+        a, b, how = _spread_model(repeats, a)
         noise = {"model": "gaussian", "absolute_w": a, "relative": b, "how": how}
         if bg_model.applied and a > 0:
             # a is the absolute noise of one corrected reading (gain divided out)
             a_port = a * gains
-            repeat_dof = int(np.sum(fine.count[fine.count >= 2] - 1)) if "repeated" in how else 0
+            repeat_dof = int(np.sum(repeats.count - 1)) if "repeated" in how else 0
             if bg_model.times_s.size < 2:
                 bg_model = background_model(bg_model.times_s, bg_model.values, fallback_sigma=a_port)
             else:
                 bg_model = pooled_reading_noise(bg_model, a_port, repeat_dof)
             corrections["background"] = {**background_info(bg_model), "reading_noise_how":
                                          "background spread pooled with the absolute noise of repeated readings"}
+        del repeats
     elif bg_model.applied and bg_model.times_s.size < 2:
         # One background reading of counts: its Poisson spread.
         bg_model = background_model(bg_model.times_s, bg_model.values,
                                     fallback_sigma=np.sqrt(np.clip(bg_model.values[0], 1.0, None)))
-    def divisor_of(t: np.ndarray, row: np.ndarray) -> np.ndarray:
-        """What each port reading at times ``t`` (k,) in rows ``row`` (k, P) is divided by after
-        the background subtraction: drift, gain and, the rows being means, the row's count."""
-        if counts:
-            return np.ones(row.shape)
-        return drift_model.factor(t)[:, None] * gains[None, :] * per_fit.count[row]
+    # The fits' sums a block of segments at a time (a segment is never split): a night cut into
+    # thousands of passes holds the sums of one block, and each segment's rows go to the caller
+    # before the next block is summed.
+    for block in _segment_blocks(seg_of):
+        block_rows = rows[block]
+        per_fit, row_of_reading = fit_sums(
+            rows=block_rows, segment=seg_of[block], setting=setting[block], values_of=corrected,
+            operators_of=model_operators, base_variance=base_var, t_start=t_start[block_rows],
+            t_end=t_end[block_rows], d=d,
+        )
 
-    noise_map = _correction_noise(0.5 * (t_start[rows] + t_end[rows]), divisor_of, row_of_reading, per_fit,
-                                  bg_model, drift_model)
-    out = []
-    for seg in np.unique(per_fit.segment):
-        idx = np.flatnonzero(per_fit.segment == seg)
-        part = per_fit.select(idx)
-        seg_noise = dataclasses.replace(
-            noise_map, background_map=None if noise_map.background_map is None else noise_map.background_map[idx],
-            row_times_s=noise_map.row_times_s[idx])
-        out.append(_rows_for_fit(run, part, counts, a, b, dict(corrections, noise_model=dict(noise)),
-                                 segment=int(seg), segments=segments, correction=seg_noise))
-    return out
+        def divisor_of(t: np.ndarray, row: np.ndarray, per_fit: Sums = per_fit) -> np.ndarray:
+            """What each port reading at times ``t`` (k,) in rows ``row`` (k, P) is divided by after
+            the background subtraction: drift, gain and, the rows being means, the row's count."""
+            if counts:
+                return np.ones(row.shape)
+            return drift_model.factor(t)[:, None] * gains[None, :] * per_fit.count[row]
+
+        noise_map = _correction_noise(0.5 * (t_start[block_rows] + t_end[block_rows]), divisor_of, row_of_reading,
+                                      per_fit, bg_model, drift_model)
+        del row_of_reading
+        # the sums come ordered by segment: each segment's rows are one slice
+        labels, first = np.unique(per_fit.segment, return_index=True)
+        bounds = [*first.tolist(), len(per_fit)]
+        for seg, lo, hi in zip(labels.tolist(), bounds[:-1], bounds[1:]):
+            part = per_fit.select(slice(lo, hi))
+            seg_noise = dataclasses.replace(
+                noise_map, background_map=None if noise_map.background_map is None else noise_map.background_map[lo:hi],
+                row_times_s=noise_map.row_times_s[lo:hi])
+            yield _rows_for_fit(run, part, counts, a, b, dict(corrections, noise_model=dict(noise)),
+                                segment=int(seg), segments=segments, correction=seg_noise)
+
+
+# Measure readings whose fit sums are made at once when a run is cut into segments (a segment is
+# never split): bounds the sums held, at most this many x ports rows of 40 numbers (10 MB).
+BLOCK_READINGS = 8192
+
+
+def _segment_blocks(seg_of: np.ndarray):
+    """Positions (into ``seg_of``, increasing) of blocks of whole segments of about
+    BLOCK_READINGS readings, in order of segment id."""
+    if len(seg_of) == 0:
+        return
+    order = np.argsort(seg_of, kind="stable")
+    ordered = seg_of[order]
+    # where each segment's readings start in ``order``, and where blocks may end
+    starts = np.flatnonzero(np.r_[True, ordered[1:] != ordered[:-1]])
+    ends = [*starts[1:].tolist(), len(order)]
+    lo = 0
+    for end in ends:
+        if end - lo >= BLOCK_READINGS or end == len(order):
+            yield np.sort(order[lo:end])
+            lo = end
 
 
 def _correction_noise(t_mid: np.ndarray, divisor_of, row_of_reading: np.ndarray, per_fit: Sums,
@@ -774,6 +819,6 @@ def analyse_run(
         doc, est = empty_document(run, "no measure readings yet: the first analyzer setting has not been read"), None
     parts: list[tuple[dict[str, Any], Estimate | None]] = []
     if segments is not None:
-        for prep in prepare_segments(run, segments, normalize=normalize, operators=operators):
+        for prep in iter_prepared(run, segments, normalize=normalize, operators=operators):
             parts.append(_document(run, prep, target=target, rng=rng, n_bootstrap=n_bootstrap))
     return doc, est, parts

@@ -180,11 +180,47 @@ class _Accumulator:
                     t_sum=self.tsum[keep], t_min=self.tmin[keep], t_max=self.tmax[keep])
 
 
-def accumulate(
+def _chunks(rows: np.ndarray):
+    """(start, stop, lo, mask) for runs of ``rows`` (increasing table rows) within CHUNK_ROWS of
+    each other: positions start..stop of ``rows`` are the table rows lo.. that ``mask`` selects."""
+    n = len(rows)
+    start = 0
+    while start < n:
+        lo = int(rows[start])
+        stop = int(np.searchsorted(rows, lo + CHUNK_ROWS, side="left"))
+        mask = np.zeros(int(rows[stop - 1]) - lo + 1, dtype=bool)
+        mask[rows[start:stop] - lo] = True
+        yield start, stop, lo, mask
+        start = stop
+
+
+def repeat_sums(
+    *, rows: np.ndarray, segment: np.ndarray, pass_index: np.ndarray, setting: np.ndarray, values_of, n_ports: int,
+) -> Repeats:
+    """Count, sum and sum of squares of the corrected readings per (segment, pass, setting, port)
+    read twice or more: the spread of a reading (pipeline._spread_model).
+
+    ``rows`` are indices into the reading table, increasing; ``segment``, ``pass_index`` and
+    ``setting`` are per measure reading (aligned with ``rows``); ``values_of(lo, hi, mask)``
+    returns the corrected readings (k, P) of table rows lo..hi that ``mask`` selects. Table rows
+    are read CHUNK_ROWS at a time; besides the sums, a few integers per reading are held.
+    """
+    if len(rows) == 0:
+        return Repeats(np.zeros(0), np.zeros(0), np.zeros(0))
+    group, keys = _dense(segment, pass_index, setting)
+    acc = _Accumulator(len(keys) * n_ports, None, spread_only=True)
+    del keys
+    port = np.arange(n_ports)
+    for start, stop, lo, mask in _chunks(rows):
+        v = np.asarray(values_of(lo, lo + len(mask), mask), dtype=float).reshape(-1)
+        acc.add((group[start:stop, None] * n_ports + port).reshape(-1), v, v, v, v, v, None)
+    return acc.repeats()
+
+
+def fit_sums(
     *,
     rows: np.ndarray,
     segment: np.ndarray,
-    pass_index: np.ndarray,
     setting: np.ndarray,
     values_of,
     operators_of,
@@ -192,51 +228,33 @@ def accumulate(
     t_start: np.ndarray,
     t_end: np.ndarray,
     d: int,
-) -> tuple[Repeats, Sums, np.ndarray]:
-    """Sums over the measure readings ``rows`` (indices into the reading table, increasing).
+) -> tuple[Sums, np.ndarray]:
+    """Sums per (segment, setting, port) with operators: the rows of the fits.
 
-    ``segment``, ``pass_index``, ``setting``, ``t_start`` and ``t_end`` are per measure reading
-    (aligned with ``rows``); ``values_of(lo, hi, mask)`` returns the corrected readings (k, P) of
-    table rows lo..hi that ``mask`` selects, ``operators_of(lo, hi, mask)`` their operators
-    (k, P, d, d) as the model uses them; ``base_variance`` (P,) is each port's per-reading variance
-    known before the fit. Table rows are read CHUNK_ROWS at a time.
+    ``rows``, ``segment``, ``setting`` and ``values_of`` as for :func:`repeat_sums`;
+    ``t_start``, ``t_end`` per measure reading; ``operators_of(lo, hi, mask)`` the operators
+    (k, P, d, d) of the selected table rows as the model uses them; ``base_variance`` (P,) each
+    port's per-reading variance known before the fit. The sums come ordered by segment.
 
-    Returns (per (segment, pass, setting, port) read twice or more, without operators: for the
-    spread of repeats; per (segment, setting, port) with operators: the rows of the fits; the
-    index (len(rows), P), int32, of each port reading's row in the latter). Besides the sums, what
-    is held is a few integers per measure reading and one chunk of rows at a time.
+    Returns (the sums; the index (len(rows), P), int32, of each port reading's row in them).
     """
-    n = len(rows)
-    empty_i = np.zeros(0, dtype=np.int64)
-    empty = Sums(empty_i, empty_i, empty_i, empty_i, np.zeros(0), np.zeros(0), np.zeros(0),
-                 np.zeros((0, d, d), complex), np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0))
-    if n == 0:
-        return (Repeats(np.zeros(0), np.zeros(0), np.zeros(0)), empty,
-                np.zeros((0, len(base_variance)), dtype=np.int32))
     n_ports = len(base_variance)
-    fine_id, fine_keys = _dense(segment, pass_index, setting)
-    coarse_id, coarse_keys = _dense(segment, setting)
-    fine = _Accumulator(len(fine_keys) * n_ports, None, spread_only=True)
-    del fine_keys
-    coarse = _Accumulator(len(coarse_keys) * n_ports, (d, d))
+    if len(rows) == 0:
+        empty_i = np.zeros(0, dtype=np.int64)
+        empty = Sums(empty_i, empty_i, empty_i, empty_i, np.zeros(0), np.zeros(0), np.zeros(0),
+                     np.zeros((0, d, d), complex), np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0))
+        return empty, np.zeros((0, n_ports), dtype=np.int32)
+    group, keys = _dense(segment, setting)
+    acc = _Accumulator(len(keys) * n_ports, (d, d))
     port = np.arange(n_ports)
-    start = 0
-    while start < n:
-        lo = int(rows[start])
-        stop = int(np.searchsorted(rows, lo + CHUNK_ROWS, side="left"))
-        mask = np.zeros(int(rows[stop - 1]) - lo + 1, dtype=bool)
-        mask[rows[start:stop] - lo] = True
+    for start, stop, lo, mask in _chunks(rows):
         v = np.asarray(values_of(lo, lo + len(mask), mask), dtype=float).reshape(-1)
         e = np.asarray(operators_of(lo, lo + len(mask), mask), dtype=np.complex128)
         flat = np.ascontiguousarray(e).reshape(len(v), d * d).view(np.float64)
         base = np.broadcast_to(base_variance, (stop - start, n_ports)).reshape(-1)
         t_lo = np.repeat(t_start[start:stop], n_ports)
         t_hi = np.repeat(t_end[start:stop], n_ports)
-        t = 0.5 * (t_lo + t_hi)
-        fine.add((fine_id[start:stop, None] * n_ports + port).reshape(-1), v, base, t, t_lo, t_hi, None)
-        coarse.add((coarse_id[start:stop, None] * n_ports + port).reshape(-1), v, base, t, t_lo, t_hi, flat)
-        start = stop
-    seen = coarse.count > 0
-    row_of_group = (np.cumsum(seen) - 1).astype(np.int32)
-    row_of_reading = row_of_group[coarse_id[:, None] * n_ports + port[None, :]]
-    return fine.repeats(), coarse.sums(coarse_keys, n_ports, d, ("segment", "setting")), row_of_reading
+        acc.add((group[start:stop, None] * n_ports + port).reshape(-1), v, base, 0.5 * (t_lo + t_hi), t_lo, t_hi, flat)
+    row_of_group = (np.cumsum(acc.count > 0) - 1).astype(np.int32)
+    row_of_reading = row_of_group[group[:, None] * n_ports + port[None, :]]
+    return acc.sums(keys, n_ports, d, ("segment", "setting")), row_of_reading
