@@ -23,8 +23,8 @@ from dataclasses import dataclass
 import numpy as np
 
 # Rows of the reading table handled at once: bounds the temporaries (operators dominate:
-# CHUNK_ROWS x ports x 16 complex numbers, about 4 MB with four ports).
-CHUNK_ROWS = 4096
+# CHUNK_ROWS x ports x 16 complex numbers, 2 MB with four ports, held two or three times).
+CHUNK_ROWS = 2048
 # Commanded settings equal to this many decimals (deg) are the same setting.
 SETTING_DECIMALS = 6
 
