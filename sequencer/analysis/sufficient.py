@@ -13,7 +13,8 @@ through a few sums:
   E_sum = sum_i f_i E_i (drift f_i and dwell folded into the operators, not into the counts).
 
 So the fit and every bootstrap replicate cost O(distinct settings x ports), and this module reads
-the readings once, in chunks of rows, holding only the sums. Pure numpy, no I/O.
+the readings in chunks of rows, holding only the sums (power readings twice: the repeats for the
+spread of a reading, then the fits' sums, a block of segments at a time). Pure numpy, no I/O.
 """
 
 from __future__ import annotations
