@@ -152,7 +152,9 @@ def _one(args: argparse.Namespace, path: str, window_s: float | None) -> int:
             doc["plots"].append(str(plot_ellipses(imaging.maps.stokes, Path(args.plots) / "stokes_ellipses.png",
                                                   title=f"{data.header.protocol_name}: polarization map")))
     if args.json:
-        print(json.dumps(doc, indent=1))
+        # written as it is encoded: a night cut into thousands of passes makes a long document
+        json.dump(doc, sys.stdout, indent=1)
+        sys.stdout.write("\n")
     elif args.csv:
         _print_csv([(path, doc)])
     else:
