@@ -804,12 +804,14 @@ def _document(run: RunData, prep: Prepared, *, target: np.ndarray | None, rng: n
 
 def analyse_run(
     run: RunData, *, rng: np.random.Generator, n_bootstrap: int = 200, normalize: bool = False,
-    operators: np.ndarray | None = None, segments: Segments | None = None,
+    operators: np.ndarray | None = None, segments: Segments | None = None, segment_estimates: bool = True,
 ) -> tuple[dict[str, Any], Estimate | None, list[tuple[dict[str, Any], Estimate | None]]]:
     """The whole-run document (always one, whatever the state of the run) and, with ``segments``,
     one document per segment (pass or time window) that holds measure readings.
 
-    Returns (document, its Estimate or None, [(segment document, Estimate or None), ...]).
+    Returns (document, its Estimate or None, [(segment document, Estimate or None), ...]). With
+    ``segment_estimates`` False the segments' Estimates are not kept (None): a night of thousands
+    of passes then holds only their documents.
     """
     target = target_of(run)
     whole = prepare_segments(run, whole_run(len(run.readings)), normalize=normalize, operators=operators)
@@ -820,5 +822,6 @@ def analyse_run(
     parts: list[tuple[dict[str, Any], Estimate | None]] = []
     if segments is not None:
         for prep in iter_prepared(run, segments, normalize=normalize, operators=operators):
-            parts.append(_document(run, prep, target=target, rng=rng, n_bootstrap=n_bootstrap))
+            part_doc, part_est = _document(run, prep, target=target, rng=rng, n_bootstrap=n_bootstrap)
+            parts.append((part_doc, part_est if segment_estimates else None))
     return doc, est, parts

@@ -91,7 +91,7 @@ def _analyse(args: argparse.Namespace, path: str, window_s: float | None, data=N
     try:
         doc, est, parts = analyse_run(
             data, rng=np.random.default_rng(args.seed), n_bootstrap=args.bootstrap,
-            normalize=args.normalize, operators=operators, segments=segments,
+            normalize=args.normalize, operators=operators, segments=segments, segment_estimates=False,
         )
     except AnalysisError as exc:
         raise UsageError(f"{path}: {exc}") from None
