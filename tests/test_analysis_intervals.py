@@ -10,7 +10,7 @@ from scipy.stats import binom
 from lightloom.sequencer.analysis.background import BackgroundModel, background_model
 from lightloom.sequencer.analysis.drift import fit_drift
 from lightloom.sequencer.analysis.intervals import (
-    basic_interval, bias_corrected_percentile, figure_bounds, physical_interval,
+    basic_interval, bias_corrected_percentile, figure_bounds, percentile_interval, physical_interval,
 )
 from lightloom.sequencer.analysis.propagation import correction_noise, interpolation_matrix
 
@@ -37,6 +37,22 @@ def test_basic_interval_reflects_the_replicates_about_the_estimate() -> None:
     # Davison and Hinkley (1997), eq. 5.6: [2 t - q(0.975), 2 t - q(0.025)]
     s = np.linspace(0.0, 1.0, 1001)
     assert basic_interval(0.8, s) == pytest.approx((1.6 - 0.975, 1.6 - 0.025))
+
+
+def test_percentile_interval_is_the_replicates_quantiles() -> None:
+    # Efron and Tibshirani (1993), ch. 13.3: [q(0.025), q(0.975)]
+    s = np.linspace(0.0, 1.0, 1001)
+    assert percentile_interval(s) == pytest.approx((0.025, 0.975))
+
+
+def test_a_fit_on_the_edge_gets_an_interval_reaching_into_the_state_space() -> None:
+    # A nearly pure truth estimated as pure (purity 1): the replicates around the fit lie below it,
+    # so the BC and basic intervals both end at 1; the percentile interval reaches down to them.
+    s = 1.0 - np.abs(np.linspace(-0.1, 0.1, 401))
+    assert bias_corrected_percentile(1.0, s)[0] > 0.99
+    assert basic_interval(1.0, s)[0] >= 1.0
+    lo, hi = physical_interval(1.0, s, (0.25, 1.0))
+    assert lo == pytest.approx(np.quantile(s, 0.025)) and hi == 1.0
 
 
 def test_physical_interval_stays_in_range_and_holds_the_estimate() -> None:

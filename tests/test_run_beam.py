@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from lightloom.sequencer.run.beam import SETTLE_READINGS, BeamWatch, MonitorLevels
 from lightloom.sequencer.run.session import log_path_for
 from lightloom.sequencer.storage import read_runfile
 from lightloom.sequencer.model.records import FLAG_AFTER_BEAM_WAIT, FLAG_DRIFT
@@ -73,11 +74,73 @@ def test_drift_beyond_the_threshold_flags_exactly_the_readings_outside_it(tmp_pa
     assert run_cli("run", "joint-16", "--bench", bench, "--out", out) == 0
     data = assert_complete(out)
     r = data.readings
-    light = r.kind != "background"
-    baseline = r.reference_w[np.flatnonzero(light)[0]]
-    outside = light & (np.abs(r.reference_w / baseline - 1.0) > 0.05)
-    assert outside.any() and not outside.all()
+    light = np.flatnonzero(r.kind != "background")
+    # The watch settles on the first SETTLE_READINGS lit readings: their median is the baseline
+    # and those readings are not judged.
+    settling, judged = light[:SETTLE_READINGS], light[SETTLE_READINGS:]
+    baseline = np.median(r.reference_w[settling])
+    outside = np.zeros(len(r.kind), dtype=bool)
+    outside[judged] = np.abs(r.reference_w[judged] / baseline - 1.0) > 0.05
+    assert outside.any() and not outside[judged].all()
     np.testing.assert_array_equal((r.flags & FLAG_DRIFT) != 0, outside)
     starts = np.count_nonzero(np.diff(outside[light].astype(int)) == 1) + int(outside[light][0])
     assert [e.kind for e in data.events].count("drift") == starts
     assert "drift: beam monitor at" in log_path_for(out).read_text()
+
+
+# --------------------------------------------------------------------------- which monitor watches
+
+def _settle(watch, levels):
+    verdicts = [watch.judge(MonitorLevels(*pair)) for pair in levels]
+    return verdicts
+
+
+def test_a_reference_meter_below_its_noise_hands_the_watch_to_the_ports_sum():
+    rng = np.random.default_rng(1)
+    watch = BeamWatch(0.3, 0.05)
+    # a 1 % pick-off of 1 uW read by a meter with 10 nW of noise, and ports that sum to 1 uW +- 2 %
+    pairs = [(1e-8 + 1e-8 * rng.standard_normal(), 1e-6 * (1 + 0.02 * rng.standard_normal())) for _ in range(SETTLE_READINGS)]
+    verdicts = _settle(watch, pairs)
+    assert watch.source == "ports" and abs(watch.baseline - 1e-6) < 1e-7
+    assert "ports' summed power" in verdicts[-1].announce and not verdicts[-1].unwatched
+    # the meter's noise goes negative: no pause, since the ports see the beam
+    assert not watch.judge(MonitorLevels(-2e-8, 1.01e-6)).lost
+    assert watch.judge(MonitorLevels(1e-8, 1e-9)).lost
+
+
+def test_a_bright_reference_meter_is_preferred():
+    watch = BeamWatch(0.3, 0.05)
+    _settle(watch, [(1e-5 * (1 + 1e-3 * k), 1e-3 * (1 - 1e-3 * k)) for k in range(SETTLE_READINGS)])
+    assert watch.source == "reference" and watch.judge(MonitorLevels(1e-7, 1e-3)).lost
+
+
+def test_when_no_monitor_stands_above_its_noise_nothing_pauses_the_run_and_the_run_is_told():
+    rng = np.random.default_rng(2)
+    watch = BeamWatch(0.3, 0.05)
+    # (judged as the reading after a pause is: a single noisy monitor cannot be told from a loss
+    # while settling, and pauses at most once a step)
+    verdicts = [watch.judge(MonitorLevels(1e-8 * rng.standard_normal(), None), provisional=False)
+                for _ in range(SETTLE_READINGS)]
+    assert watch.decided and watch.source is None
+    assert verdicts[-1].unwatched and "nothing watches the beam" in verdicts[-1].announce
+    assert not any(watch.judge(MonitorLevels(x, None)).lost for x in 1e-8 * rng.standard_normal(200))
+
+
+def test_while_settling_a_loss_needs_every_monitor_to_drop():
+    watch = BeamWatch(0.3, 0.05)
+    watch.judge(MonitorLevels(2e-9, 1e-6))  # a noisy meter's first reading happens to be small
+    assert not watch.judge(MonitorLevels(-1e-9, 1e-6)).lost  # the meter alone dropped: noise
+    lost = watch.judge(MonitorLevels(-1e-9, 1e-9))
+    assert lost.lost and not watch.decided
+
+
+def test_a_run_at_1_uW_with_a_pickoff_below_its_meter_noise_completes_without_pausing(tmp_path, capsys):
+    # At 1 uW the sim bench's 1 % pick-off (10 nW) sits at its meter's noise: before the watch
+    # chose its monitor by signal to noise, this seed paused on noise and re-measured forever.
+    bench = write_bench(tmp_path, "sim-1uW", simulation={"seed": 2, "time_scale": 0, "source": {"power": 1e-6}})
+    out = tmp_path / "run.h5"
+    assert run_cli("run", "joint-36", "--bench", bench, "--out", out, "--quiet") == 0
+    data = assert_complete(out)
+    assert "beam_lost" not in [e.kind for e in data.events]
+    assert not np.any(data.readings.flags & FLAG_AFTER_BEAM_WAIT)
+    assert "beam watch: the ports' summed power" in log_path_for(out).read_text()

@@ -24,7 +24,7 @@ from lightloom.sequencer.plan.compiler import TableModel
 from lightloom.sequencer.errors import RunFault, StorageError
 from lightloom.sequencer.plan.kinematics import approach_path
 from lightloom.sequencer.optics.analyzer import port_operators
-from lightloom.sequencer.run.beam import beam_level
+from lightloom.sequencer.run.beam import BeamWatch, MonitorLevels, monitor_levels
 from lightloom.sequencer.model.elements import ElementSettings
 from lightloom.sequencer.model.steps import StepList, Step
 from lightloom.sequencer.model.records import (
@@ -118,14 +118,6 @@ class SilentMonitor:
         pass
 
 
-@dataclass
-class _BeamWatch:
-    """Baseline and state of the beam monitor (reference meter or total detected power)."""
-
-    baseline: float | None = None
-    drifting: bool = False
-
-
 class Runner:
     """Execute ``plan`` on ``rig``, recording into ``store``.
 
@@ -152,7 +144,7 @@ class Runner:
         frames: FrameSink | None = None,
         frames_averaged: int | None = None,
         begin_reading: Callable[[int], None] | None = None,
-        beam_baseline: float | None = None,
+        beam_watch: BeamWatch | None = None,
     ) -> None:
         self.plan = plan
         self.table = table
@@ -176,8 +168,9 @@ class Runner:
         # Told the index of each step just before its detectors are read (a simulated table
         # derives that reading's noise from it, so a resumed run reads what an uninterrupted one would).
         self.begin_reading = begin_reading
-        # The beam monitor's level the run started from (given on resume; else the first reading's).
-        self._beam = _BeamWatch(baseline=beam_baseline)
+        # Which monitor watches the beam and its baseline (given on resume; else settled on the
+        # first lit readings, sequencer.run.beam).
+        self._beam = beam_watch or BeamWatch(policy.beam_loss_fraction, policy.drift_fraction)
         self._positions: dict[str, float] = {}
         self._converter_state: str | None = None
         self._shutter_open: bool | None = None
@@ -392,11 +385,10 @@ class Runner:
         ref = values.pop() if self.rig.reference is not None else math.nan
         return np.array(values, dtype=float), ref
 
-    def _wait_for_beam(self, level: float) -> None:
-        baseline = self._beam.baseline
-        assert baseline is not None
+    def _wait_for_beam(self, verdict) -> None:
+        assert verdict.level is not None and verdict.baseline is not None
         msg = (
-            f"beam lost: monitor at {level:.3g} against {baseline:.3g} "
+            f"beam lost: monitor at {verdict.level:.3g} against {verdict.baseline:.3g} "
             f"(threshold {self.policy.beam_loss_fraction:.0%}); pausing"
         )
         self.store.event(Event(self.now(), "beam_lost", msg))
@@ -409,8 +401,8 @@ class Runner:
             # Re-command the shutter open: a restarted shutter controller comes back closed.
             self._shutter_open = None
             self._set_shutter(True)
-            probe = self._probe_beam()
-            if probe is not None and probe >= self.policy.beam_loss_fraction * baseline:
+            probe = self._beam.back(self._probe_beam())
+            if probe is not None:
                 back = f"beam back after {waited:.0f} s (monitor {probe:.3g}); measuring the step again"
                 self.store.event(Event(self.now(), "beam_back", back))
                 self.log(back)
@@ -421,19 +413,17 @@ class Runner:
             "(thresholds.beam_wait_s); check the laser and the beam path, then `lightloom resume`"
         )
 
-    def _probe_beam(self) -> float | None:
-        probe_dwell = 0.05
-        if self.rig.reference is not None:
-            return self._read_one(self.rig.reference, probe_dwell)
-        values, _ = self._read_all(probe_dwell)
-        gains = np.array([p.gain for p in self.table.ports])
-        return float(np.sum(values / gains))
+    def _probe_beam(self) -> MonitorLevels:
+        """A short reading of every monitor (reference meter and ports)."""
+        values, ref = self._read_all(0.05)
+        return monitor_levels("measure", values, ref, self.table)
 
     # ------------------------------------------------------------------ steps
     def measure_step(self, step: Step) -> Reading:
         """Move, read every port, check the beam; returns the reading (not yet stored)."""
         flags = 0
         redos = 0
+        beam_redos = 0
         while True:
             self._retried = False
             self._state_lost = False
@@ -456,26 +446,39 @@ class Runner:
                 self.log(f"an instrument reconnected or lost its position during step {step.index}; measuring that step again")
                 flags |= FLAG_RETRIED
                 continue
-            level = beam_level(step.kind, values, ref, self.table)
-            if level is not None and step.kind != "background":
-                if self._beam.baseline is None:
-                    self._beam.baseline = level if level > 0 else None
-                elif level < self.policy.beam_loss_fraction * self._beam.baseline:
-                    self._wait_for_beam(level)
+            if step.kind != "background":
+                verdict = self._beam.judge(monitor_levels(step.kind, values, ref, self.table),
+                                           provisional=beam_redos == 0)
+                if verdict.announce:
+                    self.log(verdict.announce)
+                    if verdict.unwatched:
+                        self.store.event(Event(self.now(), "note", verdict.announce))
+                        self._tell(self.monitor.warning, verdict.announce)
+                if verdict.lost:
+                    beam_redos += 1
+                    if beam_redos > self.policy.retry_attempts:
+                        raise RunFault(
+                            f"step {step.index}: the beam monitor fell below "
+                            f"{self.policy.beam_loss_fraction:.0%} of its baseline {beam_redos} times although a "
+                            "probe found the beam back each time; check the monitor (a loose fibre, a noisy "
+                            "meter) or raise thresholds.beam_loss_fraction, then `lightloom resume`"
+                        )
+                    self._wait_for_beam(verdict)
                     flags |= FLAG_AFTER_BEAM_WAIT
                     continue
-                elif abs(level / self._beam.baseline - 1.0) > self.policy.drift_fraction:
+                if verdict.drift:
                     flags |= FLAG_DRIFT
                     if not self._beam.drifting:
                         self._beam.drifting = True
+                        assert verdict.level is not None and verdict.baseline is not None
                         msg = (
-                            f"drift: beam monitor at {level / self._beam.baseline:.1%} of its initial value "
+                            f"drift: beam monitor at {verdict.level / verdict.baseline:.1%} of its baseline "
                             f"(threshold +-{self.policy.drift_fraction:.0%})"
                         )
                         self.store.event(Event(self.now(), "drift", msg))
                         self.log(msg)
                         self._tell(self.monitor.warning, msg)
-                else:
+                elif verdict.level is not None:
                     self._beam.drifting = False
             if self._retried:
                 flags |= FLAG_RETRIED

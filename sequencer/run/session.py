@@ -26,7 +26,7 @@ from lightloom.sequencer.errors import EXIT_FAULT, EXIT_INTERRUPTED, EXIT_OK, Be
 from lightloom.sequencer.optics.states import BASIS_LABELS
 from lightloom.sequencer.model.steps import StepList
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol, parse_protocol
-from lightloom.sequencer.run.beam import beam_level, ports_watch_the_beam
+from lightloom.sequencer.run.beam import BeamWatch, monitor_levels, ports_watch_the_beam, settled_watch
 from lightloom.sequencer.run.runner import Rig, Runner, RunPolicy, StopRequested, hms
 from lightloom.sequencer.run.safety import LASER_SAFETY_CAUTION
 from lightloom.sequencer.outputs import check_new_output
@@ -484,7 +484,7 @@ def _execute(protocol, bench, plan, assembled, store, out_path, done, console, l
                         run_start=run_start,
                         parallel_reads=not (bench.is_simulated and bench.simulation.time_scale == 0),
                         begin_reading=getattr(assembled.simulated_table, "begin_step", None),
-                        beam_baseline=_initial_beam_level(store, table),
+                        beam_watch=_resumed_beam_watch(store, table, policy_for(bench)),
                         **runner_kwargs)
         with stop_on_sigterm():
             status, message = runner.execute(done)
@@ -533,12 +533,13 @@ def _publish_frames(frames, store: RunStore, out_path: Path, console: Console | 
         _say(console, f"warning: the frames stay in {out_path.name}.frames only: {exc}")
 
 
-def _initial_beam_level(store: RunStore, table) -> float | None:
-    """The beam baseline of a resumed run, from its first shutter-open reading (None if none)."""
-    row = store.summary.first_beam_row
-    if row is None:
+def _resumed_beam_watch(store: RunStore, table, policy) -> BeamWatch | None:
+    """The beam watch of a resumed run, settled on its first shutter-open readings (None if none)."""
+    rows = store.summary.first_beam_rows
+    if not rows:
         return None
-    return beam_level("measure", row["values"], float(row["reference_w"]), table)
+    levels = [monitor_levels("measure", row["values"], float(row["reference_w"]), table) for row in rows]
+    return settled_watch(levels, policy.beam_loss_fraction, policy.drift_fraction)
 
 
 def _as_mask(done, total: int) -> np.ndarray:

@@ -15,7 +15,7 @@ from __future__ import annotations
 import os
 import time
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -90,6 +90,8 @@ def _foreign_message(h5_path: Path, journal_path: Path, file_header: RunHeader, 
 
 
 _BACKGROUND = READING_KINDS.index("background")
+# Shutter-open readings kept for a resumed run's beam watch (run.beam.SETTLE_READINGS of them).
+FIRST_BEAM_ROWS = 5
 
 
 @dataclass
@@ -97,15 +99,15 @@ class ResumeSummary:
     """What resume needs to know of the readings so far, gathered a chunk at a time.
 
     ``done`` marks the steps with a reading (one flag per step of the plan);
-    ``first_beam_row`` is the first reading taken with the shutter open (a structured row
-    of the journal layout), ``t_first`` the earliest reading start and ``t_last`` the latest
+    ``first_beam_rows`` are the first ``FIRST_BEAM_ROWS`` readings taken with the shutter open
+    (structured rows of the journal layout; a resumed run's beam watch settles on them), ``t_first`` the earliest reading start and ``t_last`` the latest
     reading end (UNIX s). ``last_row`` is the reading of the highest step index and
     ``last_readback`` (one per element, NaN where never set) the read-back of the highest-step
     reading that set each element: where a stopped run left its stages.
     """
 
     done: np.ndarray
-    first_beam_row: np.ndarray | None = None
+    first_beam_rows: list[np.ndarray] = field(default_factory=list)
     t_first: float | None = None
     t_last: float | None = None
     n_readings: int = 0
@@ -118,10 +120,10 @@ class ResumeSummary:
         steps = rows["step_index"]
         inside = steps[(steps >= 0) & (steps < len(self.done))]
         self.done[inside] = True
-        if self.first_beam_row is None:
+        if len(self.first_beam_rows) < FIRST_BEAM_ROWS:
             open_ = np.flatnonzero(rows["kind"] != _BACKGROUND)
-            if open_.size:
-                self.first_beam_row = rows[open_[0]].copy()
+            for i in open_[:FIRST_BEAM_ROWS - len(self.first_beam_rows)]:
+                self.first_beam_rows.append(rows[i].copy())
         t = float(np.min(rows["t_start"]))
         self.t_first = t if self.t_first is None else min(self.t_first, t)
         t = float(np.max(rows["t_end"]))
