@@ -492,14 +492,25 @@ def _rescale_sigma(prep: Prepared, fit: MleResult) -> tuple[np.ndarray, float]:
     """Scale sigma so that the per-reading chi^2 per degree of freedom is at least 1.
 
     The per-reading chi^2 is the rows' chi^2 about the fit plus that of the readings about their
-    row means (Prepared.within_chi2), so aggregation does not change the rule.
+    row means (Prepared.within_chi2), so aggregation does not change the rule. The rows' chi^2
+    counts the background subtraction's error, which the rows share, in their covariance
+    (sigma^2 on the diagonal plus B B^T, B the background map times the background readings'
+    noise; Woodbury's identity, so the cost is in background readings, not rows^2): that error is
+    drawn into the replicates anyway, and a residual it explains must not widen sigma as well.
     """
     assert prep.sigma is not None
     pred = np.einsum("ij,nji->n", fit.intensity * fit.rho, prep.operators).real
     resid = prep.values - pred
     d = prep.operators.shape[-1]
     dof = max(1, len(prep.values) - d * d + prep.within_dof)
-    chi2 = float(np.sum((resid / prep.sigma) ** 2)) + prep.within_chi2
+    w = resid / prep.sigma**2
+    chi2 = float(np.sum(resid * w)) + prep.within_chi2
+    noise = prep.correction_noise
+    if noise is not None and noise.background_map is not None and noise.background_sigma.size:
+        b = noise.background_map.multiply(noise.background_sigma[None, :]).tocsc()
+        bt_w = np.asarray(b.T @ w).ravel()
+        inner = np.eye(b.shape[1]) + (b.T @ b.multiply(1.0 / prep.sigma[:, None] ** 2)).toarray()
+        chi2 -= float(bt_w @ np.linalg.solve(inner, bt_w))
     scale = math.sqrt(max(chi2 / dof, 1.0))
     return prep.sigma * scale, scale
 
