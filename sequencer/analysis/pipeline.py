@@ -357,11 +357,23 @@ def iter_prepared(
         bounds = [*first.tolist(), len(per_fit)]
         for seg, lo, hi in zip(labels.tolist(), bounds[:-1], bounds[1:]):
             part = per_fit.select(slice(lo, hi))
-            seg_noise = dataclasses.replace(
-                noise_map, background_map=None if noise_map.background_map is None else noise_map.background_map[lo:hi],
-                row_times_s=noise_map.row_times_s[lo:hi])
             yield _rows_for_fit(run, part, counts, a, b, dict(corrections, noise_model=dict(noise)),
-                                segment=int(seg), segments=segments, correction=seg_noise)
+                                segment=int(seg), segments=segments,
+                                correction=_segment_noise(noise_map, lo, hi, keep_all=segments.kind == "run"))
+
+
+def _segment_noise(noise: CorrectionNoise, lo: int, hi: int, *, keep_all: bool) -> CorrectionNoise:
+    """The correction noise of rows lo..hi. Unless ``keep_all``, only the background readings those
+    rows are interpolated from stay in the map: a pass touches two or three of a night's thousands,
+    and each bootstrap replicate draws an error for every background reading in the map."""
+    if noise.background_map is None:
+        return dataclasses.replace(noise, row_times_s=noise.row_times_s[lo:hi])
+    bmap = noise.background_map[lo:hi]
+    sigma = noise.background_sigma
+    if not keep_all:
+        used = np.unique(bmap.indices)
+        bmap, sigma = bmap[:, used], sigma[used]
+    return dataclasses.replace(noise, background_map=bmap, background_sigma=sigma, row_times_s=noise.row_times_s[lo:hi])
 
 
 # Measure readings whose fit sums are made at once when a run is cut into segments (a segment is
