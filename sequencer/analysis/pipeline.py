@@ -833,7 +833,18 @@ def analyse_run(
         doc, est = empty_document(run, "no measure readings yet: the first analyzer setting has not been read"), None
     parts: list[tuple[dict[str, Any], Estimate | None]] = []
     if segments is not None:
-        for prep in iter_prepared(run, segments, normalize=normalize, operators=operators):
-            part_doc, part_est = _document(run, prep, target=target, rng=rng, n_bootstrap=n_bootstrap)
+        for part_doc, part_est in segment_documents(run, segments, rng=rng, n_bootstrap=n_bootstrap,
+                                                    normalize=normalize, operators=operators):
             parts.append((part_doc, part_est if segment_estimates else None))
     return doc, est, parts
+
+
+def segment_documents(
+    run: RunData, segments: Segments, *, rng: np.random.Generator, n_bootstrap: int = 200,
+    normalize: bool = False, operators: np.ndarray | None = None,
+) -> Iterator[tuple[dict[str, Any], Estimate | None]]:
+    """(document, Estimate or None) of each segment that holds measure readings, made as asked
+    for (what :func:`analyse_run` lists after the whole run, from the same ``rng``)."""
+    target = target_of(run)
+    for prep in iter_prepared(run, segments, normalize=normalize, operators=operators):
+        yield _document(run, prep, target=target, rng=rng, n_bootstrap=n_bootstrap)
