@@ -10,7 +10,8 @@ from scipy.stats import binom
 from lightloom.sequencer.analysis.background import BackgroundModel, background_model
 from lightloom.sequencer.analysis.drift import fit_drift
 from lightloom.sequencer.analysis.intervals import (
-    basic_interval, bias_corrected_percentile, figure_bounds, percentile_interval, physical_interval,
+    basic_interval, bias_corrected_percentile, figure_bounds, inverted_test_interval, percentile_interval,
+    physical_interval,
 )
 from lightloom.sequencer.analysis.propagation import correction_noise, interpolation_matrix
 
@@ -53,6 +54,21 @@ def test_a_fit_on_the_edge_gets_an_interval_reaching_into_the_state_space() -> N
     assert basic_interval(1.0, s)[0] >= 1.0
     lo, hi = physical_interval(1.0, s, (0.25, 1.0))
     assert lo == pytest.approx(np.quantile(s, 0.025)) and hi == 1.0
+
+
+def test_test_inversion_keeps_the_candidates_whose_replicates_hold_the_estimate() -> None:
+    # Neyman's construction (Casella and Berger 2002, sec. 9.2.1) for a normal mean with unit
+    # spread: candidates mu, replicates' 95 % range mu +- 1.96; the accepted mu are x +- 1.96.
+    mu = np.linspace(-5.0, 5.0, 11)
+    q = np.column_stack([mu - 1.96, mu + 1.96])
+    lo, hi = inverted_test_interval(0.3, mu, mu, q, fine=10001)
+    assert (lo, hi) == pytest.approx((0.3 - 1.96, 0.3 + 1.96), abs=2e-3)
+    # a biased estimator (its mean 0.1 below the truth, common practice, no source): the interval
+    # moves up by the bias
+    lo, hi = inverted_test_interval(0.3, mu, mu, q - 0.1, fine=10001)
+    assert (lo, hi) == pytest.approx((0.4 - 1.96, 0.4 + 1.96), abs=2e-3)
+    # no candidate holds an estimate far outside them all
+    assert inverted_test_interval(50.0, mu, mu, q) is None
 
 
 def test_physical_interval_stays_in_range_and_holds_the_estimate() -> None:

@@ -108,6 +108,37 @@ def physical_interval(value: float, samples: np.ndarray, bounds: Bounds = (-math
     return float(min(max(lo, lo_b), hi_b)), float(max(min(hi, hi_b), lo_b))
 
 
+def inverted_test_interval(value: float, path: np.ndarray, figure_on_path: np.ndarray,
+                           replicate_quantiles: np.ndarray, fine: int = 400) -> tuple[float, float] | None:
+    """Test inversion along a line of candidate truths (Neyman's construction; Casella and Berger,
+    Statistical Inference, 2nd ed. 2002, sec. 9.2.1): the figure's values at the candidates whose
+    replicates' central range (quantiles, e.g. 2.5 and 97.5 %) holds the observed ``value``.
+
+    Parameters
+    ----------
+    value : the figure at the estimate.
+    path : (k,) increasing coordinates of the candidates along the line.
+    figure_on_path : (k,) the figure at each candidate.
+    replicate_quantiles : (k, 2) the low and high quantile of the figure over replicates drawn
+        around each candidate.
+    fine : points at which the three curves are interpolated linearly between the candidates.
+
+    Returns
+    -------
+    (lo, hi) the hull of the accepted candidates' figure, or None when none is accepted.
+    """
+    x = np.asarray(path, dtype=float)
+    grid = np.linspace(x[0], x[-1], fine)
+    q = np.asarray(replicate_quantiles, dtype=float)
+    lo_q, hi_q = np.interp(grid, x, q[:, 0]), np.interp(grid, x, q[:, 1])
+    fig = np.interp(grid, x, np.asarray(figure_on_path, dtype=float))
+    tol = 1e-12 * max(1.0, abs(value))
+    ok = (lo_q <= value + tol) & (value - tol <= hi_q)
+    if not ok.any():
+        return None
+    return float(fig[ok].min()), float(fig[ok].max())
+
+
 def figure_bounds(name: str, dimension: int) -> Bounds:
     """Physical range of a figure of merit by its name in the analysis (purity, concurrence, ...)."""
     if name == "purity":
