@@ -113,7 +113,7 @@ def fit_drift(t_s: np.ndarray, reference: np.ndarray, *, source: str, max_degree
     t, y = t[ok], y[ok]
     n = y.size
     if n < 3:
-        return no_drift(source, f"only {n} reference readings")
+        return no_drift(source, f"only {n} reference reading{'' if n == 1 else 's'}")
     mean = float(y.mean())
     noise = float(y.std(ddof=1))
     if mean <= 0 or mean < 2.0 * noise / math.sqrt(n):
