@@ -64,6 +64,20 @@ def test_per_pass_gives_one_document_per_pass_with_the_whole_run_keys(night: Pat
     assert passes[0]["t_end"] < passes[1]["t_start"] < passes[1]["t_end"] < passes[2]["t_start"]
 
 
+def test_per_pass_json_written_pass_by_pass_is_the_document_of_the_analysis(night: Path, capsys) -> None:
+    # --json alone writes each pass as it is made; the document is the one analyse_run makes
+    from lightloom.sequencer.analysis.pipeline import analyse_run, by_pass
+
+    capsys.readouterr()
+    assert main(["analyze", str(night), "--per-pass", "--json", "--bootstrap", "20"]) == 0
+    text = capsys.readouterr().out
+    run = load_run(night)
+    doc, _, parts = analyse_run(run, rng=np.random.default_rng(0), n_bootstrap=20,
+                                segments=by_pass(np.asarray(run.readings.pass_index)))
+    doc["passes"] = [d for d, _ in parts]
+    assert text == json.dumps(json.loads(json.dumps(doc)), indent=1) + "\n"
+
+
 def test_window_cuts_by_time(night: Path, capsys) -> None:
     doc = _json(capsys, str(night), "--window", "5min")
     windows = doc["passes"]

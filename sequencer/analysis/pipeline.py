@@ -357,11 +357,23 @@ def iter_prepared(
         bounds = [*first.tolist(), len(per_fit)]
         for seg, lo, hi in zip(labels.tolist(), bounds[:-1], bounds[1:]):
             part = per_fit.select(slice(lo, hi))
-            seg_noise = dataclasses.replace(
-                noise_map, background_map=None if noise_map.background_map is None else noise_map.background_map[lo:hi],
-                row_times_s=noise_map.row_times_s[lo:hi])
             yield _rows_for_fit(run, part, counts, a, b, dict(corrections, noise_model=dict(noise)),
-                                segment=int(seg), segments=segments, correction=seg_noise)
+                                segment=int(seg), segments=segments,
+                                correction=_segment_noise(noise_map, lo, hi, keep_all=segments.kind == "run"))
+
+
+def _segment_noise(noise: CorrectionNoise, lo: int, hi: int, *, keep_all: bool) -> CorrectionNoise:
+    """The correction noise of rows lo..hi. Unless ``keep_all``, only the background readings those
+    rows are interpolated from stay in the map: a pass touches two or three of a night's thousands,
+    and each bootstrap replicate draws an error for every background reading in the map."""
+    if noise.background_map is None:
+        return dataclasses.replace(noise, row_times_s=noise.row_times_s[lo:hi])
+    bmap = noise.background_map[lo:hi]
+    sigma = noise.background_sigma
+    if not keep_all:
+        used = np.unique(bmap.indices)
+        bmap, sigma = bmap[:, used], sigma[used]
+    return dataclasses.replace(noise, background_map=bmap, background_sigma=sigma, row_times_s=noise.row_times_s[lo:hi])
 
 
 # Measure readings whose fit sums are made at once when a run is cut into segments (a segment is
@@ -832,7 +844,18 @@ def analyse_run(
         doc, est = empty_document(run, "no measure readings yet: the first analyzer setting has not been read"), None
     parts: list[tuple[dict[str, Any], Estimate | None]] = []
     if segments is not None:
-        for prep in iter_prepared(run, segments, normalize=normalize, operators=operators):
-            part_doc, part_est = _document(run, prep, target=target, rng=rng, n_bootstrap=n_bootstrap)
+        for part_doc, part_est in segment_documents(run, segments, rng=rng, n_bootstrap=n_bootstrap,
+                                                    normalize=normalize, operators=operators):
             parts.append((part_doc, part_est if segment_estimates else None))
     return doc, est, parts
+
+
+def segment_documents(
+    run: RunData, segments: Segments, *, rng: np.random.Generator, n_bootstrap: int = 200,
+    normalize: bool = False, operators: np.ndarray | None = None,
+) -> Iterator[tuple[dict[str, Any], Estimate | None]]:
+    """(document, Estimate or None) of each segment that holds measure readings, made as asked
+    for (what :func:`analyse_run` lists after the whole run, from the same ``rng``)."""
+    target = target_of(run)
+    for prep in iter_prepared(run, segments, normalize=normalize, operators=operators):
+        yield _document(run, prep, target=target, rng=rng, n_bootstrap=n_bootstrap)

@@ -68,9 +68,13 @@ def run(args: argparse.Namespace) -> int:
     return _one(args, args.files[0], window_s)
 
 
-def _analyse(args: argparse.Namespace, path: str, window_s: float | None, data=None):
-    """(RunData, document, whole-run Estimate or None, [(segment document, Estimate or None)])."""
-    from lightloom.sequencer.analysis.pipeline import AnalysisError, analyse_run, by_pass, by_window
+def _analyse(args: argparse.Namespace, path: str, window_s: float | None, data=None, *, stream: bool = False):
+    """(RunData, document, whole-run Estimate or None, [(segment document, Estimate or None)]).
+
+    With ``stream`` the documents of the passes or windows are not made here: ``doc["passes"]``
+    is an iterator that makes them one at a time as the JSON is written (``_write_json``).
+    """
+    from lightloom.sequencer.analysis.pipeline import AnalysisError, analyse_run, by_pass, by_window, segment_documents
     from lightloom.sequencer.errors import UsageError
     from lightloom.sequencer.storage.store import load_run
 
@@ -88,10 +92,11 @@ def _analyse(args: argparse.Namespace, path: str, window_s: float | None, data=N
         segments = by_pass(np.asarray(data.readings.pass_index))
     elif window_s is not None:
         segments = by_window(0.5 * (np.asarray(data.readings.t_start) + np.asarray(data.readings.t_end)), window_s)
+    rng = np.random.default_rng(args.seed)
     try:
         doc, est, parts = analyse_run(
-            data, rng=np.random.default_rng(args.seed), n_bootstrap=args.bootstrap,
-            normalize=args.normalize, operators=operators, segments=segments, segment_estimates=False,
+            data, rng=rng, n_bootstrap=args.bootstrap, normalize=args.normalize, operators=operators,
+            segments=None if stream else segments, segment_estimates=False,
         )
     except AnalysisError as exc:
         raise UsageError(f"{path}: {exc}") from None
@@ -105,7 +110,10 @@ def _analyse(args: argparse.Namespace, path: str, window_s: float | None, data=N
         doc["field_maps"] = portrait_json(portrait(est.rho))
     if doc.get("determines") == "partial":
         doc["state"] = "not determined: " + "; ".join(doc.get("missing", []))
-    if segments is not None:
+    if segments is not None and stream:
+        doc["passes"] = (d for d, _ in segment_documents(data, segments, rng=rng, n_bootstrap=args.bootstrap,
+                                                          normalize=args.normalize, operators=operators))
+    elif segments is not None:
         doc["passes"] = [d for d, _ in parts]
     return data, doc, est, parts
 
@@ -118,7 +126,9 @@ def _one(args: argparse.Namespace, path: str, window_s: float | None) -> int:
     element = scanned_element(data)
     if element is not None:
         return _scan(args, path, data, element)
-    data, doc, est, parts = _analyse(args, path, window_s, data)
+    # --json alone writes each pass's document as it is made: a night of thousands of passes
+    # then never holds them all
+    data, doc, est, parts = _analyse(args, path, window_s, data, stream=bool(args.json and not args.plots))
     stability = _stability(args, data)
     from lightloom.sequencer import imaging_report
     from lightloom.sequencer.errors import UsageError
@@ -152,9 +162,7 @@ def _one(args: argparse.Namespace, path: str, window_s: float | None) -> int:
             doc["plots"].append(str(plot_ellipses(imaging.maps.stokes, Path(args.plots) / "stokes_ellipses.png",
                                                   title=f"{data.header.protocol_name}: polarization map")))
     if args.json:
-        # written as it is encoded: a night cut into thousands of passes makes a long document
-        json.dump(doc, sys.stdout, indent=1)
-        sys.stdout.write("\n")
+        _write_json(doc)
     elif args.csv:
         _print_csv([(path, doc)])
     else:
@@ -173,6 +181,25 @@ def _one(args: argparse.Namespace, path: str, window_s: float | None) -> int:
         for p in doc.get("plots", []):
             console.print(f"  figure: {p}", highlight=False)
     return 0
+
+
+def _write_json(doc: dict[str, Any]) -> None:
+    """The document on stdout as ``json.dumps(doc, indent=1)`` writes it, written as it is encoded;
+    ``passes`` given as an iterator comes last, each pass written as it is made."""
+    passes = doc.get("passes")
+    out = sys.stdout
+    if passes is None or isinstance(passes, list):
+        json.dump(doc, out, indent=1)
+        out.write("\n")
+        return
+    head = json.dumps({k: v for k, v in doc.items() if k != "passes"}, indent=1)
+    out.write((head[:-2] + ",\n" if len(head) > 2 else "{\n") + ' "passes": [')
+    first = True
+    for part in passes:
+        # json escapes newlines inside strings: every newline here is the layout's
+        out.write(("\n" if first else ",\n") + "\n".join("  " + line for line in json.dumps(part, indent=1).split("\n")))
+        first = False
+    out.write("]\n}\n" if first else "\n ]\n}\n")
 
 
 def _many(args: argparse.Namespace) -> int:
