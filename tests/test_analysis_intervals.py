@@ -187,3 +187,20 @@ def test_spread_model_leaves_out_a_relative_term_the_data_cannot_see() -> None:
     a_fit, b_fit = fit_spread(ss, np.ones(36), x.mean(axis=1))
     assert b_fit == 0.0
     assert a_fit == pytest.approx(a, rel=0.3)
+
+
+def test_rows_chi2_counts_shared_errors_in_the_covariance_on_either_side() -> None:
+    # r^T (D + B B^T)^-1 r by a dense solve, against Woodbury's identity (few shared columns) and
+    # the direct solve (many shared columns): linear algebra, common practice, no source.
+    from scipy import sparse
+
+    from lightloom.sequencer.analysis.pipeline import rows_chi2
+
+    rng = np.random.default_rng(4)
+    for n, m in ((30, 6), (8, 40)):
+        r = rng.standard_normal(n)
+        sigma = 0.5 + rng.random(n)
+        b = sparse.random(n, m, density=0.3, random_state=5, format="csr")
+        dense = float(r @ np.linalg.solve(np.diag(sigma**2) + (b @ b.T).toarray(), r))
+        assert rows_chi2(r, sigma, b) == pytest.approx(dense, rel=1e-10)
+        assert rows_chi2(r, sigma, b) < rows_chi2(r, sigma, None)

@@ -63,6 +63,9 @@ MIN_RELATIVE_SPREAD = 1e-4
 # Relative spread assumed for partial estimates when nothing measures the noise (no repeats and no
 # redundant readings yet): deliberately wide, 1% a reading, and said so in the document.
 UNMEASURED_RELATIVE_SPREAD = 1e-2
+# Largest matrix side for counting the background's shared error in the residual chi^2 (a dense
+# solve of this size takes about 0.5 s and 30 MB).
+MAX_COVARIANCE_SIZE = 2000
 
 
 class AnalysisError(ValueError):
@@ -500,6 +503,29 @@ def _functions(analyzes: tuple[str, ...], target: np.ndarray | None):
     return fns
 
 
+def rows_chi2(resid: np.ndarray, sigma: np.ndarray, shared=None) -> float:
+    """r^T S^-1 r for rows with independent errors ``sigma`` (n,) plus shared ones: S = diag(sigma^2)
+    + B B^T, ``shared`` = B a sparse (n, m) matrix (None: diagonal only). Solved in the smaller of
+    the two sides (Woodbury's identity when m < n); when both exceed MAX_COVARIANCE_SIZE the
+    diagonal part alone is used (larger, i.e. the safe side for a residual check)."""
+    r = np.asarray(resid, dtype=float)
+    sig2 = np.asarray(sigma, dtype=float) ** 2
+    w = r / sig2
+    diagonal = float(r @ w)
+    if shared is None or shared.shape[1] == 0:
+        return diagonal
+    b = shared.tocsc()
+    n_rows, m = b.shape
+    if m <= n_rows and m <= MAX_COVARIANCE_SIZE:
+        # r^T S^-1 r = r^T D^-1 r - (B^T D^-1 r)^T (I + B^T D^-1 B)^-1 (B^T D^-1 r)
+        bt_w = np.asarray(b.T @ w).ravel()
+        inner = np.eye(m) + (b.T @ b.multiply(1.0 / sig2[:, None])).toarray()
+        return diagonal - float(bt_w @ np.linalg.solve(inner, bt_w))
+    if n_rows <= MAX_COVARIANCE_SIZE:
+        return float(r @ np.linalg.solve(np.diag(sig2) + (b @ b.T).toarray(), r))
+    return diagonal
+
+
 def _rescale_sigma(prep: Prepared, fit: MleResult) -> tuple[np.ndarray, float]:
     """Scale sigma so that the per-reading chi^2 per degree of freedom is at least 1.
 
@@ -507,22 +533,19 @@ def _rescale_sigma(prep: Prepared, fit: MleResult) -> tuple[np.ndarray, float]:
     row means (Prepared.within_chi2), so aggregation does not change the rule. The rows' chi^2
     counts the background subtraction's error, which the rows share, in their covariance
     (sigma^2 on the diagonal plus B B^T, B the background map times the background readings'
-    noise; Woodbury's identity, so the cost is in background readings, not rows^2): that error is
-    drawn into the replicates anyway, and a residual it explains must not widen sigma as well.
+    noise; rows_chi2): that error is drawn into the replicates anyway, and a residual it explains
+    must not widen sigma as well.
     """
     assert prep.sigma is not None
     pred = np.einsum("ij,nji->n", fit.intensity * fit.rho, prep.operators).real
     resid = prep.values - pred
     d = prep.operators.shape[-1]
     dof = max(1, len(prep.values) - d * d + prep.within_dof)
-    w = resid / prep.sigma**2
-    chi2 = float(np.sum(resid * w)) + prep.within_chi2
     noise = prep.correction_noise
+    shared = None
     if noise is not None and noise.background_map is not None and noise.background_sigma.size:
-        b = noise.background_map.multiply(noise.background_sigma[None, :]).tocsc()
-        bt_w = np.asarray(b.T @ w).ravel()
-        inner = np.eye(b.shape[1]) + (b.T @ b.multiply(1.0 / prep.sigma[:, None] ** 2)).toarray()
-        chi2 -= float(bt_w @ np.linalg.solve(inner, bt_w))
+        shared = noise.background_map.multiply(noise.background_sigma[None, :]).tocsr()
+    chi2 = rows_chi2(resid, prep.sigma, shared) + prep.within_chi2
     scale = math.sqrt(max(chi2 / dof, 1.0))
     return prep.sigma * scale, scale
 
