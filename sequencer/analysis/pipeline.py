@@ -615,6 +615,7 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
         n_resamples=n_bootstrap, fit=fit, tol=BOOTSTRAP_TOLERANCE,
         bounds={name: figure_bounds(name, d) for name in fns},
         perturb=prep.correction_noise.perturb if prep.correction_noise is not None else None,
+        inverted=[name for name in fns if not name.startswith(("stokes_", "_re_", "_im_"))],
     )
     figs = {k: (float(v.value), float(v.std), v.interval) for k, v in boot.figures.items()}
     rho_std = np.zeros((d, d), dtype=np.complex128)
