@@ -228,15 +228,17 @@ def parametric_bootstrap(
     # dominant eigenvector, each with replicates of its own; a candidate whose replicates' central
     # 95 % holds the estimate is kept, and the figure's range over the kept ones joins the
     # interval (inverted_test_interval).
+    tested = {name: func for name, func in functions.items() if inverted is None or name in inverted}
     candidates = path_states(estimate.rho)
     per_candidate = max(20, n_resamples // 4)
     alpha = (1.0 - LEVEL) / 2.0
-    on_path = _evaluate(functions, candidates)
-    path_q = {name: np.empty((len(candidates), 2)) for name in functions}
-    for k, candidate in enumerate(candidates):
-        rep = _evaluate(functions, replicate(candidate, per_candidate).rho)
-        for name in functions:
-            path_q[name][k] = np.quantile(rep[name], [alpha, 1.0 - alpha])
+    on_path = _evaluate(tested, candidates) if tested else {}
+    path_q = {name: np.empty((len(candidates), 2)) for name in tested}
+    for k, candidate in enumerate(candidates if tested else ()):
+        rep = _evaluate(tested, replicate(candidate, per_candidate).rho)
+        q = np.quantile(np.stack([rep[name] for name in tested]), [alpha, 1.0 - alpha], axis=1)
+        for j, name in enumerate(tested):
+            path_q[name][k] = q[:, j]
     bounds = bounds or {}
     figures = {}
     for name in functions:
@@ -245,7 +247,7 @@ def parametric_bootstrap(
         lo, hi = physical_interval(value, samples[name], lim)
         p_lo, p_hi = pivot_interval(value, float(at_centre[name][0]), pivots[name])
         lo, hi = min(lo, p_lo), max(hi, p_hi)
-        if inverted is None or name in inverted:
+        if name in tested:
             kept = inverted_test_interval(value, PATH, on_path[name], path_q[name])
             if kept is not None:
                 lo, hi = min(lo, kept[0]), max(hi, kept[1])
