@@ -144,3 +144,9 @@ def test_a_run_at_1_uW_with_a_pickoff_below_its_meter_noise_completes_without_pa
     assert "beam_lost" not in [e.kind for e in data.events]
     assert not np.any(data.readings.flags & FLAG_AFTER_BEAM_WAIT)
     assert "beam watch: the ports' summed power" in log_path_for(out).read_text()
+
+
+def test_a_resumed_run_keeps_as_many_lit_readings_as_the_watch_settles_on():
+    from lightloom.sequencer.storage.store import FIRST_BEAM_ROWS
+
+    assert FIRST_BEAM_ROWS == SETTLE_READINGS
