@@ -91,7 +91,7 @@ def _foreign_message(h5_path: Path, journal_path: Path, file_header: RunHeader, 
 
 _BACKGROUND = READING_KINDS.index("background")
 # Shutter-open readings kept for a resumed run's beam watch (run.beam.SETTLE_READINGS of them).
-FIRST_BEAM_ROWS = 5
+FIRST_BEAM_ROWS = 10
 
 
 @dataclass
