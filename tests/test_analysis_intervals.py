@@ -56,6 +56,20 @@ def test_a_fit_on_the_edge_gets_an_interval_reaching_into_the_state_space() -> N
     assert lo == pytest.approx(np.quantile(s, 0.025)) and hi == 1.0
 
 
+def test_without_reaching_in_the_interval_is_the_union_of_the_bc_and_basic_ones() -> None:
+    # the rule for a Stokes component: BC (Efron and Tibshirani 1993, ch. 14.3) and basic (Davison
+    # and Hinkley 1997, sec. 5.2) only; on skewed replicates the percentile interval differs
+    s = np.random.default_rng(3).gamma(2.0, 0.05, 400) - 0.05
+    value = 0.02
+    bc, basic = bias_corrected_percentile(value, s), basic_interval(value, s)
+    lo, hi = physical_interval(value, s, (-1.0, 1.0), reach_in=False)
+    assert (lo, hi) == pytest.approx((min(bc[0], basic[0], value), max(bc[1], basic[1], value)))
+    assert physical_interval(value, s, (-1.0, 1.0)) != pytest.approx((lo, hi))
+    # a fit on the edge: no reaching in
+    edge = 1.0 - np.abs(np.linspace(-0.1, 0.1, 401))
+    assert physical_interval(1.0, edge, (-1.0, 1.0), reach_in=False)[0] >= 0.99
+
+
 def test_test_inversion_keeps_the_candidates_whose_replicates_hold_the_estimate() -> None:
     # Neyman's construction (Casella and Berger 2002, sec. 9.2.1) for a normal mean with unit
     # spread: candidates mu, replicates' 95 % range mu +- 1.96; the accepted mu are x +- 1.96.
@@ -204,3 +218,30 @@ def test_rows_chi2_counts_shared_errors_in_the_covariance_on_either_side() -> No
         dense = float(r @ np.linalg.solve(np.diag(sigma**2) + (b @ b.T).toarray(), r))
         assert rows_chi2(r, sigma, b) == pytest.approx(dense, rel=1e-10)
         assert rows_chi2(r, sigma, b) < rows_chi2(r, sigma, None)
+
+
+def test_interval_widening_is_students_t_over_the_normal_quantile() -> None:
+    # scipy.stats.t and scipy.stats.norm as the reference (a general-purpose library)
+    from scipy.stats import norm, t
+
+    from lightloom.sequencer.analysis.intervals import interval_widening, widened
+
+    for dof in (1, 5, 40, 1000):
+        assert interval_widening(dof) == pytest.approx(t.ppf(0.975, dof) / norm.ppf(0.975), rel=1e-10)
+    assert interval_widening(0) == 1.0
+    assert widened(0.5, (0.4, 0.7), 1.5) == pytest.approx((0.35, 0.8))
+
+
+def test_a_widened_bootstrap_interval_moves_each_end_away_from_the_estimate_by_the_factor() -> None:
+    from lightloom.sequencer.analysis.estimate import parametric_bootstrap
+
+    r2 = 1 / np.sqrt(2)
+    kets = [[1, 0], [0, 1], [r2, r2], [r2, -r2], [r2, 1j * r2], [r2, -1j * r2]]
+    ops = np.array([np.outer(k, np.conj(k)) for k in np.asarray(kets, dtype=complex)])
+    rho = np.array([[0.7, 0.2], [0.2, 0.3]], dtype=complex)
+    values = 500.0 * np.real(np.einsum("nij,ji->n", ops, rho))
+    s1 = {"s1": lambda r: np.real(r[:, 0, 0] - r[:, 1, 1])}
+    plain = parametric_bootstrap(ops, values, s1, rng=np.random.default_rng(2), n_resamples=100, edge=())
+    wide = parametric_bootstrap(ops, values, s1, rng=np.random.default_rng(2), n_resamples=100, edge=(), widen=1.2)
+    v, (lo, hi) = plain.figures["s1"].value, plain.figures["s1"].interval
+    assert wide.figures["s1"].interval == pytest.approx((v - 1.2 * (v - lo), v + 1.2 * (hi - v)))

@@ -111,3 +111,21 @@ def test_reduction_sums_complementary_ports_and_not_labels() -> None:
     # proportional to the conditional state's predictions (here the reduced state: a product source)
     pred = np.real(np.einsum("nij,ji->n", red_ops, rho_pol))
     assert np.allclose(red_vals / red_vals.sum(), pred / pred.sum())
+
+
+def test_the_noise_models_degrees_of_freedom_widen_the_intervals_by_t_over_z(night: Path) -> None:
+    # Repeats are grouped within a pass (drift between passes is not reading noise): 4 passes x 36
+    # (setting, port) rows x (2 - 1) degrees of freedom, and the background readings (4 ports, one
+    # fewer than their readings) add theirs. Student's t quantile against the normal one from
+    # scipy.stats (a general-purpose reference library).
+    from scipy.stats import norm, t
+
+    run = load_run(night)
+    prep = prepare(run)
+    nm = prep.corrections["noise_model"]
+    n_bg = int(run.readings.of_kind("background").sum())
+    assert nm["dof"] == 4 * 36 * 1 + 4 * (n_bg - 1)
+    est = estimate(prep, target=target_of(run), rng=np.random.default_rng(3), n_bootstrap=60)
+    used = est.corrections["noise_model"]
+    assert used["interval_widening"] == pytest.approx(t.ppf(0.975, nm["dof"]) / norm.ppf(0.975), rel=1e-9)
+    assert used["interval_widening"] > 1.0

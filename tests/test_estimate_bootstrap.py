@@ -101,3 +101,41 @@ def test_gaussian_bootstrap_without_sigma_is_refused():
     with pytest.raises(EstimationError, match="sigma"):
         parametric_bootstrap(SINGLE6, np.ones(6), {"p": merit.purity}, rng=np.random.default_rng(0),
                              model="gaussian")
+
+
+def test_a_product_state_estimated_slightly_entangled_gets_a_concurrence_interval_reaching_zero():
+    # A pure product truth at about 100 counts a projector: the estimate's concurrence comes out
+    # 0.05 in these two draws (the upper tail of its spread). The line of candidates from the fit to
+    # its nearest product state holds truths of concurrence 0 whose replicates reach 0.05, so the
+    # interval reaches 0 (Neyman's construction, Casella and Berger 2002, sec. 9.2.1); the line
+    # through the fit's own top vector alone does not. Truth: concurrence 0 for any product state
+    # (Wootters 1998, Phys. Rev. Lett. 80, 2245).
+    from lightloom.sequencer.analysis.estimate import mle_poisson
+    from lightloom.sequencer.analysis.estimate.bootstrap import nearest_product_ket, product_path_states
+
+    truth = projector(np.kron([1.0, 0.0], [0.6, 0.8j]))
+    expected = 400.0 * probabilities(JOINT36, truth)
+    for seed in (41, 48):
+        counts = np.random.default_rng(seed).poisson(expected).astype(float)
+        fit = mle_poisson(JOINT36, counts)
+        assert merit.concurrence(fit.rho[None])[0] > 0.045
+        common = dict(rng=np.random.default_rng(1), fit=fit, bounds={"concurrence": (0.0, 1.0)})
+        without = parametric_bootstrap(JOINT36, counts, JOINT_FIGURES, **common)
+        common["rng"] = np.random.default_rng(1)
+        with_line = parametric_bootstrap(JOINT36, counts, JOINT_FIGURES, separable=["concurrence"], factor_dims=(2, 2), **common)
+        assert without.figures["concurrence"].interval[0] > 0.005
+        assert with_line.figures["concurrence"].interval[0] < 1e-12
+        # the line ends on a product state (concurrence 0) and starts at the fit
+        ends = product_path_states(fit.rho, (2, 2), np.array([0.0, 1.0]))
+        assert np.allclose(ends[0], fit.rho)
+        assert merit.concurrence(ends[1:])[0] < 1e-9
+        ket = nearest_product_ket(fit.rho, (2, 2))
+        assert abs(np.vdot(ket, ket) - 1.0) < 1e-12
+
+
+def test_the_nearest_product_vector_of_a_product_state_is_itself():
+    a, b = np.array([0.6, 0.8j]), np.array([R2, -R2])
+    from lightloom.sequencer.analysis.estimate.bootstrap import nearest_product_ket
+
+    ket = nearest_product_ket(projector(np.kron(a, b)), (2, 2))
+    assert abs(abs(np.vdot(ket, np.kron(a, b))) - 1.0) < 1e-12  # equal up to a phase

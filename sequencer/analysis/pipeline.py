@@ -42,7 +42,7 @@ from lightloom.sequencer.analysis.estimate import (
 from lightloom.sequencer.analysis.estimate import merit
 from lightloom.sequencer.analysis.background import BackgroundModel, background_info, background_model, pooled_reading_noise
 from lightloom.sequencer.analysis.drift import DriftModel, fit_drift, no_drift
-from lightloom.sequencer.analysis.intervals import figure_bounds
+from lightloom.sequencer.analysis.intervals import figure_bounds, interval_widening
 from lightloom.sequencer.analysis.propagation import CorrectionNoise, correction_noise
 from lightloom.sequencer.analysis.spread import fit_spread
 from lightloom.sequencer.analysis.estimate.errors import EstimationError
@@ -329,6 +329,10 @@ def iter_prepared(
                 bg_model = pooled_reading_noise(bg_model, a_port, repeat_dof)
             corrections["background"] = {**background_info(bg_model), "reading_noise_how":
                                          "background spread pooled with the absolute noise of repeated readings"}
+        # degrees of freedom behind the noise model: repeated readings about their means, and the
+        # background readings about theirs (estimate() widens the intervals by t over z)
+        bg_dof = len(gains) * max(bg_model.times_s.size - 1, 0) if bg_model.applied else 0
+        noise["dof"] = (int(np.sum(repeats.count - 1)) if "repeated" in how else 0) + int(bg_dof)
         del repeats
     elif bg_model.applied and bg_model.times_s.size < 2:
         # One background reading of counts: its Poisson spread.
@@ -550,6 +554,16 @@ def _rescale_sigma(prep: Prepared, fit: MleResult) -> tuple[np.ndarray, float]:
     return prep.sigma * scale, scale
 
 
+def _noise_dof(prep: Prepared) -> int:
+    """Degrees of freedom of the Gaussian noise model: repeats and background, else the residuals."""
+    nm = prep.corrections.get("noise_model", {})
+    dof = int(nm.get("dof", 0))
+    if dof < 1:
+        d = prep.operators.shape[-1]
+        dof = len(prep.values) - d * d + prep.within_dof
+    return max(dof, 0)
+
+
 def _power_std(prep: Prepared, fit: MleResult, sigma: np.ndarray | None) -> float:
     """Std of tr(T) (W or counts/s) by linear propagation through the least-squares estimator."""
     design = to_vector(prep.operators)
@@ -601,6 +615,9 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
         sigma, scale = _rescale_sigma(prep, fit)
         if scale > 1.0:
             fit = mle_gaussian(prep.operators, prep.values, sigma)
+    # Counts have their Poisson spread; Gaussian readings a spread estimated from the run, whose
+    # own uncertainty widens the intervals (interval_widening).
+    widen = 1.0 if prep.model == "poisson" else interval_widening(_noise_dof(prep))
     lin = linear_inversion(prep.operators, prep.values, sigma)
     fns = _functions(prep.analyzes, target)
     d = prep.operators.shape[-1]
@@ -615,7 +632,9 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
         n_resamples=n_bootstrap, fit=fit, tol=BOOTSTRAP_TOLERANCE,
         bounds={name: figure_bounds(name, d) for name in fns},
         perturb=prep.correction_noise.perturb if prep.correction_noise is not None else None,
-        inverted=[name for name in fns if not name.startswith(("stokes_", "_re_", "_im_"))],
+        widen=widen,
+        edge=[name for name in fns if not name.startswith(("stokes_", "_re_", "_im_"))],
+        separable=["concurrence"], factor_dims=(2, 2) if d == 4 and len(prep.analyzes) == 2 else None,
     )
     figs = {k: (float(v.value), float(v.std), v.interval) for k, v in boot.figures.items()}
     rho_std = np.zeros((d, d), dtype=np.complex128)
@@ -633,7 +652,8 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
         figs.update({f"fidelity_to_{k}": v for k, v in fids.items()})
     corrections = dict(prep.corrections)
     if prep.model == "gaussian":
-        corrections["noise_model"] = {**corrections["noise_model"], "residual_scale": scale}
+        corrections["noise_model"] = {**corrections["noise_model"], "residual_scale": scale,
+                                      "dof": _noise_dof(prep), "interval_widening": widen}
     return Estimate(
         rho=fit.rho, rho_std=rho_std, basis=prep.basis, analyzes=prep.analyzes, figures=figs, stokes=stokes,
         closest_mode=closest,

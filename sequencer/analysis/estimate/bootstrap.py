@@ -8,7 +8,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from lightloom.sequencer.analysis.intervals import LEVEL, inverted_test_interval, physical_interval, pivot_interval
+from lightloom.sequencer.analysis.intervals import LEVEL, inverted_test_interval, physical_interval, pivot_interval, widened
 
 from lightloom.sequencer.analysis.estimate.errors import EstimationError
 from lightloom.sequencer.analysis.estimate.hermitian import check_operators
@@ -32,6 +32,12 @@ _MAX_REDRAWS = 100
 # Candidate truths of the third stage: rho(s) = (1 - s) rho + s |top><top| for s >= 0 (purer,
 # towards the fit's dominant eigenvector), (1 + s) rho - s I/d for s < 0 (more mixed).
 PATH = np.array([-0.6, -0.3, -0.15, 0.0, 0.1, 0.2, 0.35, 0.5, 0.7, 1.0])
+# A second line for the figures whose edge is the separable states (concurrence): rho(s) = (1 - s)
+# rho + s |a b><a b| towards the product vector nearest the fit's dominant eigenvector, s > 0 (s = 0
+# is the fit, shared with PATH). A product truth measured at low counts gives estimates with a
+# small concurrence (at 100 counts a setting 0.03 on average, 0.05 at the 95th percentile), which
+# candidates on PATH, all as entangled as the fit's top vector or more mixed, do not reproduce.
+PRODUCT_PATH = np.array([0.0, 0.2, 0.4, 0.6, 0.8, 1.0])
 
 
 @dataclass(frozen=True)
@@ -94,6 +100,22 @@ def path_states(rho: np.ndarray, path: np.ndarray = PATH) -> np.ndarray:
     return np.stack([(1.0 - s) * rho + s * top if s >= 0 else (1.0 + s) * rho - s * mixed for s in path])
 
 
+def nearest_product_ket(rho: np.ndarray, dims: tuple[int, int]) -> np.ndarray:
+    """The product vector a (x) b (d,) nearest the dominant eigenvector of ``rho`` (d = dims[0] *
+    dims[1], the first factor's index major): its leading Schmidt term, normalised."""
+    _, vectors = np.linalg.eigh(rho)
+    u, _, vh = np.linalg.svd(vectors[:, -1].reshape(dims))
+    return np.kron(u[:, 0], vh[0, :])
+
+
+def product_path_states(rho: np.ndarray, dims: tuple[int, int], path: np.ndarray = PRODUCT_PATH) -> np.ndarray:
+    """(k, d, d) candidate truths (1 - s) rho + s |ab><ab| on the line from ``rho`` to the product
+    state nearest it (see PRODUCT_PATH)."""
+    ket = nearest_product_ket(rho, dims)
+    product = np.outer(ket, ket.conj())
+    return np.stack([(1.0 - s) * rho + s * product for s in path])
+
+
 def predicted_readings(operators: np.ndarray, fit: MleResult) -> np.ndarray:
     """Expected readings tr(T E_i) (n,) of the fitted T = intensity * rho."""
     e = check_operators(operators)
@@ -140,7 +162,10 @@ def parametric_bootstrap(
     max_iterations: int = DEFAULT_MAX_ITERATIONS,
     bounds: Mapping[str, tuple[float, float]] | None = None,
     perturb: Perturbation | None = None,
-    inverted: Collection[str] | None = None,
+    edge: Collection[str] | None = None,
+    separable: Collection[str] = (),
+    factor_dims: tuple[int, int] | None = None,
+    widen: float = 1.0,
 ) -> BootstrapResult:
     """Uncertainties of scalar functions of the maximum-likelihood state by parametric bootstrap.
 
@@ -151,9 +176,10 @@ def parametric_bootstrap(
     raw readings lets settings with few or zero counts fluctuate as the model says they should;
     resampling the raw readings freezes zero-count settings at zero and shrinks the spread at low
     counts. Each figure also gets a 95% interval from its replicates, inside its physical range
-    ``bounds`` and not necessarily symmetric (sequencer.analysis.intervals: bias-corrected
-    percentile, Efron and Tibshirani 1993 ch. 14.3, or the basic interval where the estimate is on
-    the boundary; tests/benchmarks/bench_interval_coverage.py measures their coverage).
+    ``bounds`` and not necessarily symmetric: the union of the bias-corrected percentile and basic
+    intervals (sequencer.analysis.intervals), and for the ``edge`` figures three more constructions
+    that follow a truth on or near the edge of the state space (see the stages below);
+    tests/benchmarks/bench_interval_coverage.py measures their coverage.
 
     Corrections applied to the readings before the fit (background subtracted, drift divided out)
     have errors of their own, shared by many readings; ``perturb`` adds a draw of those errors to
@@ -172,10 +198,16 @@ def parametric_bootstrap(
     fit : MleResult, optional. The estimate from these readings, if already computed.
     bounds : mapping name -> (lo, hi), optional. Physical range of each figure (default unbounded).
     perturb : optional. Adds the errors of the corrections to the replicate readings (see above).
-    inverted : names of the figures whose interval also takes the test inversion along the line
-        from more mixed to purer states (default: every figure). It is meant for figures of the
-        state's distance from the edge (purity, concurrence, fidelities); a direction such as a
-        Stokes component hardly moves along that line and is covered by the other intervals.
+    edge : names of the figures of the state's distance from the edge of the state space (purity,
+        concurrence, fidelities, degrees of polarization; default: every figure). Their interval
+        is the union of all five constructions (sequencer.analysis.intervals and below); any other
+        figure (a Stokes component) gets the BC and basic intervals of the first replicates only.
+    separable, factor_dims : names of edge figures whose edge is the separable states
+        (concurrence), tested as well along the line to the nearest product state of a joint state
+        of two factors of dimensions ``factor_dims`` (none without it).
+    widen : factor (>= 1) on every interval's distances from the estimate before it is clipped
+        to the physical range: sequencer.analysis.intervals.interval_widening of the degrees of
+        freedom behind an estimated ``sigma``; 1 for counts.
 
     Returns
     -------
@@ -212,45 +244,63 @@ def parametric_bootstrap(
     batch = replicate(estimate.rho, n_resamples)
     at_estimate = _evaluate(functions, estimate.rho[None, :, :])
     samples = _evaluate(functions, batch.rho)
-    # Second stage, for the edge of the state space. The estimator's bias depends on how close the
-    # truth is to the edge, and the fit is further inside than a nearly pure truth, so replicates
-    # around the fit show less bias than the estimate has. Replicates are drawn as well around the
-    # fit with its eigenvalues bias-corrected (edge_centre), and their pivot interval (Davison and
-    # Hinkley 1997, sec. 5.2) joins the reported one: the interval then holds a truth at the edge
-    # as well as one inside.
-    centre = edge_centre(estimate.rho, batch.rho)
-    second = replicate(centre, max(2, n_resamples // 2))
-    at_centre = _evaluate(functions, centre[None, :, :])
-    pivots = _evaluate(functions, second.rho)
+    tested = {name: func for name, func in functions.items() if edge is None or name in edge}
+    # Second stage, for the figures of the distance from the edge of the state space. The
+    # estimator's bias depends on how close the truth is to the edge, and the fit is further
+    # inside than a nearly pure truth, so replicates around the fit show less bias than the
+    # estimate has. Replicates are drawn as well around the fit with its eigenvalues
+    # bias-corrected (edge_centre), and their pivot interval (Davison and Hinkley 1997, sec. 5.2)
+    # joins the reported one: the interval then holds a truth at the edge as well as one inside.
+    if tested:
+        centre = edge_centre(estimate.rho, batch.rho)
+        second = replicate(centre, max(2, n_resamples // 2))
+        at_centre = _evaluate(tested, centre[None, :, :])
+        pivots = _evaluate(tested, second.rho)
     # Third stage, for the long tail of a biased estimator (at low power a nearly pure state's
     # maximum-likelihood purity now and then comes out far more mixed than its replicates around
     # the fit suggest): candidate truths on a line through the fit, from more mixed to its
-    # dominant eigenvector, each with replicates of its own; a candidate whose replicates' central
-    # 95 % holds the estimate is kept, and the figure's range over the kept ones joins the
-    # interval (inverted_test_interval).
-    tested = {name: func for name, func in functions.items() if inverted is None or name in inverted}
-    candidates = path_states(estimate.rho)
+    # dominant eigenvector (and, for concurrence, on a line to the nearest product state), each
+    # with replicates of its own; a candidate whose replicates' central 95 % holds the estimate is
+    # kept, and the figure's range over the kept ones joins the interval (inverted_test_interval).
     per_candidate = max(20, n_resamples // 4)
     alpha = (1.0 - LEVEL) / 2.0
-    on_path = _evaluate(tested, candidates) if tested else {}
-    path_q = {name: np.empty((len(candidates), 2)) for name in tested}
-    for k, candidate in enumerate(candidates if tested else ()):
-        rep = _evaluate(tested, replicate(candidate, per_candidate).rho)
-        q = np.quantile(np.stack([rep[name] for name in tested]), [alpha, 1.0 - alpha], axis=1)
-        for j, name in enumerate(tested):
-            path_q[name][k] = q[:, j]
+
+    def on_line(states: np.ndarray, funcs: Mapping[str, StateFunction]) -> tuple[dict, dict]:
+        """The figures at each candidate, and their replicates' low and high quantiles (k, 2)."""
+        if not funcs:
+            return {}, {}
+        quantiles = {name: np.empty((len(states), 2)) for name in funcs}
+        for k, candidate in enumerate(states):
+            rep = _evaluate(funcs, replicate(candidate, per_candidate).rho)
+            q = np.quantile(np.stack([rep[name] for name in funcs]), [alpha, 1.0 - alpha], axis=1)
+            for j, name in enumerate(funcs):
+                quantiles[name][k] = q[:, j]
+        return _evaluate(funcs, states), quantiles
+
+    on_path, path_q = on_line(path_states(estimate.rho), tested)
+    lines = {name: [(PATH, on_path[name], path_q[name])] for name in tested}
+    toward_product = {name: tested[name] for name in separable if name in tested} if factor_dims else {}
+    if toward_product:
+        assert factor_dims is not None
+        zero = int(np.flatnonzero(PATH == 0.0)[0])
+        on_product, product_q = on_line(product_path_states(estimate.rho, factor_dims, PRODUCT_PATH[1:]), toward_product)
+        for name in toward_product:
+            lines[name].append((PRODUCT_PATH, np.concatenate([on_path[name][zero:zero + 1], on_product[name]]),
+                                np.concatenate([path_q[name][zero:zero + 1], product_q[name]])))
     bounds = bounds or {}
     figures = {}
     for name in functions:
         value = float(at_estimate[name][0])
         lim = bounds.get(name, (-math.inf, math.inf))
-        lo, hi = physical_interval(value, samples[name], lim)
-        p_lo, p_hi = pivot_interval(value, float(at_centre[name][0]), pivots[name])
-        lo, hi = min(lo, p_lo), max(hi, p_hi)
+        lo, hi = physical_interval(value, samples[name], lim, reach_in=name in tested)
         if name in tested:
-            kept = inverted_test_interval(value, PATH, on_path[name], path_q[name])
-            if kept is not None:
-                lo, hi = min(lo, kept[0]), max(hi, kept[1])
+            p_lo, p_hi = pivot_interval(value, float(at_centre[name][0]), pivots[name])
+            lo, hi = min(lo, p_lo), max(hi, p_hi)
+            for coords, figure_on_line, quantiles in lines[name]:
+                kept = inverted_test_interval(value, coords, figure_on_line, quantiles)
+                if kept is not None:
+                    lo, hi = min(lo, kept[0]), max(hi, kept[1])
+        lo, hi = widened(value, (lo, hi), widen)
         lo = max(lo, lim[0])
         hi = min(hi, lim[1])
         figures[name] = Uncertain(value=value, std=float(np.std(samples[name], ddof=1)), interval=(float(lo), float(hi)))
