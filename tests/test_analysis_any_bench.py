@@ -109,6 +109,10 @@ def test_spatial_state_from_three_explicit_element_settings_on_four_ports(tmp_pa
     doc = _analyse(tmp_path, SPATIAL_THREE, "sim", "spatial", capsys)
     assert doc["determines"] == "spatial-state" and doc["missing"] == []
     assert doc["corrections"]["reduction"]["case"] == "exact"
+    # The reduced spatial state of the sim source is nearly unpolarized: its normalised linear entropy
+    # (d / (d - 1)) (1 - tr rho^2) is near 1, and its interval holds it and stays inside [0, 1]
+    entropy = doc["linear_entropy"]
+    assert entropy["value"] > 0.9 and 0.0 <= entropy["interval"][0] <= entropy["value"] <= entropy["interval"][1] <= 1.0, entropy
     # The built-in sim source's spatial Stokes parameters, from its density matrix (partial trace)
     truth = reduced_stokes(load_bench("sim").simulation.source.density(), "spatial")
     for k in (1, 2, 3):
