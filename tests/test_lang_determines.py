@@ -134,3 +134,41 @@ def test_run_of_an_incomplete_set_without_the_key_warns_before_it_starts(tmp_pat
     assert cli.main(["run", str(path), "--bench", "sim", "--out", str(tmp_path / "run.h5"), "--quiet"]) == 0
     warnings = [line for line in capsys.readouterr().err.splitlines() if line.startswith("lightloom: warning:")]
     assert len(warnings) == 1 and "no circular (R/L) projection" in warnings[0]
+
+
+def test_a_stated_state_that_no_bench_can_deliver_is_bad_input_without_a_bench(tmp_path, capsys) -> None:
+    # H and V alone: even a table reading both splitter outputs never sees D/A or R/L
+    path = write(tmp_path, "p.yaml", HV_ONLY + "determines: polarization-state\n")
+    assert cli.main(["validate", str(path)]) == 2
+    captured = capsys.readouterr()
+    line = captured.err.strip()
+    assert captured.out == "" and "\n" not in line
+    assert line.startswith(f"lightloom: {path}:7: determines: polarization-state") and "on any bench" in line
+    assert "no diagonal (D/A) projection" in line and "no circular (R/L) projection" in line
+    # H, D, R: incomplete on one detector each (no S0), complete once the partners are read: allowed
+    three = HV_ONLY.replace("[H, V]", "[H, D, R]") + "determines: polarization-state\n"
+    assert cli.main(["validate", str(write(tmp_path, "q.yaml", three))]) == 0
+
+
+QWP_POLARIMETER = """\
+protocol: qwp-polarimeter
+analyzes: [polarization]
+measure:
+  scan: {element: quarter_wave_plate, from_deg: 0, to_deg: 180, step_deg: 22.5,
+         fixed: {half_wave_plate_deg: 0, mode_converter: out, image_rotator_deg: 0}}
+dwell_s: 0.1
+"""
+
+
+@pytest.mark.parametrize("verb", ["validate", "dry-run"])
+def test_a_scan_that_is_a_polarimeter_says_it_also_determines_the_state(tmp_path, capsys, verb) -> None:
+    # a quarter-wave plate turned in front of the polarizing splitter (a rotating-plate polarimeter,
+    # common practice, no source): a scan whose readings fix S0..S3, as `analyze` then reports
+    path = write(tmp_path, "p.yaml", QWP_POLARIMETER)
+    doc = json_of(capsys, verb, str(path), "--bench", "sim", "--json")
+    assert (doc["determines"], doc["state_determined"], doc["missing"]) == ("scan", "polarization-state", [])
+    assert cli.main([verb, str(path), "--bench", "sim"]) == 0
+    assert "its readings also determine the 2x2 polarization state" in " ".join(capsys.readouterr().out.split())
+    # an image-rotator scan with the converter out sees h/v and d/a only: a scan, no state
+    doc = json_of(capsys, verb, "calibration-rotator", "--bench", "sim", "--json")
+    assert (doc["determines"], doc["state_determined"]) == ("scan", None)

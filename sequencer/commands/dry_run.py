@@ -46,18 +46,25 @@ def determination_json(det: Any) -> dict[str, Any]:
     return {
         "determines": det.kind,
         "missing": list(det.missing),
+        "state_determined": getattr(det, "state", None),
         "stokes_determined": {
             factor: [f"S{i}" for i, ok in enumerate(flags) if ok] for factor, flags in det.stokes.items()
         },
     }
 
 
+_STATE_WORDS = {"joint-state": "the joint 4x4 state", "polarization-state": "the 2x2 polarization state",
+                "spatial-state": "the 2x2 spatial-mode state"}
+
+
 def determination_lines(det: Any, protocol_determines: str | None, where: str = "") -> list[str]:
     """The determination in words, one short line each (for validate and dry-run); ``where`` follows the kind."""
     stated = f" (the protocol says determines: {protocol_determines})" if protocol_determines else ""
     if det.kind != "partial":
-        words = {"joint-state": "the joint 4x4 state", "polarization-state": "the 2x2 polarization state",
-                 "spatial-state": "the 2x2 spatial-mode state", "scan": "no state, a scan"}[det.kind]
+        words = {**_STATE_WORDS, "scan": "no state, a scan"}[det.kind]
+        state = getattr(det, "state", None)
+        if det.kind == "scan" and state:
+            words = f"a scan; its readings also determine {_STATE_WORDS[state]}"
         return [f"determines {det.kind}{where}: {words}{stated}"]
     return [f"determines partial{where}{stated}, missing:"] + [
         f"  - {m}" for m in det.missing

@@ -12,7 +12,9 @@ from lightloom.sequencer.lang.bench import Bench, load_bench
 from lightloom.sequencer.errors import BenchError
 from lightloom.sequencer.lang.protocol import Protocol, load_protocol
 from lightloom.sequencer.model.steps import StepList
-from lightloom.sequencer.plan.purpose import plan_determination, protocol_determination
+from lightloom.sequencer.plan.purpose import (
+    any_bench_determination, plan_determination, protocol_determination, require_purpose,
+)
 
 
 def add_parser(subparsers: Any) -> None:
@@ -167,6 +169,7 @@ class _Shown:
     def __init__(self, summary: dict[str, Any]) -> None:
         self.kind = summary["determines"]
         self.missing = tuple(summary["missing"])
+        self.state = summary.get("state_determined")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -183,6 +186,11 @@ def run(args: argparse.Namespace) -> int:
         det = plan_determination(protocol, plan, table_model(bench))
         where = f"on bench '{bench.name}'"
     else:
+        # A stated purpose that no table can deliver (its targets lack a basis even with both outputs
+        # of every splitter and sorter read) is bad input without a bench too.
+        fullest = any_bench_determination(protocol)
+        if fullest is not None:
+            require_purpose(protocol, fullest, on="on any bench (even one that reads both outputs of its splitter and sorter)")
         det = protocol_determination(protocol)
         where = "on one detector per projector (give --bench to check your table)"
     warning = partial_warning(det, protocol, where)

@@ -50,7 +50,8 @@ RANK_TOLERANCE = 1e-6
 class Determination:
     """What the operators determine.
 
-    ``kind``: one of KINDS. ``missing``: what lacks, one phrase each ("polarization: no circular
+    ``kind``: one of KINDS. ``state``: the state the operators determine, for a scan as well
+    (a quarter-wave plate turned in front of a polarizer is a polarimeter), else None. ``missing``: what lacks, one phrase each ("polarization: no circular
     (R/L) projection"), empty unless ``kind`` is partial. ``stokes``: per factor of the space, which
     of S0..S3 of that factor's reduced state the operators determine. ``rank``: dimension of the real
     span of the operators, out of ``full_rank`` = d^2.
@@ -61,6 +62,8 @@ class Determination:
     stokes: Mapping[str, tuple[bool, bool, bool, bool]]
     rank: int
     full_rank: int
+    state: str | None = None
+    """The state kind the operators determine ("polarization-state", ...), a scan's too; None if none."""
 
     @property
     def complete(self) -> bool:
@@ -222,7 +225,8 @@ def determination(
         kind = "partial"
     else:
         kind = STATE_KIND[wanted]
-    return Determination(kind, tuple(missing) if kind == "partial" else (), MappingProxyType(stokes), rank, d * d)
+    return Determination(kind, tuple(missing) if kind == "partial" else (), MappingProxyType(stokes), rank, d * d,
+                         None if missing else STATE_KIND[wanted])
 
 
 def _projector_determined(

@@ -84,6 +84,29 @@ def requested_operators(protocol: Protocol) -> NDArray[np.complex128]:
     return np.array(out, dtype=np.complex128).reshape(-1, 4, 4)
 
 
+def any_bench_determination(protocol: Protocol) -> Determination | None:
+    """What the protocol's targets determine on the fullest table: every projector read together
+    with its orthogonal partner on each analysed factor (both outputs of the splitter and of the
+    sorter), which no bench exceeds. None for a protocol with explicit element settings or a scan:
+    what those give depends on the bench's calibration."""
+    if protocol.measure == "scan" or any(p.is_explicit for p in protocol.points):
+        return None
+    eye = np.eye(2, dtype=np.complex128)
+    out = []
+    for point in protocol.points:
+        pairs = []
+        for factor in FACTORS:
+            target = point.targets.get(factor)
+            if target is None:
+                pairs.append((eye,))
+                continue
+            projector = density(target.ket_array())
+            pairs.append((projector, eye - projector))
+        out += [np.kron(a, b) for a in pairs[0] for b in pairs[1]]
+    return determination(np.array(out, dtype=np.complex128).reshape(-1, 4, 4), FACTORS, protocol.analyzes,
+                         scan=_is_scan(protocol))
+
+
 def protocol_determination(protocol: Protocol) -> Determination:
     """What the protocol's requested projectors determine on one ideal detector (no bench given)."""
     return determination(requested_operators(protocol), FACTORS, protocol.analyzes, scan=_is_scan(protocol))
@@ -93,7 +116,8 @@ def _is_scan(protocol: Protocol) -> bool:
     return protocol.measure == "scan" or protocol.determines == "scan"
 
 
-def require_purpose(protocol: Protocol, found: Determination, bench_name: str | None = None) -> None:
+def require_purpose(protocol: Protocol, found: Determination, bench_name: str | None = None,
+                    on: str | None = None) -> None:
     """Refuse a protocol whose ``determines:`` key asks for more than ``found``.
 
     Raises
@@ -107,7 +131,7 @@ def require_purpose(protocol: Protocol, found: Determination, bench_name: str | 
     factor = wanted.removesuffix("-state")
     if factor in found.stokes and all(found.stokes[factor]):
         return  # a factor's state is determined as part of a joint one
-    on = f" on bench '{bench_name}'" if bench_name else ""
+    on = f" {on}" if on else (f" on bench '{bench_name}'" if bench_name else "")
     if found.kind == "scan":
         what = "it is a scan (measure: scan), which determines no state"
     else:
