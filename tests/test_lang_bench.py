@@ -266,3 +266,14 @@ def test_a_bench_without_extends_must_name_itself(tmp_path: Path) -> None:
 def test_a_protocol_given_as_bench_is_recognised(tmp_path: Path) -> None:
     err = bench_error("protocol: p\nanalyzes: [polarization]\n", tmp_path)
     assert "this is a protocol file, not a bench" in err.message and err.line == 1
+
+
+def test_an_overlay_giving_a_ket_over_a_base_density_matrix_is_told_how_to_replace_it(tmp_path: Path) -> None:
+    overlay = tmp_path / "beam.yaml"
+    overlay.write_text('extends: sim\nsimulation:\n  source: {state: {ket: ["1", "0", "0", "1"]}}\n')
+    with pytest.raises(BenchError) as err:
+        load_bench(str(overlay))
+    assert "the base bench gives density_matrix: write `density_matrix: null` beside ket" in str(err.value)
+    overlay.write_text('extends: sim\nsimulation:\n  source: {state: {ket: ["1", "0", "0", "1"], density_matrix: null}}\n')
+    source = load_bench(str(overlay)).simulation.source
+    assert source.label == "ket" and np.allclose(source.density(), np.outer([1, 0, 0, 1], [1, 0, 0, 1]) / 2)

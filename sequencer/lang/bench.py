@@ -668,8 +668,15 @@ def _source(sec: Section) -> SimSource:
     st.check_keys(("ket", "density_matrix"))
     given = [k for k in ("ket", "density_matrix") if st.has(k)]
     if len(given) != 1:
+        files = {e.key: getattr(e.value, "file", None) for e in st.node.entries}
+        hint = ""
+        if len(given) == 2 and files.get("ket") != files.get("density_matrix"):
+            # an overlay gave one while its base gives the other: mappings merge key by key
+            base = "density_matrix" if files.get("ket") == st.node.file else "ket"
+            other = "ket" if base == "density_matrix" else "density_matrix"
+            hint = f"; the base bench gives {base}: write `{base}: null` beside {other} to replace it"
         fail(f"{st.where}: give exactly one of ket (4 complex numbers, basis |H,h>, |H,v>, |V,h>,"
-             " |V,v>) or density_matrix (4x4)", st.node)
+             f" |V,v>) or density_matrix (4x4){hint}", st.node)
     if given[0] == "ket":
         ket = np.array(normalized_ket(st.require("ket", ""), st.name("ket"), 4))
         return SimSource(power, frozen_matrix(np.outer(ket, ket.conj())), "ket")
