@@ -145,3 +145,34 @@ def test_an_unreadable_file_among_many_is_reported_and_exit_2(night: Path, tmp_p
     assert main(["analyze", str(night), missing, "--json", "--bootstrap", "20"]) == 2
     runs = json.loads(capsys.readouterr().out)["runs"]
     assert "concurrence" in runs[0] and "error" in runs[1]
+
+
+HV_ONLY = """\
+protocol: hv-only
+analyzes: [polarization]
+measure:
+  targets: {polarization: [H, V]}
+dwell_s: 0.1
+"""
+
+
+def test_the_summary_table_on_80_columns_cuts_no_number(night: Path, tmp_path: Path, capsys, monkeypatch) -> None:
+    monkeypatch.setenv("COLUMNS", "80")
+    protocol = tmp_path / "hv.yaml"
+    protocol.write_text(HV_ONLY, encoding="utf-8")
+    hv = tmp_path / "a-rather-long-run-file-name-hv.h5"
+    assert main(["run", str(protocol), "--bench", "sim", "--out", str(hv), "--quiet"]) == 0
+    files = [str(night), str(hv)]
+    capsys.readouterr()
+    doc = _json(capsys, *files, "--bootstrap", "20")
+    assert main(["analyze", *files, "--bootstrap", "20"]) == 0
+    out = capsys.readouterr().out
+    tokens = out.split()
+    # every Stokes component of the joint night, as the table writes it, whole
+    for factor in ("polarization", "spatial"):
+        for k in (1, 2, 3):
+            assert f"{doc['runs'][0]['stokes'][factor][k]['value']:+.3f}" in tokens, (factor, k, out)
+    assert f"{doc['runs'][1]['stokes']['polarization'][1]['value']:+.3f}" in tokens
+    # a complete run that cannot determine its state is "not determined", not "not yet"
+    text = " ".join(tokens)
+    assert "h5: not determined: polarization: no diagonal (D/A) projection" in text and "not yet" not in text

@@ -88,7 +88,8 @@ def print_report(console: Console, doc: dict[str, Any]) -> None:
 def _print_partial(console: Console, doc: dict[str, Any]) -> None:
     """A run whose readings do not determine the state yet: what they do give, and what is missing."""
     if doc.get("stokes"):
-        s = Table(title="Stokes parameters determined so far (normalised, S0 = 1)")
+        so_far = "" if doc.get("run", {}).get("status") == "complete" else " so far"
+        s = Table(title=f"Stokes parameters determined{so_far} (normalised, S0 = 1)")
         s.add_column("factor")
         for k in ("S1", "S2", "S3", "degree"):
             s.add_column(k, justify="right")
@@ -97,7 +98,9 @@ def _print_partial(console: Console, doc: dict[str, Any]) -> None:
         console.print(s)
     if "power" in doc:
         console.print(f"  power S0: {_power(doc['power'])}", highlight=False)
-    console.print("  the state is not determined yet; still missing:", highlight=False)
+    done = doc.get("run", {}).get("status") == "complete"
+    console.print("  the state is not determined: the complete run lacks" if done
+                  else "  the state is not determined yet; still missing:", highlight=False)
     for line in doc.get("missing", []):
         console.print(f"   - {line}", highlight=False, markup=False)
     if "corrections" in doc and "estimator" in doc:
@@ -179,33 +182,50 @@ def print_summary(console: Console, results: list[tuple[str, dict[str, Any]]]) -
     concurrence, fidelity, Stokes."""
     from lightloom.sequencer.analysis.summary import summary_row
 
-    t = Table(title="runs: value(std in its last digits)", box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, padding=(0, 1), collapse_padding=True)
-    t.add_column("file", overflow="fold", min_width=8)
-    t.add_column("protocol", no_wrap=True, overflow="ellipsis", max_width=16)
-    t.add_column("status", overflow="fold", min_width=8)
-    for col in ("purity", "conc.", "fid.", "pol. S1-S3", "spat. S1-S3"):
-        t.add_column(col, no_wrap=True)
+    rows = [(path, summary_row(path, doc)) for path, doc in results]
+    # Numbers are never cut: a column of figures no run has is left out, the file's name and its
+    # status share a column, and on a narrow terminal only the text columns fold.
+    figures = [(key, head) for key, head in (("purity", "purity"), ("concurrence", "conc."), ("fidelity", "fid."))
+               if any(r[key] is not None for _, r in rows)]
+    factors = [(f, head) for f, head in (("polarization", "pol.\nS1-S3"), ("spatial", "spat.\nS1-S3"))
+               if any(r[f"{f}_S{k}"] is not None for _, r in rows for k in (1, 2, 3))]
+    t = Table(title="runs: value(std in its last digits)", box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False,
+              padding=(0, 1), collapse_padding=True)
+    # the figures' columns are 10 characters wide, the Stokes ones 6, and each column takes 2 more
+    # for the gap (the last one none): what is left goes to the two text columns
+    left = console.width - 12 * len(figures) - 8 * len(factors) - 2
+    protocol_width = max(8, min(16, left // 2 + 1))
+    t.add_column("file\nstatus", overflow="fold", max_width=max(8, left - protocol_width))
+    t.add_column("protocol", overflow="fold", max_width=protocol_width)
+    for _, head in figures:
+        t.add_column(head, no_wrap=True, min_width=10)
+    for _, head in factors:
+        t.add_column(head, no_wrap=True, min_width=6)
 
     def pm(row: dict[str, Any], key: str, digits: int = 4) -> str:
         if row[key] is None:
             return "-"
         return _tight({"value": row[key], "std": row[key + "_std"]}, digits)
 
-    for path, doc in results:
-        row = summary_row(path, doc)
+    for path, row in rows:
         status = row["status"] or "-"
         if row["steps_total"]:
             status += f" {row['steps_done']}/{row['steps_total']}"
-        stokes = {f: "\n".join("-" if row[f"{f}_S{k}"] is None else f"{row[f'{f}_S{k}']:+.3f}" for k in (1, 2, 3))
-                  for f in ("polarization", "spatial")}
-        t.add_row(Path(path).name, row["protocol"] or "-", status, pm(row, "purity"), pm(row, "concurrence"),
-                  pm(row, "fidelity"), stokes["polarization"], stokes["spatial"])
+        stokes = ["\n".join("-" if row[f"{f}_S{k}"] is None else f"{row[f'{f}_S{k}']:+.3f}" for k in (1, 2, 3))
+                  for f, _ in factors]
+        t.add_row(f"{Path(path).name}\n{status}", row["protocol"] or "-", *[pm(row, key) for key, _ in figures],
+                  *stokes)
     console.print(t)
     for path, doc in results:
         if "error" in doc:
             console.print(f"  {path}: {doc['error']}", highlight=False, markup=False)
-        elif doc.get("missing"):
-            console.print(f"  {path}: not yet determined: " + "; ".join(doc["missing"]), highlight=False, markup=False)
+        elif doc.get("determines") == "scan" and "purity" not in doc:
+            console.print(f"  {path}: a scan, no state (`lightloom analyze {path}` shows its fit)",
+                          highlight=False, markup=False)
+        elif doc.get("missing") and isinstance(doc["missing"], list):
+            done = doc.get("run", {}).get("status") == "complete"
+            console.print(f"  {path}: {'not determined' if done else 'not yet determined'}: " + "; ".join(doc["missing"]),
+                          highlight=False, markup=False)
 
 
 def print_scan(console: Console, doc: dict[str, Any]) -> None:
