@@ -109,6 +109,10 @@ def test_spatial_state_from_three_explicit_element_settings_on_four_ports(tmp_pa
     doc = _analyse(tmp_path, SPATIAL_THREE, "sim", "spatial", capsys)
     assert doc["determines"] == "spatial-state" and doc["missing"] == []
     assert doc["corrections"]["reduction"]["case"] == "exact"
+    # The reduced spatial state of the sim source is nearly unpolarized: its normalised linear entropy
+    # (d / (d - 1)) (1 - tr rho^2) is near 1, and its interval holds it and stays inside [0, 1]
+    entropy = doc["linear_entropy"]
+    assert entropy["value"] > 0.9 and 0.0 <= entropy["interval"][0] <= entropy["value"] <= entropy["interval"][1] <= 1.0, entropy
     # The built-in sim source's spatial Stokes parameters, from its density matrix (partial trace)
     truth = reduced_stokes(load_bench("sim").simulation.source.density(), "spatial")
     for k in (1, 2, 3):
@@ -131,6 +135,16 @@ def test_rotating_quarter_wave_plate_gives_the_source_stokes_on_any_port_set(tmp
         # 5 std plus the table's residual imperfections beyond the calibration (none on sim: the
         # calibration equals the simulated table, so only the splitter's finite extinction is left)
         assert abs(got["value"] - TRUE_STOKES[k]) <= 5 * got["std"] + 3e-3, (bench, k, got, TRUE_STOKES[k])
+    # S0: the power reaching the detectors (1 mW from the source of `sim`, all in the h mode). Behind
+    # one sorter output it is the power that output passes: (1 + visibility) / 2 of it at the
+    # visibility 0.97 of `sim`, not twice that (common practice, no source).
+    passed = {"sim": 1.0, "sim-single": 0.985, "two-ports": 0.985}[bench] * 1e-3
+    assert abs(doc["power"]["value"] - passed) <= 5 * doc["power"]["std"] + 0.01 * passed, (bench, doc["power"])
+    # the scan's calibration model assumes the input |H,h>: for this elliptical input it cannot fit,
+    # and the scan section says so instead of offering its parameters as if they meant something
+    fit = doc["scan"]["fit"]
+    assert fit["describes_readings"] is False and fit["residuals_over_repeat_scatter"] > 10, (bench, fit)
+    assert any("does not describe these readings" in note for note in fit["notes"])
     if bench == "sim-single":
         assert doc["corrections"]["reduction"]["case"] == "conditional"
     if bench == "sim":

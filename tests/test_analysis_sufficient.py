@@ -111,6 +111,10 @@ def test_reduction_sums_complementary_ports_and_not_labels() -> None:
     # proportional to the conditional state's predictions (here the reduced state: a product source)
     pred = np.real(np.einsum("nij,ji->n", red_ops, rho_pol))
     assert np.allclose(red_vals / red_vals.sum(), pred / pred.sum())
+    # and equal to them with the unnormalised state of the light the h filter passes (its trace, 0.3,
+    # the power that passes): the fitted intensity is that power, not twice it
+    passed = partial_trace(np.kron(np.eye(2), h) @ rho @ np.kron(np.eye(2), h), "polarization")
+    assert np.allclose(red_vals, np.real(np.einsum("nij,ji->n", red_ops, passed)))
 
 
 def test_the_noise_models_degrees_of_freedom_widen_the_intervals_by_t_over_z(night: Path) -> None:

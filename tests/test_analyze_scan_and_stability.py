@@ -70,12 +70,18 @@ def test_analyze_of_a_wave_plate_scan_reports_the_scan_and_finds_the_table_value
     hh = scan["ports"]["pm_hH"]
     span = max(hh["readings"]) - min(hh["readings"])
     assert max(abs(r) for r in hh["residuals"]) < 0.02 * span
+    # and no more than the scatter of repeated readings allows (a model fitted to these readings)
+    fit = scan["fit"]
+    assert fit["describes_readings"] is True and 0.5 < fit["residuals_over_repeat_scatter"] < 2.0, fit
 
 
 def test_analyze_of_a_scan_draws_readings_model_and_residuals(hwp_scan: Path, tmp_path: Path, capsys) -> None:
     assert main(["analyze", str(hwp_scan), "--plots", str(tmp_path / "fig")]) == 0
     out = " ".join(capsys.readouterr().out.split())  # the terminal table wraps lines
-    assert "a scan (no state)" in out
+    # a half-wave plate turned behind the parked quarter-wave plate also determines the input's
+    # polarization state, printed above the scan: the scan's line says so rather than "no state"
+    assert "a scan; its readings also determine the polarization state (above)" in out
+    assert "a scan (no state)" not in out
     assert "half_wave_plate.retardance_deg" in out
     png = tmp_path / "fig" / "scan.png"
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

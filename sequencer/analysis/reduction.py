@@ -17,7 +17,8 @@ So the readings are combined, never by the projector's label but by what the ope
    output, say) cannot be made exact. If every cluster sees the other factor through the same
    filter B (the same port set throughout), the readings are tr(rho (A (x) B)) and the estimate is
    the state of F in the part of the beam that B passes (conditional state); it equals the reduced
-   state whenever the source is a product state, and B's transmission only scales the intensity.
+   state whenever the source is a product state; the intensity is then the power B passes (the
+   operator is Tr_O(E), B being of unit trace like a sorter output's filter).
    Otherwise the reduction takes Tr_O(E) / 2, which assumes the other factor unpolarized. When
    some clusters are exact and others not (a run stopped before a projector's partner setting),
    only the exact ones are used. The result says which case applied (``ReductionInfo``).
@@ -179,4 +180,8 @@ def reduce_to_factor(
                          float(residuals[kept].max()) if len(kept) else 0.0)
     combination = np.zeros((len(kept), len(ops)))
     combination[rows, np.flatnonzero(used)] = weights[used]
-    return _traced_out(red_ops, factor) / 2.0, red_vals, red_var, info, combination
+    # A (x) I and the unpolarized assumption: Tr_O / 2 (tr(rho (A (x) I)) = tr(rho_F A)). One filter B
+    # on O (a sorter output: trace 1, the two outputs summing to I): Tr_O(A (x) B) = A, so the fitted
+    # intensity is the power of the light B passes, not twice it.
+    divisor = 1.0 if case == "conditional" else 2.0
+    return _traced_out(red_ops, factor) / divisor, red_vals, red_var, info, combination

@@ -21,6 +21,9 @@ from lightloom.sequencer.errors import InputError
 from lightloom.sequencer.optics.analyzer import ELEMENT_NAMES, AnalyzerModel, PortModel
 
 GRID_POINTS = 361
+# Residuals more than this many times the scatter of repeated readings: the model does not describe
+# the readings (for a calibration scan, most often an input that is not |H,h>).
+LACK_OF_FIT_RATIO = 3.0
 
 
 def scan_readings(label: str, element: str, readings: Any) -> calibration.ScanReadings:
@@ -42,7 +45,10 @@ class ScanReport:
     ``angle_deg`` (n,) and ``values`` (n, n_ports) are the shutter-open readings (drift-normalised
     as the fit sees them); ``model`` (n, n_ports) the fit at the same settings (NaN on a port the
     scan sends no light to); ``grid_deg``, ``grid_model`` the model on a fine grid; ``background``
-    (n_ports,) the mean shutter-closed reading; ``fit`` the calibration fit.
+    (n_ports,) the mean shutter-closed reading; ``fit`` the calibration fit. ``repeat_scatter``
+    (unit) is the pooled std of repeated readings about their setting's mean on the fitted ports
+    (NaN without repeats); ``misfit`` the residual rms over it (about 1 when the model describes
+    the readings, NaN without repeats).
     """
 
     label: str
@@ -56,6 +62,22 @@ class ScanReport:
     grid_model: np.ndarray
     background: np.ndarray
     fit: calibration.CalibrationFit
+    repeat_scatter: float = float("nan")
+    misfit: float = float("nan")
+
+    @property
+    def model_fails(self) -> bool:
+        """True when the residuals exceed LACK_OF_FIT_RATIO times the scatter of repeated readings."""
+        return bool(np.isfinite(self.misfit) and self.misfit > LACK_OF_FIT_RATIO)
+
+    def misfit_note(self) -> str | None:
+        """One plain sentence when the model does not describe the readings, else None."""
+        if not self.model_fails:
+            return None
+        return (f"the calibration model does not describe these readings: its residuals are {self.misfit:.0f} times "
+                f"the scatter of repeated readings ({self.repeat_scatter:.3g} {self.unit}); it assumes the "
+                "input |H,h> (a polarizer at H and the h mode before the analyzer), so its parameters mean "
+                "nothing here")
 
     @property
     def residuals(self) -> np.ndarray:
@@ -86,11 +108,35 @@ def scan_report(scan: calibration.ScanReadings, model: AnalyzerModel, ports: Seq
     grid_model = calibration.model_readings(fit, scan, model, ports, grid_settings)
     background = scan.values[scan.dark].mean(axis=0) if scan.dark.any() else np.full(scan.values.shape[1], np.nan)
     order = np.argsort(angle, kind="stable")
+    scatter = repeat_scatter(settings[light], scan.values[light][:, np.isfinite(predicted).any(axis=0)])
+    resid = (scan.values[light] - predicted)[np.isfinite(predicted)]
+    misfit = float(np.sqrt(np.mean(resid**2)) / scatter) if np.isfinite(scatter) and scatter > 0 and resid.size else float("nan")
     return ScanReport(
         label=scan.label, scanned=scan.scanned, port_names=tuple(p.name for p in ports), unit=unit,
         angle_deg=angle[order], values=scan.values[light][order], model=predicted[order],
         grid_deg=grid, grid_model=grid_model, background=background, fit=fit,
+        repeat_scatter=scatter, misfit=misfit,
     )
+
+
+def repeat_scatter(settings: np.ndarray, values: np.ndarray, decimals: int = 3) -> float:
+    """Pooled std of readings about the mean of their setting (same unit as ``values``).
+
+    ``settings`` (n, k) element positions (deg; equal to ``decimals`` places = one setting),
+    ``values`` (n, m) readings. The pure-error estimate of the reading noise, free of any model
+    (common practice in regression, no source). NaN when no setting is read twice.
+    """
+    v = np.asarray(values, dtype=float)
+    if v.size == 0:
+        return float("nan")
+    _, group = np.unique(np.round(np.asarray(settings, dtype=float), decimals), axis=0, return_inverse=True)
+    group = np.asarray(group).reshape(-1)
+    counts = np.bincount(group)
+    dof = int(np.sum(counts - 1)) * v.shape[1]
+    if dof < 1:
+        return float("nan")
+    means = np.stack([np.bincount(group, weights=v[:, j]) / counts for j in range(v.shape[1])], 1)
+    return float(np.sqrt(np.sum((v - means[group]) ** 2) / dof))
 
 
 def _finite(x: float) -> float | None:
@@ -124,8 +170,11 @@ def scan_json(report: ScanReport) -> dict[str, Any]:
             "parameters": params,
             "residual_rms": fit.residual_rms_w,
             "reduced_chi2": fit.reduced_chi2,
+            "repeat_scatter": _finite(report.repeat_scatter),
+            "residuals_over_repeat_scatter": _finite(report.misfit),
+            "describes_readings": None if not np.isfinite(report.misfit) else not report.model_fails,
             "readings": fit.n_readings,
-            "notes": list(fit.notes),
+            "notes": list(fit.notes) + ([report.misfit_note()] if report.model_fails else []),
         },
     }
 

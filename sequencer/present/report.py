@@ -211,8 +211,11 @@ def print_summary(console: Console, results: list[tuple[str, dict[str, Any]]]) -
 def print_scan(console: Console, doc: dict[str, Any]) -> None:
     """Print the document of a scan run: run line, fitted parameters, residuals per port."""
     run = doc["run"]
+    state = doc.get("state_determined")
+    what = (f"a scan; its readings also determine the {state.removesuffix('-state')} state (above)" if state
+            else "a scan (no state)")
     console.print(f"[bold]{run['protocol']}[/bold] on {run['bench']}: {run['status']}, "
-                  f"{run['steps_done']}/{run['steps_total']} steps: a scan (no state)", highlight=False)
+                  f"{run['steps_done']}/{run['steps_total']} steps: {what}", highlight=False)
     scan = doc.get("scan")
     if scan is None:
         console.print(f"  not fitted yet: {doc.get('missing', '')}", highlight=False, markup=False)
@@ -232,8 +235,10 @@ def print_scan(console: Console, doc: dict[str, Any]) -> None:
             t.add_row(name, f"{p['value']:.6g} ± {p['std']:.2g} [{lo:.6g}, {hi:.6g}]")
     console.print(t)
     ports = ", ".join(f"{k} ({len(v['readings'])} readings)" for k, v in scan["ports"].items())
-    console.print(f"  ports: {ports}; residual rms {fit['residual_rms']:.3g} {scan['unit']}, reduced chi2 "
-                  f"{fit['reduced_chi2']:.2f}", highlight=False, markup=False)
+    ratio = fit.get("residuals_over_repeat_scatter")
+    versus = f", {ratio:.2g} times the scatter of repeated readings" if ratio is not None else ""
+    console.print(f"  ports: {ports}; residual rms {fit['residual_rms']:.3g} {scan['unit']}{versus}, reduced chi2 "
+                  f"{fit['reduced_chi2']:.2f} (against the noise fitted to these residuals)", highlight=False, markup=False)
     for note in fit["notes"]:
         console.print(f"  note: {note}", highlight=False, markup=False)
 

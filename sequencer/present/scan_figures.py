@@ -45,6 +45,10 @@ def parameter_lines(report: ScanReport) -> list[str]:
     if len(lines) > MAX_LISTED:
         lines = lines[:MAX_LISTED] + [f"... and {len(lines) - MAX_LISTED} more (see --json)"]
     lines.append(f"residual rms {fit.residual_rms_w:.3g} {report.unit}, reduced chi2 {fit.reduced_chi2:.2f}")
+    if np.isfinite(report.misfit):
+        lines.append(f"residuals / scatter of repeats: {report.misfit:.2g}")
+    if report.model_fails:
+        lines += ["", "THE MODEL DOES NOT DESCRIBE", "THESE READINGS: it assumes the", "input |H,h> (see --json notes)"]
     return lines
 
 
