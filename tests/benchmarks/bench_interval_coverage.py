@@ -36,6 +36,9 @@ from lightloom.sequencer.storage.store import load_run
 
 R2 = 1 / np.sqrt(2)
 PRODUCT_KET = np.kron([1.0, 0.0], [0.6, 0.8j])  # |H> (x) (0.6 h + 0.8i v): a pure product state
+# cos(0.5)|H,h> + e^{0.3i} sin(0.5)|V,v>, mixed with 25 % white noise: an interior state
+# (concurrence 0.51, purity 0.67), away from every edge.
+PARTIAL_KET = np.array([np.cos(0.5), 0.0, 0.0, np.exp(0.3j) * np.sin(0.5)])
 
 
 def _dm(ket: np.ndarray) -> np.ndarray:
@@ -62,6 +65,8 @@ CONDITIONS: dict[str, tuple[float, np.ndarray | None, str]] = {
     "pure product 1 uW": (1e-6, _dm(PRODUCT_KET), ""),
     "mixed separable 1 uW": (1e-6, 0.5 * _dm(PRODUCT_KET) + 0.5 * np.eye(4) / 4, ""),
     "pure product counts": (4e-10, _dm(PRODUCT_KET), COUNTERS),
+    "partly entangled 1 uW": (1e-6, 0.75 * _dm(PARTIAL_KET) + 0.25 * np.eye(4) / 4, ""),
+    "partly entangled counts": (4e-10, 0.75 * _dm(PARTIAL_KET) + 0.25 * np.eye(4) / 4, COUNTERS),
 }
 
 
