@@ -99,7 +99,7 @@ def _print_partial(console: Console, doc: dict[str, Any]) -> None:
     if "power" in doc:
         console.print(f"  power S0: {_power(doc['power'])}", highlight=False)
     done = doc.get("run", {}).get("status") == "complete"
-    console.print("  the state is not determined: the complete run lacks" if done
+    console.print("  the state is not determined; missing from the complete run:" if done
                   else "  the state is not determined yet; still missing:", highlight=False)
     for line in doc.get("missing", []):
         console.print(f"   - {line}", highlight=False, markup=False)
