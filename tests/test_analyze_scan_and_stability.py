@@ -127,3 +127,19 @@ def test_stability_option_adds_the_report_to_a_tomography(tmp_path: Path, capsys
     doc = json.loads(capsys.readouterr().out)
     assert "purity" in doc and "stability" in doc
     assert doc["stability"]["reference"]["unit"] == "W"
+
+
+def test_a_scan_stopped_before_its_first_reading_says_what_is_missing_as_a_list(tmp_path: Path, capsys) -> None:
+    bench = tmp_path / "stuck.yaml"
+    bench.write_text("extends: sim-uncalibrated\nsimulation:\n  faults:\n"
+                     "    - {device: qwp_stage, kind: stuck, at_s: 0}\n", encoding="utf-8")
+    out = tmp_path / "stuck.h5"
+    assert main(["run", "waveplate-calibration-qwp", "--bench", str(bench), "--out", str(out), "--quiet"]) == 3
+    capsys.readouterr()
+    assert main(["analyze", str(out), "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["run"]["status"] == "fault" and doc["run"]["steps_done"] == 0
+    assert doc["scan"] is None and doc["missing"] == ["the scan has no measure readings yet"]
+    assert main(["analyze", str(out), "--csv"]) == 0
+    row = capsys.readouterr().out.splitlines()[1]
+    assert row.endswith(",the scan has no measure readings yet"), row

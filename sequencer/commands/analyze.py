@@ -346,7 +346,7 @@ def _scan_document(args: argparse.Namespace, path: str, data, element: str):
     except InputError as exc:  # nothing to fit yet (a run just started): say so, exit 0
         report = None
         doc["scan"] = None
-        doc["missing"] = exc.message
+        doc["missing"] = [exc.message]  # a list, as in every other document
     return doc, report
 
 

@@ -222,7 +222,7 @@ def print_summary(console: Console, results: list[tuple[str, dict[str, Any]]]) -
         elif doc.get("determines") == "scan" and "purity" not in doc:
             console.print(f"  {path}: a scan, no state (`lightloom analyze {path}` shows its fit)",
                           highlight=False, markup=False)
-        elif doc.get("missing") and isinstance(doc["missing"], list):
+        elif doc.get("missing"):
             done = doc.get("run", {}).get("status") == "complete"
             console.print(f"  {path}: {'not determined' if done else 'not yet determined'}: " + "; ".join(doc["missing"]),
                           highlight=False, markup=False)
@@ -238,7 +238,7 @@ def print_scan(console: Console, doc: dict[str, Any]) -> None:
                   f"{run['steps_done']}/{run['steps_total']} steps: {what}", highlight=False)
     scan = doc.get("scan")
     if scan is None:
-        console.print(f"  not fitted yet: {doc.get('missing', '')}", highlight=False, markup=False)
+        console.print("  not fitted yet: " + "; ".join(doc.get("missing", [])), highlight=False, markup=False)
         return
     fit = scan["fit"]
     t = Table(title=f"scan of the {scan['scanned_element'].replace('_', ' ')}: fitted parameters (± std [95% interval])")
