@@ -84,8 +84,8 @@ def _analyse(args: argparse.Namespace, path: str, window_s: float | None, data=N
 
     element = scanned_element(data)
     if element is not None:
-        doc, _ = _scan_document(args, path, data, element)
-        return data, doc, None, []
+        doc, _, est = _scan_document(args, path, data, element)
+        return data, doc, est, []
     operators = _recomputed_operators(data, args.bench) if getattr(args, "bench", None) else None
     segments = None
     if getattr(args, "per_pass", False):
@@ -319,7 +319,8 @@ def _stability_plot(data, stability, directory: str):
 
 def _scan_document(args: argparse.Namespace, path: str, data, element: str):
     """The document of a scan run (readings per port against the scanned angle, the calibration
-    model fitted) and the scan report (None while there is nothing to fit)."""
+    model fitted), the scan report (None while there is nothing to fit) and the estimate of the
+    state its readings determine (None when they determine none)."""
     from pathlib import Path
 
     from lightloom.sequencer.analysis.pipeline import run_section
@@ -340,6 +341,8 @@ def _scan_document(args: argparse.Namespace, path: str, data, element: str):
                                 n_bootstrap=getattr(args, "bootstrap", 200), normalize=getattr(args, "normalize", False))
     if est is not None and est.rho is not None:
         doc = {**state, **doc, "state_determined": state["determines"]}
+    else:
+        est = None
     try:
         report = run_scan_report(data, element, Path(path).stem, bench)
         doc["scan"] = scan_json(report)
@@ -347,7 +350,7 @@ def _scan_document(args: argparse.Namespace, path: str, data, element: str):
         report = None
         doc["scan"] = None
         doc["missing"] = [exc.message]  # a list, as in every other document
-    return doc, report
+    return doc, report, est
 
 
 def _scan(args: argparse.Namespace, path: str, data, element: str) -> int:
@@ -356,7 +359,7 @@ def _scan(args: argparse.Namespace, path: str, data, element: str) -> int:
 
     from lightloom.sequencer.errors import UsageError
 
-    doc, report = _scan_document(args, path, data, element)
+    doc, report, est = _scan_document(args, path, data, element)
     if args.plots and report is not None:
         from lightloom.sequencer.present.plots import PlotsUnavailable
         from lightloom.sequencer.present.scan_figures import plot_scan
@@ -366,6 +369,9 @@ def _scan(args: argparse.Namespace, path: str, data, element: str) -> int:
                                           title=f"{data.header.protocol_name} on {data.header.bench_name}"))]
         except PlotsUnavailable as exc:
             raise UsageError(str(exc)) from None
+    if args.plots and est is not None:
+        # the state the scan determines gets the figures of any state (density matrix, Poincare sphere)
+        doc["plots"] = doc.get("plots", []) + [str(p) for p in write_figures(data, doc, est, args.plots)]
     if args.json:
         print(json.dumps(doc, indent=1))
     elif args.csv:
