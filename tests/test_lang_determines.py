@@ -172,3 +172,32 @@ def test_a_scan_that_is_a_polarimeter_says_it_also_determines_the_state(tmp_path
     # an image-rotator scan with the converter out sees h/v and d/a only: a scan, no state
     doc = json_of(capsys, verb, "calibration-rotator", "--bench", "sim", "--json")
     assert (doc["determines"], doc["state_determined"]) == ("scan", None)
+
+
+WEAK_DIAGONAL = """\
+protocol: weak-diagonal
+analyzes: [polarization]
+measure:
+  settings:
+    - {elements: {quarter_wave_plate_deg: 0, half_wave_plate_deg: 0, mode_converter: out, image_rotator_deg: 0}}
+    - {elements: {quarter_wave_plate_deg: 0, half_wave_plate_deg: 22.5}}
+    - {polarization: R}
+dwell_s: 0.1
+"""
+
+
+def test_a_basis_reached_only_through_an_imperfect_plate_is_not_determined(tmp_path, capsys) -> None:
+    # A half-wave plate at 22.5 deg behind a quarter-wave plate at 0 measures R/L, not D/A: these
+    # settings give H/V and R/L twice. The 91.2 deg quarter-wave plate of `sim` leaks a sliver of
+    # D/A into them (sin 1.2 deg, about 0.02), which spans the space but amplifies a reading's
+    # noise hundreds of times (Jones calculus, common practice, no source): partial, not a state.
+    path = write(tmp_path, "p.yaml", WEAK_DIAGONAL)
+    doc = json_of(capsys, "dry-run", str(path), "--bench", "sim", "--json")
+    assert doc["determines"] == "partial" and doc["state_determined"] is None
+    assert doc["stokes_determined"]["polarization"] == ["S0", "S1", "S3"]
+    assert len(doc["missing"]) == 1 and doc["missing"][0].startswith("polarization: D/A reached only weakly")
+    assert "add a setting that measures D" in doc["missing"][0]
+    # stated as a polarization tomography, the pair is bad input naming the weak basis
+    stated = write(tmp_path, "q.yaml", WEAK_DIAGONAL + "determines: polarization-state\n")
+    assert cli.main(["validate", str(stated), "--bench", "sim"]) == 2
+    assert "D/A reached only weakly" in capsys.readouterr().err

@@ -6,8 +6,11 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from lightloom.sequencer.optics.determination import determination
+from lightloom.sequencer.optics.determination import MAX_AMPLIFICATION, determination
 from lightloom.sequencer.optics.states import POLARIZATION_KETS, SPATIAL_KETS, density
+
+# the identity and the Pauli matrices, written out (common practice, no source)
+PAULIS = [np.eye(2), np.array([[1, 0], [0, -1]]), np.array([[0, 1], [1, 0]]), np.array([[0, -1j], [1j, 0]])]
 
 BOTH = ("polarization", "spatial")
 
@@ -150,6 +153,12 @@ def test_what_is_determined_depends_on_the_span_only(seed: int, count: int) -> N
     assert more.rank >= base.rank
     for factor in BOTH:
         assert all(m or not b for m, b in zip(more.stokes[factor], base.stokes[factor]))
-    # Generic projectors: 16 or more span the whole space (rank min(count, 16)).
+    # Generic projectors: 16 or more span the whole space (rank min(count, 16)); they determine the
+    # state unless some component needs the readings' noise amplified more than MAX_AMPLIFICATION
+    # times (the smallest coefficients, by numpy's pseudo-inverse of the unit Pauli coordinates)
     assert base.rank == min(count, 16)
-    assert (base.kind == "joint-state") == (count >= 16)
+    paulis = [np.kron(a, b) for a in PAULIS for b in PAULIS]
+    coords = np.array([[np.trace(e @ p).real for p in paulis] for e in ops])
+    coords /= np.linalg.norm(coords, axis=1, keepdims=True)
+    worst = np.linalg.norm(np.linalg.pinv(coords.T), axis=0).max() if count >= 16 else np.inf
+    assert (base.kind == "joint-state") == (count >= 16 and worst <= MAX_AMPLIFICATION)

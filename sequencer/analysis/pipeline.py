@@ -836,7 +836,7 @@ def result_json(run: RunData, est: Estimate) -> dict[str, Any]:
     determined = est.determined
     out["determines"] = determined.kind if determined is not None else "partial"
     out["missing"] = list(determined.missing) if determined is not None else []
-    if est.partial and determined is not None:
+    if est.partial and determined is not None and determined.rank < determined.full_rank:
         out["missing"].append(
             f"the {'joint 4x4' if len(est.analyzes) == 2 else '2x2 ' + est.analyzes[0]} state: the readings "
             f"fix {determined.rank} of its {determined.full_rank} real parameters")

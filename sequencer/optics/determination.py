@@ -45,6 +45,13 @@ BASES: Mapping[str, tuple[tuple[str, str, str], ...]] = MappingProxyType(
 RANK_TOLERANCE = 1e-6
 """Singular values below this fraction of the largest count as zero (operators are normalised first)."""
 
+MAX_AMPLIFICATION = 50.0
+"""A component counts as determined only when some combination of the readings, each normalised to
+unit size, gives it with coefficients of norm at most this (1 for a projector read with its
+partner). Beyond it the readings reach the component only through a small imperfection of the
+elements (a quarter-wave plate of 91.2 deg where 90 was meant, say), and its estimate carries a
+reading's noise amplified that many times."""
+
 
 @dataclass(frozen=True)
 class Determination:
@@ -115,6 +122,18 @@ def _rank(m: NDArray[np.float64]) -> int:
     return int((s > 1e-6 * max(float(s[0]), 1e-300)).sum()) if s[0] > 1e-9 else 0
 
 
+def _amplification(coords: NDArray[np.float64], vector: NDArray[np.float64]) -> float:
+    """Norm of the smallest coefficients c with sum_i c_i coords_i = ``vector`` (inf when none), over
+    the distinct rows: a property of the set of settings, not of how often each is read."""
+    if coords.shape[0] == 0:
+        return float("inf")
+    coords = np.unique(np.round(coords, 9), axis=0)
+    c, *_ = np.linalg.lstsq(coords.T, vector, rcond=None)
+    if np.linalg.norm(coords.T @ c - vector) > 1e-6 * np.linalg.norm(vector):
+        return float("inf")
+    return float(np.linalg.norm(c))
+
+
 def _overlap(basis: NDArray[np.float64], vector: NDArray[np.float64]) -> float:
     """Length of the unit ``vector``'s projection onto the span (0: orthogonal, 1: inside)."""
     v = vector / np.linalg.norm(vector)
@@ -168,7 +187,7 @@ def determination(
     def determined(idx: tuple[int, ...]) -> bool:
         e = np.zeros(len(indices))
         e[position[idx]] = 1.0
-        return _in_span(basis, e)
+        return _in_span(basis, e) and _amplification(coords, e) <= MAX_AMPLIFICATION
 
     def local(f: int, i: int) -> tuple[int, ...]:
         return tuple(i if g == f else 0 for g in range(n))
@@ -188,12 +207,20 @@ def determination(
         summed = coords.copy()
         summed[:, foreign] = 0.0
         summed_basis = _span_basis(_unit_rows(summed))
-        covered = [_in_span(summed_basis, _unit(len(indices), position[local(f, i)])) for i in range(4)]
+        summed_rows = _unit_rows(summed)
+        spanned = [_in_span(summed_basis, _unit(len(indices), position[local(f, i)])) for i in range(4)]
+        gain = [_amplification(summed_rows, _unit(len(indices), position[local(f, i)])) for i in range(4)]
+        covered = [ok and g <= MAX_AMPLIFICATION for ok, g in zip(spanned, gain)]
         if not covered[0]:
             missing.append(f"{factor}: no total power (no complete basis such as "
                            f"{BASES[factor][0][0]} with {BASES[factor][0][1]})")
         for i, (plus, minus, name) in enumerate(BASES[factor], start=1):
             if covered[i]:
+                continue
+            if spanned[i]:
+                missing.append(f"{factor}: {plus}/{minus} reached only weakly, through an imperfection of the"
+                               f" elements (a reading's noise amplified {gain[i]:.0f} times): add a setting that"
+                               f" measures {plus}")
                 continue
             p_plus = _projector_determined(summed_basis, position, local(f, 0), local(f, i), +1)
             p_minus = _projector_determined(summed_basis, position, local(f, 0), local(f, i), -1)

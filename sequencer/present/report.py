@@ -94,7 +94,8 @@ def _print_partial(console: Console, doc: dict[str, Any]) -> None:
         for k in ("S1", "S2", "S3", "degree"):
             s.add_column(k, justify="right")
         for factor, vals in doc["stokes"].items():
-            s.add_row(factor, *[_pm(v, 3) for v in vals[1:]], _pm(doc.get("degree_of_polarization", {}).get(factor), 3))
+            cells = [_pm(v, 3) for v in vals[1:]] + [_pm(doc.get("degree_of_polarization", {}).get(factor), 3)]
+            s.add_row(factor, *[c if so_far or c != "not yet" else "not determined" for c in cells])
         console.print(s)
     if "power" in doc:
         console.print(f"  power S0: {_power(doc['power'])}", highlight=False)
