@@ -195,3 +195,17 @@ def test_a_missing_run_file_is_refused_with_one_line(tmp_path: Path, capsys: pyt
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "no such run file" in err
 
+
+
+def test_calibrate_refuses_scans_whose_input_was_not_the_calibration_input(tmp_path: Path, capsys) -> None:
+    # The built-in sim source is a vector beam, not |H,h>: a quarter-wave scan of it cannot be fitted by
+    # the calibration model (its residuals dwarf the scatter of repeated readings), so no overlay of
+    # nonsense values is written.
+    run = tmp_path / "qwp-on-a-vector-beam.h5"
+    assert cli.main(["run", "waveplate-calibration-qwp", "--bench", "sim", "--out", str(run), "--quiet"]) == 0
+    capsys.readouterr()
+    out = tmp_path / "overlay.yaml"
+    assert cli.main(["calibrate", str(run), "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "the calibration model does not describe this scan" in err and "nothing written" in err
+    assert err.count("\n") == 1 and not out.exists()

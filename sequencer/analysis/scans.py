@@ -24,6 +24,8 @@ GRID_POINTS = 361
 # Residuals more than this many times the scatter of repeated readings: the model does not describe
 # the readings (for a calibration scan, most often an input that is not |H,h>).
 LACK_OF_FIT_RATIO = 3.0
+# Beyond this, `calibrate` refuses to write an overlay from the scan: its values would be nonsense.
+REFUSE_RATIO = 10.0
 
 
 def scan_readings(label: str, element: str, readings: Any) -> calibration.ScanReadings:

@@ -6,6 +6,7 @@ import argparse
 import datetime as dt
 import math
 import os
+import sys
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Sequence
@@ -71,6 +72,7 @@ def run(args: argparse.Namespace) -> int:
         if exc.file is None:
             raise InputError(exc.message, str(first.path), None) from None
         raise
+    warnings = _misfits(scans, fit, model, ports, runs)
     spec, base = _base_bench(args.bench, first, out)
     rows = _overlay_values(fit, base)
     if not rows:
@@ -87,10 +89,32 @@ def run(args: argparse.Namespace) -> int:
         raise UsageError(f"cannot write {out}: {exc.strerror}") from None
     console = Console()
     _print(console, rows, fit, out, spec)
+    for line in warnings:
+        print(line, file=sys.stderr)
     if args.plots:
         for path in _plots(args.plots, scans, fit, model, ports, runs):
             console.print(f"figure: {path}", highlight=False)
     return 0
+
+
+def _misfits(scans, fit, model, ports, runs: Sequence[_Run]) -> list[str]:
+    """Refuse a scan the fitted model cannot describe (residuals beyond REFUSE_RATIO times the scatter
+    of its repeated readings: nothing is written); warning lines for those beyond LACK_OF_FIT_RATIO."""
+    from lightloom.sequencer.analysis.scans import LACK_OF_FIT_RATIO, REFUSE_RATIO, scan_report
+
+    warnings = []
+    for scan, r in zip(scans, runs):
+        unit = "counts" if r.data.header.port_units == "counts" else "W"
+        report = scan_report(scan, model, ports, unit=unit, fit=fit)
+        if not math.isfinite(report.misfit) or report.misfit <= LACK_OF_FIT_RATIO:
+            continue
+        what = (f"the calibration model does not describe this scan: its residuals are {report.misfit:.0f} times the "
+                f"scatter of repeated readings ({report.repeat_scatter:.3g} {unit})")
+        if report.misfit > REFUSE_RATIO:
+            raise InputError(f"{what}; the scans assume the input |H,h> (a polarizer at H and the h mode before the "
+                             "analyzer): check the input and scan again; nothing written", str(r.path), None)
+        warnings.append(f"lightloom: warning: {r.path}: {what}; check the input |H,h> and the beam's stability")
+    return warnings
 
 
 def _plots(directory: str, scans, fit, model, ports, runs: Sequence[_Run]) -> list[Path]:
