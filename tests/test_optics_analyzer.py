@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from hypothesis import example, given, settings, strategies as st
 
 from lightloom.sequencer.optics.analyzer import (
@@ -123,3 +124,52 @@ def test_vectorised_port_operators_equal_one_at_a_time() -> None:
     stack = port_operators(model, FOUR_PORTS, s)
     for k in range(7):
         assert np.allclose(stack[k], port_operators(model, FOUR_PORTS, s[k : k + 1])[0])
+
+
+# The table of docs/protocol-language.md ("What element settings measure"): (quarter-wave, half-wave)
+# in degrees -> what the splitter's H and V outputs measure.
+PLATE_TABLE = [((0, 0), ("H", "V")), ((45, 22.5), ("D", "A")), ((45, 0), ("R", "L")), ((0, 22.5), ("L", "R"))]
+# the converter (in/out) and the image rotator (deg) -> the sorter's h and v outputs
+MODE_TABLE = [(("out", 0), ("h", "v")), (("out", 22.5), ("d", "a")), (("in", 0), ("l+", "l-"))]
+
+
+@pytest.mark.parametrize("angles, names", PLATE_TABLE)
+def test_the_documented_plate_settings_measure_what_the_docs_say(angles, names) -> None:
+    # Outside reference: sympy.physics.optics.polarization's retarders; the beam meets the quarter-wave
+    # plate first, so the H output measures the input (HWP QWP)^dagger |H>.
+    from sympy import N, pi
+    from sympy.physics.optics.polarization import half_wave_retarder, quarter_wave_retarder
+
+    from lightloom.sequencer.optics.analyzer import ELEMENT_NAMES, PortModel, port_operators
+    from lightloom.sequencer.optics.states import POLARIZATION_KETS, partial_trace
+    from lightloom.sequencer.plan.purpose import _IDEAL
+
+    q, h = angles
+    m = np.array(N(half_wave_retarder(h * pi / 180) * quarter_wave_retarder(q * pi / 180)), dtype=complex)
+    s = np.zeros(len(ELEMENT_NAMES))
+    s[ELEMENT_NAMES.index("quarter_wave_plate")], s[ELEMENT_NAMES.index("half_wave_plate")] = q, h
+    ports = (PortModel("H", sorter_port="h", splitter_port="H"), PortModel("V", sorter_port="h", splitter_port="V"))
+    ops = port_operators(_IDEAL, ports, s[None, :])[0]
+    for op, name, out in zip(ops, names, ([1, 0], [0, 1])):
+        ket = m.conj().T @ np.array(out, dtype=complex)
+        assert np.allclose(partial_trace(op, "polarization"), np.outer(ket, ket.conj()), atol=1e-9)
+        ref = POLARIZATION_KETS[name]
+        assert abs(np.vdot(ref, ket)) ** 2 == pytest.approx(1.0, abs=1e-9), (angles, name)
+
+
+@pytest.mark.parametrize("setting, names", MODE_TABLE)
+def test_the_documented_mode_settings_measure_what_the_docs_say(setting, names) -> None:
+    # the mode converter at its default 45 deg mount, the image rotator turning a mode by twice its
+    # angle (common practice, no source)
+    from lightloom.sequencer.optics.analyzer import CONVERTER, CONVERTER_IN, CONVERTER_OUT, ELEMENT_NAMES, PortModel, port_operators
+    from lightloom.sequencer.optics.states import SPATIAL_KETS, partial_trace
+    from lightloom.sequencer.plan.purpose import _IDEAL
+
+    conv, rot = setting
+    s = np.zeros(len(ELEMENT_NAMES))
+    s[CONVERTER] = CONVERTER_IN if conv == "in" else CONVERTER_OUT
+    s[ELEMENT_NAMES.index("image_rotator")] = rot
+    ports = (PortModel("h", sorter_port="h", splitter_port="H"), PortModel("v", sorter_port="v", splitter_port="H"))
+    for op, name in zip(port_operators(_IDEAL, ports, s[None, :])[0], names):
+        ket = SPATIAL_KETS[name]
+        assert np.real(np.vdot(ket, partial_trace(op, "spatial") @ ket)) == pytest.approx(1.0, abs=1e-9), (setting, name)
