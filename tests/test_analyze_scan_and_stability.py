@@ -86,7 +86,7 @@ def test_analyze_of_a_scan_draws_readings_model_and_residuals(hwp_scan: Path, tm
     png = tmp_path / "fig" / "scan.png"
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     # the state it also determines is drawn as any state is
-    for name in ("density_matrix.png", "poincare.png"):
+    for name in ("density_matrix.png", "poincare.png", "scan_state.png"):
         assert (tmp_path / "fig" / name).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n", name
 
 

@@ -66,6 +66,7 @@ class ScanReport:
     fit: calibration.CalibrationFit
     repeat_scatter: float = float("nan")
     misfit: float = float("nan")
+    state: "StateCurve | None" = None
 
     @property
     def model_fails(self) -> bool:
@@ -206,3 +207,85 @@ def run_scan_report(run: Any, element: str, label: str, bench: Any | None = None
     scan = scan_readings(label, element, run.readings)
     unit = "counts" if h.port_units == "counts" else "W"
     return scan_report(scan, analyzer_model(bench), port_models(bench), unit=unit)
+
+
+@dataclass(frozen=True)
+class StateCurve:
+    """The readings of a scan that also determines a state, against the model of that state.
+
+    The ports whose operators share one projector on the analysed ``factor`` are summed (with the
+    reduction's weights, sequencer.analysis.reduction: e.g. the two sorter outputs behind one
+    splitter port), since only such sums are predicted by the factor's state alone. ``outputs``
+    names each sum ("pm_hH+pm_vH"); ``values`` (n, k) are the summed readings minus background and
+    ``model`` (n, k) the state's prediction, ``intensity`` x tr(rho A); ``grid_deg``, ``grid_model``
+    the prediction on a fine grid of the scanned angle (NaN where the bench's model is not given).
+    """
+
+    factor: str
+    outputs: tuple[str, ...]
+    angle_deg: np.ndarray
+    values: np.ndarray
+    model: np.ndarray
+    grid_deg: np.ndarray
+    grid_model: np.ndarray
+
+    @property
+    def residuals(self) -> np.ndarray:
+        return self.values - self.model
+
+
+def _combined(ops: np.ndarray, values: np.ndarray, factor: str, port_names: Sequence[str]):
+    """(names, reduced operators (k, 2, 2), combined values (k,)) of one setting's ports."""
+    from lightloom.sequencer.analysis.reduction import reduce_to_factor
+
+    red_ops, red_vals, _, _, comb = reduce_to_factor(ops, values, None, factor)
+    names = tuple("+".join(p for p, w in zip(port_names, row) if w > 0) for row in comb)
+    return names, red_ops, red_vals
+
+
+def state_curve(factor: str, port_names: Sequence[str], angle_deg: np.ndarray, operators: np.ndarray,
+                values: np.ndarray, background: np.ndarray, rho: np.ndarray, intensity: float,
+                grid_deg: np.ndarray | None = None, grid_operators: np.ndarray | None = None) -> StateCurve | None:
+    """Summed readings against the model of the state ``rho`` (2x2, of ``factor``) at ``intensity``.
+
+    ``operators`` (n, n_ports, 4, 4) and ``values`` (n, n_ports) are the shutter-open readings as the
+    file holds them (port gains inside both; counts per reading with the dwell folded into
+    ``intensity`` by the caller); ``background`` (n_ports,) the mean shutter-closed reading. None
+    when the ports do not combine the same way at every setting.
+    """
+    names: tuple[str, ...] | None = None
+    vals, model = [], []
+    rho = np.asarray(rho, dtype=np.complex128)
+    for ops, v in zip(operators, values):
+        n, red_ops, red_vals = _combined(ops, v - np.nan_to_num(background), factor, port_names)
+        if names is None:
+            names = n
+        if n != names:
+            return None
+        vals.append(red_vals)
+        model.append(intensity * np.einsum("kij,ji->k", red_ops, rho).real)
+    if names is None:
+        return None
+    grid = np.asarray([] if grid_deg is None else grid_deg, dtype=float)
+    grid_model = np.full((len(grid), len(names)), np.nan)
+    if grid_operators is not None:
+        for g, ops in enumerate(grid_operators):
+            n, red_ops, _ = _combined(ops, np.ones(len(port_names)), factor, port_names)
+            if n == names:
+                grid_model[g] = intensity * np.einsum("kij,ji->k", red_ops, rho).real
+    order = np.argsort(angle_deg, kind="stable")
+    return StateCurve(factor, names, np.asarray(angle_deg)[order], np.asarray(vals)[order], np.asarray(model)[order],
+                      grid, grid_model)
+
+
+def state_curve_json(curve: StateCurve) -> dict[str, Any]:
+    """The ``state_model`` section of a scan's document."""
+    return {
+        "factor": curve.factor,
+        "how": (f"ports with one {curve.factor} projector summed (the other factor's outputs together); "
+                "model: the power times tr(rho A) of the state determined by the scan"),
+        "angle_deg": curve.angle_deg.tolist(),
+        "outputs": {name: {"readings": curve.values[:, k].tolist(),
+                           "model": curve.model[:, k].tolist(),
+                           "residuals": curve.residuals[:, k].tolist()} for k, name in enumerate(curve.outputs)},
+    }

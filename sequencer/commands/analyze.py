@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import sys
 from typing import Any
@@ -350,7 +351,44 @@ def _scan_document(args: argparse.Namespace, path: str, data, element: str):
         report = None
         doc["scan"] = None
         doc["missing"] = [exc.message]  # a list, as in every other document
+    if report is not None and est is not None:
+        curve = _state_curve(data, element, report, est)
+        if curve is not None:
+            from lightloom.sequencer.analysis.scans import state_curve_json
+
+            doc["scan"]["state_model"] = state_curve_json(curve)
+            report = dataclasses.replace(report, state=curve)
     return doc, report, est
+
+
+def _state_curve(data, element: str, report, est):
+    """The scan's readings, summed over the other factor's outputs, against the model of the state
+    the scan determines (single-factor states only; None otherwise)."""
+    from lightloom.sequencer.analysis.scans import state_curve
+    from lightloom.sequencer.lang.bench import parse_bench
+    from lightloom.sequencer.optics.analyzer import ELEMENT_NAMES, port_operators
+    from lightloom.sequencer.plan.tablemodel import analyzer_model, port_models
+
+    if est.rho is None or est.rho.shape != (2, 2) or est.power is None:
+        return None
+    r = data.readings
+    light = np.asarray(r.kind).astype(str) == "measure"
+    names = tuple(r.element_names)
+    column = names.index(element)
+    rb, cmd = np.asarray(r.readback, dtype=float), np.asarray(r.commanded, dtype=float)
+    settings = np.where(np.isfinite(rb), rb, cmd)[light]
+    ops = np.asarray(r.operators)[light]
+    if data.header.port_units == "counts":  # counts per reading: the rate times the dwell
+        ops = ops * np.asarray(r.dwell_s, dtype=float)[light][:, None, None, None]
+    bench = parse_bench(data.header.bench_text, "<bench stored in the run file>")
+    full = np.stack([settings[:, names.index(n)] if n in names else np.zeros(len(settings)) for n in ELEMENT_NAMES], 1)
+    grid = np.repeat(np.nan_to_num(full[:1]), len(report.grid_deg), axis=0)
+    grid[:, ELEMENT_NAMES.index(element)] = report.grid_deg
+    grid_ops = port_operators(analyzer_model(bench), port_models(bench), grid)
+    if data.header.port_units == "counts":
+        grid_ops = grid_ops * float(np.median(np.asarray(r.dwell_s, dtype=float)[light]))
+    return state_curve(est.analyzes[0], r.port_names, settings[:, column], ops, np.asarray(r.values)[light],
+                       report.background, est.rho, float(est.power[0]), report.grid_deg, grid_ops)
 
 
 def _scan(args: argparse.Namespace, path: str, data, element: str) -> int:
@@ -367,6 +405,12 @@ def _scan(args: argparse.Namespace, path: str, data, element: str) -> int:
         try:
             doc["plots"] = [str(plot_scan(report, Path(args.plots) / "scan.png",
                                           title=f"{data.header.protocol_name} on {data.header.bench_name}"))]
+            if report.state is not None:
+                from lightloom.sequencer.present.scan_figures import plot_state
+
+                doc["plots"].append(str(plot_state(report, Path(args.plots) / "scan_state.png",
+                                                   title=f"{data.header.protocol_name} on {data.header.bench_name}:"
+                                                         f" readings and the {report.state.factor} state")))
         except PlotsUnavailable as exc:
             raise UsageError(str(exc)) from None
     if args.plots and est is not None:

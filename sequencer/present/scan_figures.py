@@ -86,3 +86,39 @@ def scan_figure(report: ScanReport, title: str = "") -> Figure:
 def plot_scan(report: ScanReport, path: str | os.PathLike[str], title: str = "") -> Path:
     """Write :func:`scan_figure` as a PNG at ``path`` and return the path."""
     return save_png(scan_figure(report, title), path)
+
+
+def state_figure(report: ScanReport, title: str = "") -> Figure:
+    """The scan's readings summed over the other factor's outputs (points) against the model of the
+    state the scan determines (line), residuals below: ``report.state`` must be set."""
+    curve = report.state
+    assert curve is not None
+    fig = new_figure((8.0, 6.4))
+    grid = fig.add_gridspec(2, 1, height_ratios=(3, 1.3), hspace=0.08)
+    ax = fig.add_subplot(grid[0])
+    res = fig.add_subplot(grid[1], sharex=ax)
+    finite = curve.values[np.isfinite(curve.values)]
+    peak = float(np.max(np.abs(finite))) if finite.size else 1.0
+    scale, unit = si_scale(peak, report.unit)
+    for k, name in enumerate(curve.outputs):
+        color = f"C{k}"
+        ax.plot(curve.angle_deg, curve.values[:, k] / scale, "o", ms=3.5, color=color, alpha=0.85, label=name)
+        if np.isfinite(curve.grid_model[:, k]).any():
+            ax.plot(curve.grid_deg, curve.grid_model[:, k] / scale, "-", lw=1.2, color=color)
+        res.plot(curve.angle_deg, curve.residuals[:, k] / scale, "o", ms=3.0, color=color, alpha=0.85)
+    res.axhline(0.0, color="0.4", lw=0.8)
+    ax.set_ylabel(f"reading, background subtracted ({unit})")
+    res.set_ylabel(f"residual ({unit})")
+    res.set_xlabel(f"{report.scanned.replace('_', ' ')} angle (deg)")
+    ax.tick_params(labelbottom=False)
+    ax.legend(loc="best", fontsize=8, title=f"outputs (points: readings; line: the {curve.factor} state)",
+              title_fontsize=8)
+    ax.grid(alpha=0.3)
+    res.grid(alpha=0.3)
+    ax.set_title(title or f"{report.label}: readings against the state they determine", fontsize=10)
+    return fig
+
+
+def plot_state(report: ScanReport, path: str | os.PathLike[str], title: str = "") -> Path:
+    """Write :func:`state_figure` as a PNG at ``path`` and return the path."""
+    return save_png(state_figure(report, title), path)
