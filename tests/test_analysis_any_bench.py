@@ -158,3 +158,13 @@ def test_rotating_quarter_wave_plate_gives_the_source_stokes_on_any_port_set(tmp
         assert doc["corrections"]["reduction"]["case"] == "conditional"
     if bench == "sim":
         assert doc["corrections"]["reduction"]["case"] == "exact"
+
+
+def test_the_text_of_a_polarimeter_scan_says_which_model_describes_it(tmp_path: Path, capsys) -> None:
+    doc = _analyse(tmp_path, QWP_SCAN, _bench(tmp_path, "sim"), "qwp-text", capsys)
+    assert doc["scan"]["fit"]["describes_readings"] is False
+    assert main(["analyze", str(tmp_path / "qwp-text.h5"), "--bootstrap", "20"]) == 0
+    text = " ".join(capsys.readouterr().out.split())
+    assert "the calibration model below does not describe these readings" in text
+    assert "the state above is what they determine" in text
+    assert "against the polarization state (outputs summed over the other factor): residual rms pm_hH+pm_vH" in text

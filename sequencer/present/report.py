@@ -242,6 +242,16 @@ def print_scan(console: Console, doc: dict[str, Any]) -> None:
         console.print("  not fitted yet: " + "; ".join(doc.get("missing", [])), highlight=False, markup=False)
         return
     fit = scan["fit"]
+    if fit.get("describes_readings") is False:
+        console.print("  the calibration model below does not describe these readings (see the note); "
+                      + ("the state above is what they determine" if state else "its values mean nothing"),
+                      highlight=False, markup=False)
+    model = scan.get("state_model")
+    if model:
+        rms = ", ".join(f"{name} {np.sqrt(np.mean(np.square(o['residuals']))):.3g} {scan['unit']}"
+                        for name, o in model["outputs"].items())
+        console.print(f"  against the {model['factor']} state (outputs summed over the other factor): residual rms {rms}",
+                      highlight=False, markup=False)
     t = Table(title=f"scan of the {scan['scanned_element'].replace('_', ' ')}: fitted parameters (± std [95% interval])")
     t.add_column("parameter")
     t.add_column("value", justify="right")
