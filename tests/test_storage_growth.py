@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import os
+import queue
 import subprocess
 import sys
 import textwrap
+import threading
 import tracemalloc
 from itertools import count
 from pathlib import Path
@@ -135,6 +137,9 @@ def test_load_run_reads_the_file_and_only_the_journal_tail(tmp_path):
 
 
 def test_a_reader_opening_the_file_during_refreshes_always_sees_a_whole_run(tmp_path):
+    # The reader reads as fast as it can while the writer records and refreshes. Four times the
+    # writer also waits until the reader has read once more, so that even on a loaded machine,
+    # where the writer could otherwise finish between two reads, the reader sees the file part-way.
     path = tmp_path / "run.h5"
     writer = subprocess.Popen(
         [sys.executable, "-c", textwrap.dedent(f"""
@@ -148,20 +153,39 @@ def test_a_reader_opening_the_file_during_refreshes_always_sees_a_whole_run(tmp_
                 store.record(make_reading(i))
                 if i % 7 == 6:
                     store.refresh()
+                if i % 140 == 139:
+                    print("read now", flush=True)
+                    sys.stdin.readline()
             store.close("complete")
             print("done", flush=True)
         """)],
-        stdout=subprocess.PIPE, text=True, env={**os.environ, "PYTHONPATH": str(REPO)},
+        stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True, env={**os.environ, "PYTHONPATH": str(REPO)},
     )
     assert writer.stdout.readline().strip() == "ready"
+    said: queue.Queue[str] = queue.Queue()
+    threading.Thread(target=lambda: [said.put(line.strip()) for line in writer.stdout], daemon=True).start()
     sizes = []
-    while writer.poll() is None:
+
+    def read_once() -> None:
         data = read_runfile(path)
         n = len(data.readings)
         np.testing.assert_array_equal(data.readings.step_index, np.arange(n))
         assert data.readings.operators.shape == (n, 4, 4, 4)
         sizes.append(n)
-    assert writer.stdout.read().strip() == "done" and writer.returncode == 0
+
+    last = ""
+    while last != "done" and writer.poll() is None:
+        read_once()
+        try:
+            last = said.get_nowait()
+        except queue.Empty:
+            continue
+        if last == "read now":
+            read_once()
+            writer.stdin.write("\n")
+            writer.stdin.flush()
+    writer.wait(timeout=60)
+    assert writer.returncode == 0
     assert len(set(sizes)) >= 3, "the reader never saw the file part-way through"
     assert len(read_runfile(path).readings) == 600
 
