@@ -106,7 +106,8 @@ def test_figure_bounds_name_the_physical_ranges() -> None:
     assert figure_bounds("purity", 4) == (0.25, 1.0)
     assert figure_bounds("concurrence", 4) == (0.0, 1.0)
     assert figure_bounds("stokes_polarization_2", 4) == (-1.0, 1.0)
-    assert figure_bounds("linear_entropy", 2) == (0.0, 0.5)
+    # the normalised linear entropy d/(d-1) (1 - tr rho^2) spans [0, 1] (common practice, no source)
+    assert figure_bounds("linear_entropy", 2) == figure_bounds("linear_entropy", 4) == (0.0, 1.0)
 
 
 def test_intervals_cover_a_binomial_probability_at_the_stated_rate() -> None:

@@ -155,7 +155,8 @@ def figure_bounds(name: str, dimension: int) -> Bounds:
     if name == "purity":
         return (1.0 / dimension, 1.0)
     if name == "linear_entropy":
-        return (0.0, 1.0 - 1.0 / dimension)
+        # normalised by d / (d - 1) (estimate.merit.linear_entropy): [0, 1] whatever d
+        return (0.0, 1.0)
     if name.startswith("stokes_"):
         return (-1.0, 1.0)
     if name.startswith(("concurrence", "fidelity", "dop_", "fully_entangled_fraction")):

@@ -507,14 +507,6 @@ def _functions(analyzes: tuple[str, ...], target: np.ndarray | None):
     return fns
 
 
-def _bounds(name: str, dimension: int) -> tuple[float, float]:
-    """Physical range of a figure: merit.linear_entropy is normalised by d / (d - 1), so it spans
-    [0, 1] whatever d (figure_bounds gives the range of 1 - tr rho^2)."""
-    if name == "linear_entropy":
-        return (0.0, 1.0)
-    return figure_bounds(name, dimension)
-
-
 def rows_chi2(resid: np.ndarray, sigma: np.ndarray, shared=None) -> float:
     """r^T S^-1 r for rows with independent errors ``sigma`` (n,) plus shared ones: S = diag(sigma^2)
     + B B^T, ``shared`` = B a sparse (n, m) matrix (None: diagonal only). Solved in the smaller of
@@ -638,7 +630,7 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
     boot = parametric_bootstrap(
         prep.operators, prep.values, fns, rng=rng, sigma=sigma, model=prep.model,
         n_resamples=n_bootstrap, fit=fit, tol=BOOTSTRAP_TOLERANCE,
-        bounds={name: _bounds(name, d) for name in fns},
+        bounds={name: figure_bounds(name, d) for name in fns},
         perturb=prep.correction_noise.perturb if prep.correction_noise is not None else None,
         widen=widen,
         edge=[name for name in fns if not name.startswith(("stokes_", "_re_", "_im_"))],
