@@ -44,6 +44,7 @@ import datetime as dt
 import json
 import math
 import os
+import re
 import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
@@ -628,6 +629,13 @@ def _read_events(f: h5py.File, m: int) -> tuple[Event, ...]:
         raise _Malformed(f"events: {exc}") from None
 
 
+def _missing_name(exc: KeyError) -> str:
+    """The attribute, group or dataset an h5py KeyError names ('format_version'), else its text."""
+    text = str(exc.args[0]) if exc.args else str(exc)
+    quoted = re.findall(r"'([^']+)'", text.replace("can't", "cannot"))
+    return repr(quoted[-1]) if quoted else text
+
+
 @contextmanager
 def _open_run(h5_path: Path, wait_s: float = _LOCK_RETRY_S) -> Iterator[h5py.File]:
     """Open a run file for reading, turning every way it can be unusable into StorageError.
@@ -659,7 +667,8 @@ def _open_run(h5_path: Path, wait_s: float = _LOCK_RETRY_S) -> Iterator[h5py.Fil
         ) from None
     except KeyError as exc:
         raise StorageError(
-            f"{h5_path}: not a lightloom run file (missing {exc.args[0] if exc.args else exc})"
+            f"{h5_path}: not a lightloom run file: it has no {_missing_name(exc)} (an HDF5 file from "
+            "another program?); analyze reads the files `lightloom run` writes"
         ) from exc
     except (OSError, ValueError, TypeError, IndexError) as exc:
         raise StorageError(
