@@ -117,7 +117,7 @@ def test_reduction_sums_complementary_ports_and_not_labels() -> None:
     assert np.allclose(red_vals, np.real(np.einsum("nij,ji->n", red_ops, passed)))
 
 
-def test_the_noise_models_degrees_of_freedom_widen_the_intervals_by_t_over_z(night: Path) -> None:
+def test_the_noise_models_degrees_of_freedom_widen_the_intervals_by_t_over_z(night: Path, capsys) -> None:
     # Repeats are grouped within a pass (drift between passes is not reading noise): 4 passes x 36
     # (setting, port) rows x (2 - 1) degrees of freedom, and the background readings (4 ports, one
     # fewer than their readings) add theirs. Student's t quantile against the normal one from
@@ -133,3 +133,7 @@ def test_the_noise_models_degrees_of_freedom_widen_the_intervals_by_t_over_z(nig
     used = est.corrections["noise_model"]
     assert used["interval_widening"] == pytest.approx(t.ppf(0.975, nm["dof"]) / norm.ppf(0.975), rel=1e-9)
     assert used["interval_widening"] > 1.0
+    # and the text report says what was applied
+    assert main(["analyze", str(night)]) == 0
+    text = " ".join(capsys.readouterr().out.split())
+    assert f"intervals widened {used['interval_widening']:.3f}x for its {nm['dof']} degrees of freedom" in text

@@ -124,7 +124,10 @@ def _print_corrections(console: Console, doc: dict[str, Any]) -> None:
         lines.append("normalisation: per setting over complementary ports")
     nm = corr.get("noise_model", {})
     if nm.get("model") == "gaussian":
-        lines.append(f"noise: Gaussian, {nm['absolute_w']:.3g} W + {nm['relative']:.2%} relative ({nm['how']}), residual scale {nm.get('residual_scale', 1):.2f}")
+        widen = (f"; intervals widened {nm['interval_widening']:.3f}x for its {nm['dof']} degrees of freedom"
+                 if nm.get("interval_widening", 1.0) > 1.0 else "")
+        lines.append(f"noise: Gaussian, {nm['absolute_w']:.3g} W + {nm['relative']:.2%} relative ({nm['how']}), "
+                     f"residual scale {nm.get('residual_scale', 1):.2f}{widen}")
     else:
         lines.append("noise: Poisson counts")
     red = corr.get("reduction", {})
