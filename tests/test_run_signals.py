@@ -18,9 +18,7 @@ from helpers.runs import (
     "signum, said", [(signal.SIGINT, "Ctrl-C"), (signal.SIGTERM, "SIGTERM"), (signal.SIGHUP, "SIGHUP")]
 )
 def test_a_signal_stops_the_run_safely_with_exit_130_and_resume_completes_it(tmp_path, capsys, signum, said):
-    # 0.3 of real time: about 3 s for the 11 steps, so that a loaded machine (two test suites at
-    # once) cannot let the run finish between its second step and the signal (it did at 0.1)
-    bench = write_bench(tmp_path, "sim-third", simulation={"time_scale": 0.3})
+    bench = write_bench(tmp_path, "sim-tenth", simulation={"time_scale": 0.1})
     out = tmp_path / "run.h5"
     log = log_path_for(out)
     proc = spawn("run", "polarization-6", "--bench", bench, "--out", out, "--quiet")

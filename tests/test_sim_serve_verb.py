@@ -19,6 +19,7 @@ import pytest
 
 from lightloom.sequencer.cli import main
 from lightloom.sequencer.storage.store import load_run
+from helpers.runs import default_ctrl_c
 
 REPO = Path(__file__).resolve().parents[1]
 ADDRESS = re.compile(r"^\s+(\w+)\s+(\w+)\s+(TCPIP::127\.0\.0\.1::(\d+)::SOCKET)\s+(socket://127\.0\.0\.1:\d+)$")
@@ -57,7 +58,7 @@ def _serve_once(tmp_path: Path, *extra: str) -> tuple[subprocess.Popen, dict[str
         [sys.executable, "-m", "lightloom.sequencer", "sim", "serve", "--bench", "sim", "--bench-out", str(bench_out),
          "--base-port", str(_free_base_port()), *extra],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=str(tmp_path),
-        env={**os.environ, "PYTHONPATH": str(REPO)},
+        env={**os.environ, "PYTHONPATH": str(REPO)}, preexec_fn=default_ctrl_c,
     )
     addresses: dict[str, tuple[str, str]] = {}
     deadline = time.monotonic() + 30

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import os
 import re
+import signal
 import subprocess
 import sys
 import time
@@ -37,8 +38,19 @@ def run_cli(*args: object) -> int:
     return cli.main([str(a) for a in args])
 
 
+def default_ctrl_c() -> None:
+    """In a child before exec: Ctrl-C (SIGINT) handled as in a terminal's foreground process.
+
+    A test suite started as a background job of a shell has SIGINT ignored, children inherit
+    that, and Python then installs no KeyboardInterrupt for it: a test sending Ctrl-C would see
+    the command go on."""
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def spawn(*args: object, **popen: object) -> subprocess.Popen:
-    """The command line in a new process (stdout and stderr piped, text); ``popen`` goes to Popen."""
+    """The command line in a new process (stdout and stderr piped, text); ``popen`` goes to Popen.
+    Ctrl-C reaches it as in a terminal (default_ctrl_c) unless ``preexec_fn`` is given."""
+    popen.setdefault("preexec_fn", default_ctrl_c)
     return subprocess.Popen(
         [sys.executable, "-m", "lightloom.sequencer", *[str(a) for a in args]],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
