@@ -138,4 +138,5 @@ def test_the_nearest_product_vector_of_a_product_state_is_itself():
     from lightloom.sequencer.analysis.estimate.bootstrap import nearest_product_ket
 
     ket = nearest_product_ket(projector(np.kron(a, b)), (2, 2))
+    # a product vector is its own Schmidt decomposition (linear algebra, common practice, no source)
     assert abs(abs(np.vdot(ket, np.kron(a, b))) - 1.0) < 1e-12  # equal up to a phase

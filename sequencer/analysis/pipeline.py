@@ -319,10 +319,11 @@ def iter_prepared(
         a = float(np.sqrt(np.mean(base_var))) if len(base_var) else 0.0
         a, b, how = _spread_model(repeats, a)
         noise = {"model": "gaussian", "absolute_w": a, "relative": b, "how": how}
+        repeat_dof = int(np.sum(repeats.count - 1)) if "repeated" in how else 0
+        del repeats
         if bg_model.applied and a > 0:
             # a is the absolute noise of one corrected reading (gain divided out)
             a_port = a * gains
-            repeat_dof = int(np.sum(repeats.count - 1)) if "repeated" in how else 0
             if bg_model.times_s.size < 2:
                 bg_model = background_model(bg_model.times_s, bg_model.values, fallback_sigma=a_port)
             else:
@@ -332,8 +333,7 @@ def iter_prepared(
         # degrees of freedom behind the noise model: repeated readings about their means, and the
         # background readings about theirs (estimate() widens the intervals by t over z)
         bg_dof = len(gains) * max(bg_model.times_s.size - 1, 0) if bg_model.applied else 0
-        noise["dof"] = (int(np.sum(repeats.count - 1)) if "repeated" in how else 0) + int(bg_dof)
-        del repeats
+        noise["dof"] = repeat_dof + int(bg_dof)
     elif bg_model.applied and bg_model.times_s.size < 2:
         # One background reading of counts: its Poisson spread.
         bg_model = background_model(bg_model.times_s, bg_model.values,
@@ -617,7 +617,8 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
             fit = mle_gaussian(prep.operators, prep.values, sigma)
     # Counts have their Poisson spread; Gaussian readings a spread estimated from the run, whose
     # own uncertainty widens the intervals (interval_widening).
-    widen = 1.0 if prep.model == "poisson" else interval_widening(_noise_dof(prep))
+    noise_dof = _noise_dof(prep) if prep.model == "gaussian" else 0
+    widen = 1.0 if prep.model == "poisson" else interval_widening(noise_dof)
     lin = linear_inversion(prep.operators, prep.values, sigma)
     fns = _functions(prep.analyzes, target)
     d = prep.operators.shape[-1]
@@ -653,7 +654,7 @@ def estimate(prep: Prepared, *, target: np.ndarray | None, rng: np.random.Genera
     corrections = dict(prep.corrections)
     if prep.model == "gaussian":
         corrections["noise_model"] = {**corrections["noise_model"], "residual_scale": scale,
-                                      "dof": _noise_dof(prep), "interval_widening": widen}
+                                      "dof": noise_dof, "interval_widening": widen}
     return Estimate(
         rho=fit.rho, rho_std=rho_std, basis=prep.basis, analyzes=prep.analyzes, figures=figs, stokes=stokes,
         closest_mode=closest,

@@ -63,8 +63,8 @@ class BeamWatch:
     noise (from their second differences). Of the monitors at least ``MIN_SIGNAL_TO_NOISE`` above
     their noise, the one furthest above watches (the reference meter on a tie; a 1 % pick-off at
     1 uW is below the bar, the ports' sum far above); when neither is, nothing watches the beam
-    and ``choice`` says why. A noisy monitor would otherwise pause the
-    run on its noise, or flag every reading as drift.
+    and ``choice`` says why. A noisy monitor would otherwise pause the run on its noise, or flag
+    every reading as drift.
     """
 
     loss_fraction: float
