@@ -162,3 +162,14 @@ def test_what_is_determined_depends_on_the_span_only(seed: int, count: int) -> N
     coords /= np.linalg.norm(coords, axis=1, keepdims=True)
     worst = np.linalg.norm(np.linalg.pinv(coords.T), axis=0).max() if count >= 16 else np.inf
     assert (base.kind == "joint-state") == (count >= 16 and worst <= MAX_AMPLIFICATION)
+
+
+def test_a_joint_state_needs_every_component_within_the_amplification_bound_in_the_readings_themselves() -> None:
+    # Sixteen generic projectors (seed 614) span the 4x4 space, but polarization S2 is reached only
+    # with a reading's noise amplified 52 times; their sums over the spatial outputs would reach it
+    # with less, which is no help to a joint estimate made from the readings themselves.
+    ops = _random_projectors(np.random.default_rng(614), 16)
+    det = determination(ops, BOTH, BOTH)
+    assert det.rank == 16
+    assert det.kind == "partial" and det.stokes["polarization"][2] is False
+    assert any("D/A reached only weakly" in m for m in det.missing)

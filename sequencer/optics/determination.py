@@ -12,6 +12,7 @@ absolute power is determined too, so a complete set needs d^2 independent operat
 from __future__ import annotations
 
 import itertools
+import math
 from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Mapping, Sequence
@@ -210,6 +211,10 @@ def determination(
         summed_rows = _unit_rows(summed)
         spanned = [_in_span(summed_basis, _unit(len(indices), position[local(f, i)])) for i in range(4)]
         gain = [_amplification(summed_rows, _unit(len(indices), position[local(f, i)])) for i in range(4)]
+        if len(wanted) > 1:
+            # a joint state is estimated from the readings themselves, not from their sums over the
+            # other factor's outputs: a component reached only weakly by them is missing
+            gain = [max(g, _amplification(coords, _unit(len(indices), position[local(f, i)]))) for i, g in enumerate(gain)]
         covered = [ok and g <= MAX_AMPLIFICATION for ok, g in zip(spanned, gain)]
         if not covered[0]:
             missing.append(f"{factor}: no total power (no complete basis such as "
@@ -217,7 +222,7 @@ def determination(
         for i, (plus, minus, name) in enumerate(BASES[factor], start=1):
             if covered[i]:
                 continue
-            if spanned[i]:
+            if spanned[i] and math.isfinite(gain[i]):
                 missing.append(f"{factor}: {plus}/{minus} reached only weakly, through an imperfection of the"
                                f" elements (a reading's noise amplified {gain[i]:.0f} times): add a setting that"
                                f" measures {plus}")
